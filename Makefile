@@ -1,0 +1,27 @@
+# The two commands a newcomer needs are `make demo` and `make test`; both install what
+# they need first (scripts/setup.sh, idempotent). Builds go to a fixed target directory
+# outside the clone so that repeat runs reuse them.
+export CARGO_TARGET_DIR ?= /var/cache/simtide/target
+CARGO ?= cargo
+
+.PHONY: demo test lint bench setup-build setup-test
+
+setup-build:
+	bash scripts/setup.sh build
+
+setup-test:
+	bash scripts/setup.sh test
+
+demo: setup-build
+	$(CARGO) run --release --locked --quiet -- demo
+
+test: setup-test
+	$(CARGO) test --release --locked
+
+lint: setup-build
+	$(CARGO) fmt --all -- --check
+	$(CARGO) clippy --release --locked --all-targets -- -D warnings
+
+bench: setup-test
+	$(CARGO) build --release --locked
+	bash scripts/bench.sh

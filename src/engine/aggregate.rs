@@ -1,0 +1,151 @@
+//! Sums the contribution sets of a batch into one delta per pair, row by row.
+//!
+//! Hashing every pair update into a map of a million pairs costs a cache miss per update.
+//! Instead the batch's items are renumbered densely, an inverted index lists where each
+//! item occurs, and each row `a` is accumulated in a dense array over its partners `b > a`
+//! (Gustavson's row-wise sparse product, which is how sparse matrix libraries form AᵀA).
+//! The output comes out sorted by (a, b), ready for the store.
+
+use super::contrib::ContributionSet;
+
+/// A pair delta that can absorb one signed contribution of (lower item, higher item).
+pub trait PairSum<T>: Copy + Default + PartialEq {
+    /// Adds `sign` times the contribution of the pair with values `lo` and `hi`.
+    fn add(&mut self, sign: i64, lo: &T, hi: &T);
+}
+
+/// Deltas of every pair the sets touch, as (lo, hi, delta) sorted by (lo, hi), zero deltas
+/// left out, and the number of pair contributions summed.
+pub fn aggregate_pairs<T, S: PairSum<T>>(sets: &[ContributionSet<T>]) -> (Vec<(u32, u32, S)>, u64) {
+    let mut items: Vec<u32> = sets.iter().flat_map(|s| s.items.iter().copied()).collect();
+    items.sort_unstable();
+    items.dedup();
+    let local = |item: u32| items.binary_search(&item).expect("item of a set") as u32;
+    let locals: Vec<Vec<u32>> = sets
+        .iter()
+        .map(|s| s.items.iter().map(|&i| local(i)).collect())
+        .collect();
+
+    // Inverted index: for each local item, the (set, position) where it occurs.
+    let mut starts = vec![0usize; items.len() + 1];
+    for l in locals.iter().flatten() {
+        starts[*l as usize + 1] += 1;
+    }
+    for i in 0..items.len() {
+        starts[i + 1] += starts[i];
+    }
+    let mut fill = starts.clone();
+    let mut occurrences = vec![(0u32, 0u32); starts[items.len()]];
+    for (si, ls) in locals.iter().enumerate() {
+        for (p, &l) in ls.iter().enumerate() {
+            occurrences[fill[l as usize]] = (si as u32, p as u32);
+            fill[l as usize] += 1;
+        }
+    }
+
+    let mut acc = vec![S::default(); items.len()];
+    let mut touched = vec![false; items.len()];
+    let mut row: Vec<u32> = Vec::new();
+    let mut out = Vec::new();
+    let mut updates = 0u64;
+    for a in 0..items.len() {
+        for &(si, p) in &occurrences[starts[a]..starts[a + 1]] {
+            let set = &sets[si as usize];
+            let ls = &locals[si as usize];
+            let (p, a_changed) = (p as usize, set.changed[p as usize]);
+            let va = &set.values[p];
+            let partners = ls[p + 1..]
+                .iter()
+                .zip(&set.changed[p + 1..])
+                .zip(&set.values[p + 1..]);
+            for ((&b, &b_changed), vb) in partners {
+                if a_changed || b_changed {
+                    let b = b as usize;
+                    if !touched[b] {
+                        touched[b] = true;
+                        row.push(b as u32);
+                    }
+                    acc[b].add(set.sign, va, vb);
+                    updates += 1;
+                }
+            }
+        }
+        row.sort_unstable();
+        for &b in &row {
+            let b = b as usize;
+            if acc[b] != S::default() {
+                out.push((items[a], items[b], acc[b]));
+            }
+            acc[b] = S::default();
+            touched[b] = false;
+        }
+        row.clear();
+    }
+    (out, updates)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::contrib::difference;
+    use std::collections::BTreeMap;
+
+    #[derive(Clone, Copy, Default, PartialEq, Debug)]
+    struct Products(i64, i64);
+
+    impl PairSum<i64> for Products {
+        fn add(&mut self, sign: i64, lo: &i64, hi: &i64) {
+            self.0 += sign;
+            self.1 += sign * lo * hi;
+        }
+    }
+
+    fn direct(state: &[(u32, i64)]) -> BTreeMap<(u32, u32), Products> {
+        let mut m = BTreeMap::new();
+        for (i, a) in state.iter().enumerate() {
+            for b in &state[i + 1..] {
+                m.insert((a.0, b.0), Products(1, a.1 * b.1));
+            }
+        }
+        m
+    }
+
+    #[test]
+    fn difference_plus_before_equals_after() {
+        let before = vec![(1, 2), (3, -1), (5, 4), (8, 1)];
+        let after = vec![(1, 2), (3, 7), (6, -2), (8, 1), (9, 3)];
+        for all in [false, true] {
+            let sets = difference(&before, &after, all).unwrap();
+            let (deltas, updates) = aggregate_pairs::<i64, Products>(&sets);
+            assert_eq!(updates, sets[0].pair_count() + sets[1].pair_count());
+            let keys: Vec<(u32, u32)> = deltas.iter().map(|d| (d.0, d.1)).collect();
+            let mut sorted = keys.clone();
+            sorted.sort();
+            assert_eq!(keys, sorted, "output is sorted by (lo, hi)");
+            let mut acc = direct(&before);
+            for (lo, hi, d) in deltas {
+                let e = acc.entry((lo, hi)).or_default();
+                e.0 += d.0;
+                e.1 += d.1;
+            }
+            acc.retain(|_, v| *v != Products(0, 0));
+            assert_eq!(acc, direct(&after), "all_changed = {all}");
+        }
+    }
+
+    #[test]
+    fn sets_of_several_users_add_up() {
+        let u1 = difference(&[], &[(2, 1), (4, 1)], false).unwrap();
+        let u2 = difference(&[], &[(2, 3), (4, 5), (7, 1)], false).unwrap();
+        let sets: Vec<_> = u1.into_iter().chain(u2).collect();
+        let (deltas, _) = aggregate_pairs::<i64, Products>(&sets);
+        assert_eq!(
+            deltas,
+            vec![
+                (2, 4, Products(2, 16)),
+                (2, 7, Products(1, 3)),
+                (4, 7, Products(1, 5))
+            ]
+        );
+    }
+}

@@ -1,0 +1,273 @@
+//! One user's stored history and applied center, and the rules that change them:
+//! last write wins by event time (ties to the later source position), withdrawals,
+//! erasure, and the interaction cut that picks the items taking part in pairs.
+
+use crate::event::UnixNanos;
+
+/// The user's latest rating event for one item.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RatingEntry {
+    /// Dense item id.
+    pub item: u32,
+    /// The rating, or `None` once withdrawn (kept so older events stay stale).
+    pub value: Option<f64>,
+    /// Time of the event that set this entry.
+    pub at: UnixNanos,
+    /// Source position (store-wide sequence) of that event.
+    pub seq: u64,
+}
+
+/// The user's latest purchase of one item.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PurchaseEntry {
+    /// Dense item id.
+    pub item: u32,
+    /// Time of the latest purchase.
+    pub at: UnixNanos,
+    /// Source position of that purchase.
+    pub seq: u64,
+}
+
+/// Everything stored about one user.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct UserState {
+    /// The applied center c_u that all of this user's rating-pair contributions use.
+    pub center: f64,
+    /// Events at or before this time are stale: the user was erased then.
+    pub erased_at: Option<UnixNanos>,
+    /// Rating entries, sorted by item.
+    pub ratings: Vec<RatingEntry>,
+    /// Purchase entries, sorted by item.
+    pub purchases: Vec<PurchaseEntry>,
+}
+
+/// What an event did to the state.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Outcome {
+    /// The state changed.
+    Applied,
+    /// Older than what is stored for the same key: ignored.
+    Stale,
+    /// Same time and same effect as what is stored: ignored.
+    Duplicate,
+}
+
+impl Outcome {
+    /// Every outcome of an accepted event.
+    pub const ALL: [Outcome; 3] = [Outcome::Applied, Outcome::Stale, Outcome::Duplicate];
+
+    /// Counter label.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Outcome::Applied => "applied",
+            Outcome::Stale => "stale",
+            Outcome::Duplicate => "duplicate",
+        }
+    }
+}
+
+/// Picks the `limit` most recent entries by (time, source position); 0 means all.
+fn most_recent<T, F: Fn(&T) -> (UnixNanos, u64)>(mut entries: Vec<T>, limit: usize, key: F) -> Vec<T> {
+    if limit > 0 && entries.len() > limit {
+        entries.select_nth_unstable_by(limit - 1, |a, b| key(b).cmp(&key(a)));
+        entries.truncate(limit);
+    }
+    entries
+}
+
+impl UserState {
+    fn erased_since(&self, at: UnixNanos) -> bool {
+        self.erased_at.is_some_and(|e| at <= e)
+    }
+
+    /// Applies a rating of `item`.
+    pub fn rate(&mut self, item: u32, value: f64, at: UnixNanos, seq: u64) -> Outcome {
+        if self.erased_since(at) {
+            return Outcome::Stale;
+        }
+        let entry = RatingEntry {
+            item,
+            value: Some(value),
+            at,
+            seq,
+        };
+        match self.ratings.binary_search_by_key(&item, |e| e.item) {
+            Ok(i) => {
+                let old = self.ratings[i];
+                if at < old.at {
+                    Outcome::Stale
+                } else if at == old.at && old.value == Some(value) {
+                    Outcome::Duplicate
+                } else {
+                    self.ratings[i] = entry;
+                    Outcome::Applied
+                }
+            }
+            Err(i) => {
+                self.ratings.insert(i, entry);
+                Outcome::Applied
+            }
+        }
+    }
+
+    /// Withdraws the rating of `item`, leaving a marker so older ratings stay stale.
+    pub fn unrate(&mut self, item: u32, at: UnixNanos, seq: u64) -> Outcome {
+        if self.erased_since(at) {
+            return Outcome::Stale;
+        }
+        let marker = RatingEntry {
+            item,
+            value: None,
+            at,
+            seq,
+        };
+        match self.ratings.binary_search_by_key(&item, |e| e.item) {
+            Ok(i) => {
+                let old = self.ratings[i];
+                if at < old.at {
+                    Outcome::Stale
+                } else if old.value.is_none() && at == old.at {
+                    Outcome::Duplicate
+                } else {
+                    self.ratings[i] = marker;
+                    Outcome::Applied
+                }
+            }
+            Err(i) => {
+                self.ratings.insert(i, marker);
+                Outcome::Applied
+            }
+        }
+    }
+
+    /// Records a purchase of `item`; a repeat purchase only refreshes its time.
+    pub fn purchase(&mut self, item: u32, at: UnixNanos, seq: u64) -> Outcome {
+        if self.erased_since(at) {
+            return Outcome::Stale;
+        }
+        let entry = PurchaseEntry { item, at, seq };
+        match self.purchases.binary_search_by_key(&item, |e| e.item) {
+            Ok(i) => {
+                let old = self.purchases[i];
+                if at < old.at {
+                    Outcome::Stale
+                } else if at == old.at {
+                    Outcome::Duplicate
+                } else {
+                    self.purchases[i] = entry;
+                    Outcome::Applied
+                }
+            }
+            Err(i) => {
+                self.purchases.insert(i, entry);
+                Outcome::Applied
+            }
+        }
+    }
+
+    /// Forgets the whole history. The erasure time is kept, raised to the newest time
+    /// seen, so a replay of any forgotten event is stale and cannot bring it back.
+    pub fn erase(&mut self, at: UnixNanos) -> Outcome {
+        if self.erased_since(at) {
+            return Outcome::Stale;
+        }
+        let newest = self
+            .ratings
+            .iter()
+            .map(|e| e.at)
+            .chain(self.purchases.iter().map(|e| e.at))
+            .fold(at, i64::max);
+        *self = UserState {
+            center: 0.0,
+            erased_at: Some(newest),
+            ratings: Vec::new(),
+            purchases: Vec::new(),
+        };
+        Outcome::Applied
+    }
+
+    /// The ratings that take part in pairs: the `limit` most recent non-withdrawn ones
+    /// (0 = all), sorted by item, as (item, rating).
+    pub fn active_ratings(&self, limit: usize) -> Vec<(u32, f64)> {
+        let live: Vec<&RatingEntry> = self.ratings.iter().filter(|e| e.value.is_some()).collect();
+        let mut chosen = most_recent(live, limit, |e| (e.at, e.seq));
+        chosen.sort_unstable_by_key(|e| e.item);
+        chosen
+            .into_iter()
+            .filter_map(|e| e.value.map(|v| (e.item, v)))
+            .collect()
+    }
+
+    /// The purchases that take part in pairs, sorted by item.
+    pub fn active_purchases(&self, limit: usize) -> Vec<u32> {
+        let mut chosen = most_recent(self.purchases.iter().collect(), limit, |e| (e.at, e.seq));
+        chosen.sort_unstable_by_key(|e| e.item);
+        chosen.into_iter().map(|e| e.item).collect()
+    }
+}
+
+/// Mean of the given ratings, `None` for none.
+pub fn mean_rating(active: &[(u32, f64)]) -> Option<f64> {
+    if active.is_empty() {
+        return None;
+    }
+    Some(active.iter().map(|(_, v)| v).sum::<f64>() / active.len() as f64)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn last_write_wins_by_time_then_position() {
+        let mut u = UserState::default();
+        assert_eq!(u.rate(7, 4.0, 100, 1), Outcome::Applied);
+        assert_eq!(u.rate(7, 2.0, 50, 2), Outcome::Stale);
+        assert_eq!(u.rate(7, 4.0, 100, 3), Outcome::Duplicate);
+        assert_eq!(
+            u.rate(7, 5.0, 100, 4),
+            Outcome::Applied,
+            "same time, later position wins"
+        );
+        assert_eq!(u.unrate(7, 90, 5), Outcome::Stale);
+        assert_eq!(u.unrate(7, 120, 6), Outcome::Applied);
+        assert_eq!(
+            u.rate(7, 3.0, 110, 7),
+            Outcome::Stale,
+            "older than the withdrawal"
+        );
+        assert!(u.active_ratings(0).is_empty());
+    }
+
+    #[test]
+    fn cut_keeps_most_recent() {
+        let mut u = UserState::default();
+        for (item, at) in [(1, 30), (2, 10), (3, 20), (4, 40)] {
+            u.rate(item, 3.0, at, item as u64);
+        }
+        let kept: Vec<u32> = u.active_ratings(2).into_iter().map(|(i, _)| i).collect();
+        assert_eq!(kept, vec![1, 4]);
+        u.unrate(4, 50, 9);
+        let kept: Vec<u32> = u.active_ratings(2).into_iter().map(|(i, _)| i).collect();
+        assert_eq!(
+            kept,
+            vec![1, 3],
+            "a withdrawn item lets the next most recent back in"
+        );
+    }
+
+    #[test]
+    fn erasure_blocks_replays() {
+        let mut u = UserState::default();
+        u.rate(1, 5.0, 200, 1);
+        u.purchase(2, 300, 2);
+        assert_eq!(u.erase(100), Outcome::Applied);
+        assert!(u.ratings.is_empty() && u.purchases.is_empty());
+        assert_eq!(
+            u.rate(1, 5.0, 200, 3),
+            Outcome::Stale,
+            "replay of a forgotten event"
+        );
+        assert_eq!(u.purchase(2, 301, 4), Outcome::Applied, "a genuinely newer event");
+    }
+}

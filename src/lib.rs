@@ -1,0 +1,21 @@
+//! simtide keeps item-to-item similarities fresh from an event stream: per-pair sufficient
+//! statistics in RocksDB, adjusted cosine for ratings, co-purchase scores for purchases,
+//! and top-k neighbor lists republished as the statistics change.
+
+pub mod backfill;
+pub mod config;
+pub mod decode;
+pub mod demo;
+pub mod engine;
+pub mod event;
+pub mod export;
+pub mod inspect;
+pub mod meter;
+pub mod pipeline;
+pub mod publish;
+pub mod record;
+pub mod score;
+pub mod signal;
+pub mod source;
+pub mod store;
+pub mod timefmt;

@@ -1,0 +1,203 @@
+//! One micro-batch from decoded events to a committed store write: intern ids, load the
+//! states the batch touches, run the engine, and persist everything — including the source
+//! position the batch consumed — in one WriteBatch. Backfill and the live consumer both
+//! feed batches through here.
+
+use std::collections::{BTreeMap, HashMap};
+
+use anyhow::Result;
+
+use crate::decode::RejectReason;
+use crate::engine::user_state::Outcome;
+use crate::engine::{apply_batch, Action, EngineSettings, Sequenced};
+use crate::event::{Event, EventBody, EventKind};
+use crate::store::{BatchCommit, Progress, Store};
+use crate::timefmt::now_nanos;
+
+/// Counter key of an accepted event in [`Progress::events`].
+pub fn event_counter_key(kind: EventKind, outcome: Outcome) -> String {
+    format!("{}/{}", kind.as_str(), outcome.as_str())
+}
+
+/// What one committed batch did.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct BatchSummary {
+    /// Accepted events by kind and outcome.
+    pub outcomes: BTreeMap<(EventKind, Outcome), u64>,
+    /// Pair contributions added or retracted.
+    pub pair_updates: u64,
+    /// Users re-centered.
+    pub recenterings: u64,
+    /// Largest |mean − center| among touched users after the batch.
+    pub max_center_gap: f64,
+}
+
+/// Assigns dense ids to the names a batch uses, remembering the new ones.
+struct Interner<'a> {
+    store: &'a Store,
+    next_user: u32,
+    next_item: u32,
+    users: HashMap<String, u32>,
+    items: HashMap<String, u32>,
+    new_users: Vec<(u32, String)>,
+    new_items: Vec<(u32, String)>,
+}
+
+impl<'a> Interner<'a> {
+    fn new(store: &'a Store, events: &[Event]) -> Result<Interner<'a>> {
+        let p = store.progress();
+        let mut names: Vec<&str> = events.iter().filter_map(Event::user).collect();
+        names.sort_unstable();
+        names.dedup();
+        let known = store.user_ids(&names)?;
+        let users = names
+            .iter()
+            .zip(known)
+            .filter_map(|(n, id)| id.map(|id| (n.to_string(), id)))
+            .collect();
+        Ok(Interner {
+            store,
+            next_user: p.next_user,
+            next_item: p.next_item,
+            users,
+            items: HashMap::new(),
+            new_users: Vec::new(),
+            new_items: Vec::new(),
+        })
+    }
+
+    fn user(&mut self, name: &str) -> u32 {
+        if let Some(&id) = self.users.get(name) {
+            return id;
+        }
+        let id = self.next_user;
+        self.next_user += 1;
+        self.users.insert(name.to_string(), id);
+        self.new_users.push((id, name.to_string()));
+        id
+    }
+
+    fn item(&mut self, name: &str) -> u32 {
+        if let Some(id) = self.store.item_id(name).or_else(|| self.items.get(name).copied()) {
+            return id;
+        }
+        let id = self.next_item;
+        self.next_item += 1;
+        self.items.insert(name.to_string(), id);
+        self.new_items.push((id, name.to_string()));
+        id
+    }
+
+    fn action(&mut self, body: &EventBody) -> Action {
+        match body {
+            EventBody::Rating { user, item, value } => Action::Rate {
+                user: self.user(user),
+                item: self.item(item),
+                value: *value,
+            },
+            EventBody::Unrating { user, item } => Action::Unrate {
+                user: self.user(user),
+                item: self.item(item),
+            },
+            EventBody::Purchase { user, item } => Action::Purchase {
+                user: self.user(user),
+                item: self.item(item),
+            },
+            EventBody::EraseUser { user } => Action::Erase {
+                user: self.user(user),
+            },
+            EventBody::ItemStatus { item, available } => Action::ItemStatus {
+                item: self.item(item),
+                available: *available,
+            },
+        }
+    }
+}
+
+/// Applies one micro-batch and commits it. `rejects` counts the records of the same batch
+/// that failed validation; `advance` records the source position the batch consumed into
+/// the progress state that is written with it.
+pub fn apply_and_commit(
+    store: &mut Store,
+    settings: &EngineSettings,
+    events: &[Event],
+    rejects: &BTreeMap<RejectReason, u64>,
+    advance: impl FnOnce(&mut Progress),
+) -> Result<BatchSummary> {
+    let mut interner = Interner::new(store, events)?;
+    let mut next_seq = store.progress().next_seq;
+    let sequenced: Vec<Sequenced> = events
+        .iter()
+        .map(|e| {
+            let seq = next_seq;
+            next_seq += 1;
+            Sequenced {
+                seq,
+                at: e.at,
+                action: interner.action(&e.body),
+            }
+        })
+        .collect();
+    let Interner {
+        next_user,
+        next_item,
+        new_users,
+        new_items,
+        ..
+    } = interner;
+
+    let mut user_ids: Vec<u32> = sequenced.iter().filter_map(|s| s.action.user()).collect();
+    user_ids.sort_unstable();
+    user_ids.dedup();
+    let status_items: Vec<u32> = sequenced
+        .iter()
+        .filter_map(|s| match s.action {
+            Action::ItemStatus { item, .. } => Some(item),
+            _ => None,
+        })
+        .collect();
+    let mut users = store.load_users(&user_ids)?;
+    let mut statuses = store.load_statuses(&status_items)?;
+    let effects = apply_batch(settings, &sequenced, &mut users, &mut statuses);
+
+    let mut progress = store.progress().clone();
+    progress.next_seq = next_seq;
+    progress.next_user = next_user;
+    progress.next_item = next_item;
+    progress.buyers += effects.buyers_delta;
+    progress.recenterings += effects.recenterings;
+    progress.pair_updates += effects.pair_updates;
+    if let Some(t) = effects.newest_event_at {
+        progress.event_time_watermark = Some(progress.event_time_watermark.map_or(t, |w| w.max(t)));
+    }
+    for (&(kind, outcome), &n) in &effects.outcomes {
+        *progress
+            .events
+            .entry(event_counter_key(kind, outcome))
+            .or_default() += n;
+    }
+    for (reason, &n) in rejects {
+        *progress.rejects.entry(reason.code().to_string()).or_default() += n;
+    }
+    advance(&mut progress);
+
+    let changed_users: Vec<_> = effects
+        .touched_users
+        .iter()
+        .map(|u| (*u, users.get(u).expect("touched users are loaded")))
+        .collect();
+    store.commit(BatchCommit {
+        new_users,
+        new_items,
+        users: changed_users,
+        effects: &effects,
+        progress,
+        dirty_since: now_nanos(),
+    })?;
+    Ok(BatchSummary {
+        outcomes: effects.outcomes.clone(),
+        pair_updates: effects.pair_updates,
+        recenterings: effects.recenterings,
+        max_center_gap: effects.max_center_gap,
+    })
+}

@@ -1,0 +1,60 @@
+//! Merge operators: pair statistics and dirty marks are updated by merging deltas, never
+//! by read-modify-write, so a batch writes blindly and RocksDB adds up operands lazily.
+//! Every operator here is associative and commutative, so full and partial merges share
+//! one function.
+
+use rocksdb::compaction_filter::Decision;
+use rocksdb::MergeOperands;
+
+use super::codec::{decode_count, DirtyMark, RatingPairStats, RATING_PAIR_LEN};
+
+/// Sums rating pair statistics field by field. A malformed operand is skipped with an
+/// error log rather than poisoning the key (it can only come from a foreign writer).
+pub fn merge_rating_pairs(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let mut total = RatingPairStats::default();
+    for bytes in existing.into_iter().chain(operands) {
+        match RatingPairStats::decode(bytes) {
+            Ok(delta) => total.add(&delta),
+            Err(e) => tracing::error!(error = %e, "skipping malformed rating pair operand"),
+        }
+    }
+    Some(total.encode().to_vec())
+}
+
+/// Sums co-buyer counts.
+pub fn merge_counts(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let mut total: i64 = 0;
+    for bytes in existing.into_iter().chain(operands) {
+        match decode_count(bytes) {
+            Ok(c) => total = total.wrapping_add(c),
+            Err(e) => tracing::error!(error = %e, "skipping malformed count operand"),
+        }
+    }
+    Some(total.to_le_bytes().to_vec())
+}
+
+/// Keeps the earliest dirty time and any neighbor flag.
+pub fn merge_dirty(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let mut combined: Option<DirtyMark> = None;
+    for bytes in existing.into_iter().chain(operands) {
+        if let Ok(mark) = DirtyMark::decode(bytes) {
+            combined = Some(combined.map_or(mark, |c| c.combine(&mark)));
+        }
+    }
+    combined.map(|m| m.encode().to_vec())
+}
+
+/// Drops pairs whose every contribution was retracted (n = 0), so erased users and cut
+/// items leave no empty keys behind after compaction.
+pub fn drop_empty_pairs(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
+    let empty = match value.len() {
+        RATING_PAIR_LEN => RatingPairStats::decode(value).is_ok_and(|s| s.n == 0),
+        8 => decode_count(value).is_ok_and(|c| c == 0),
+        _ => false,
+    };
+    if empty {
+        Decision::Remove
+    } else {
+        Decision::Keep
+    }
+}

