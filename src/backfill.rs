@@ -7,7 +7,7 @@
 use std::collections::BTreeMap;
 use std::fmt;
 use std::fs::{File, OpenOptions};
-use std::io::Write;
+use std::io::{Seek, SeekFrom, Write};
 use std::path::PathBuf;
 use std::time::Instant;
 
@@ -169,14 +169,19 @@ fn reject_line(
 /// Opens the rejects file, cutting off anything a crashed run wrote after its last commit.
 fn open_rejects(store: &Store) -> Result<File> {
     let path = rejects_path(store.dir());
-    let file = OpenOptions::new()
+    let mut file = OpenOptions::new()
         .create(true)
         .truncate(false)
         .read(true)
         .write(true)
         .open(&path)
         .with_context(|| format!("cannot open rejects file {}", path.display()))?;
-    file.set_len(store.progress().rejects_file_len)?;
+    // Only ever shorten: an operator may have deleted or emptied the file after handling it.
+    let committed = store.progress().rejects_file_len;
+    if file.metadata()?.len() > committed {
+        file.set_len(committed)?;
+    }
+    file.seek(SeekFrom::End(0))?;
     Ok(file)
 }
 

@@ -32,15 +32,32 @@ pub struct BatchSummary {
     pub max_center_gap: f64,
 }
 
+/// Dense ids of one kind of name (users or items) within a batch: known ones, and the
+/// new ones assigned from the store's counter.
+struct NameIds {
+    known: HashMap<String, u32>,
+    next: u32,
+    added: Vec<(u32, String)>,
+}
+
+impl NameIds {
+    fn id(&mut self, name: &str, stored: impl Fn(&str) -> Option<u32>) -> u32 {
+        if let Some(id) = stored(name).or_else(|| self.known.get(name).copied()) {
+            return id;
+        }
+        let id = self.next;
+        self.next += 1;
+        self.known.insert(name.to_string(), id);
+        self.added.push((id, name.to_string()));
+        id
+    }
+}
+
 /// Assigns dense ids to the names a batch uses, remembering the new ones.
 struct Interner<'a> {
     store: &'a Store,
-    next_user: u32,
-    next_item: u32,
-    users: HashMap<String, u32>,
-    items: HashMap<String, u32>,
-    new_users: Vec<(u32, String)>,
-    new_items: Vec<(u32, String)>,
+    users: NameIds,
+    items: NameIds,
 }
 
 impl<'a> Interner<'a> {
@@ -57,35 +74,26 @@ impl<'a> Interner<'a> {
             .collect();
         Ok(Interner {
             store,
-            next_user: p.next_user,
-            next_item: p.next_item,
-            users,
-            items: HashMap::new(),
-            new_users: Vec::new(),
-            new_items: Vec::new(),
+            users: NameIds {
+                known: users,
+                next: p.next_user,
+                added: Vec::new(),
+            },
+            items: NameIds {
+                known: HashMap::new(),
+                next: p.next_item,
+                added: Vec::new(),
+            },
         })
     }
 
     fn user(&mut self, name: &str) -> u32 {
-        if let Some(&id) = self.users.get(name) {
-            return id;
-        }
-        let id = self.next_user;
-        self.next_user += 1;
-        self.users.insert(name.to_string(), id);
-        self.new_users.push((id, name.to_string()));
-        id
+        self.users.id(name, |_| None)
     }
 
     fn item(&mut self, name: &str) -> u32 {
-        if let Some(id) = self.store.item_id(name).or_else(|| self.items.get(name).copied()) {
-            return id;
-        }
-        let id = self.next_item;
-        self.next_item += 1;
-        self.items.insert(name.to_string(), id);
-        self.new_items.push((id, name.to_string()));
-        id
+        let store = self.store;
+        self.items.id(name, |n| store.item_id(n))
     }
 
     fn action(&mut self, body: &EventBody) -> Action {
@@ -139,10 +147,8 @@ pub fn apply_and_commit(
         })
         .collect();
     let Interner {
-        next_user,
-        next_item,
-        new_users,
-        new_items,
+        users: user_ids_table,
+        items: item_ids_table,
         ..
     } = interner;
 
@@ -162,8 +168,8 @@ pub fn apply_and_commit(
 
     let mut progress = store.progress().clone();
     progress.next_seq = next_seq;
-    progress.next_user = next_user;
-    progress.next_item = next_item;
+    progress.next_user = user_ids_table.next;
+    progress.next_item = item_ids_table.next;
     progress.buyers += effects.buyers_delta;
     progress.recenterings += effects.recenterings;
     progress.pair_updates += effects.pair_updates;
@@ -187,8 +193,8 @@ pub fn apply_and_commit(
         .map(|u| (*u, users.get(u).expect("touched users are loaded")))
         .collect();
     store.commit(BatchCommit {
-        new_users,
-        new_items,
+        new_users: user_ids_table.added,
+        new_items: item_ids_table.added,
         users: changed_users,
         effects: &effects,
         progress,

@@ -112,6 +112,13 @@ fn json_lines_apply_only_valid_records() {
     let again = common::backfill(&mixed_store, &[&mixed, &worse], &config);
     assert_eq!(again.skipped_files.len(), 1);
     assert_eq!(again.rejects.values().sum::<u64>(), 2);
+    let all_rejects = std::fs::read_to_string(mixed_store.join("rejects.jsonl")).unwrap();
+    assert_eq!(
+        all_rejects.lines().count(),
+        expected_bad.len() + 2,
+        "rejects are appended, not overwritten"
+    );
+    assert!(all_rejects.starts_with(&rejects));
     let c = common::export_without_times(&mixed_store, &dir.path().join("c.jsonl"));
     assert_eq!(a, c);
 }

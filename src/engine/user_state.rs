@@ -75,6 +75,35 @@ fn most_recent<T, F: Fn(&T) -> (UnixNanos, u64)>(mut entries: Vec<T>, limit: usi
     entries
 }
 
+/// Stores `entry` in a list sorted by item unless the stored entry for the same item is
+/// newer (stale) or has the same time and the same effect (duplicate). `key` gives
+/// (item, time); ties in time otherwise go to the newcomer, the later source position.
+fn last_write_wins<E: Copy>(
+    entries: &mut Vec<E>,
+    entry: E,
+    key: impl Fn(&E) -> (u32, UnixNanos),
+    same_effect: impl Fn(&E, &E) -> bool,
+) -> Outcome {
+    let (item, at) = key(&entry);
+    match entries.binary_search_by_key(&item, |e| key(e).0) {
+        Ok(i) => {
+            let old_at = key(&entries[i]).1;
+            if at < old_at {
+                Outcome::Stale
+            } else if at == old_at && same_effect(&entries[i], &entry) {
+                Outcome::Duplicate
+            } else {
+                entries[i] = entry;
+                Outcome::Applied
+            }
+        }
+        Err(i) => {
+            entries.insert(i, entry);
+            Outcome::Applied
+        }
+    }
+}
+
 impl UserState {
     fn erased_since(&self, at: UnixNanos) -> bool {
         self.erased_at.is_some_and(|e| at <= e)
@@ -82,62 +111,34 @@ impl UserState {
 
     /// Applies a rating of `item`.
     pub fn rate(&mut self, item: u32, value: f64, at: UnixNanos, seq: u64) -> Outcome {
-        if self.erased_since(at) {
-            return Outcome::Stale;
-        }
-        let entry = RatingEntry {
+        self.set_rating(RatingEntry {
             item,
             value: Some(value),
             at,
             seq,
-        };
-        match self.ratings.binary_search_by_key(&item, |e| e.item) {
-            Ok(i) => {
-                let old = self.ratings[i];
-                if at < old.at {
-                    Outcome::Stale
-                } else if at == old.at && old.value == Some(value) {
-                    Outcome::Duplicate
-                } else {
-                    self.ratings[i] = entry;
-                    Outcome::Applied
-                }
-            }
-            Err(i) => {
-                self.ratings.insert(i, entry);
-                Outcome::Applied
-            }
-        }
+        })
     }
 
     /// Withdraws the rating of `item`, leaving a marker so older ratings stay stale.
     pub fn unrate(&mut self, item: u32, at: UnixNanos, seq: u64) -> Outcome {
-        if self.erased_since(at) {
-            return Outcome::Stale;
-        }
-        let marker = RatingEntry {
+        self.set_rating(RatingEntry {
             item,
             value: None,
             at,
             seq,
-        };
-        match self.ratings.binary_search_by_key(&item, |e| e.item) {
-            Ok(i) => {
-                let old = self.ratings[i];
-                if at < old.at {
-                    Outcome::Stale
-                } else if old.value.is_none() && at == old.at {
-                    Outcome::Duplicate
-                } else {
-                    self.ratings[i] = marker;
-                    Outcome::Applied
-                }
-            }
-            Err(i) => {
-                self.ratings.insert(i, marker);
-                Outcome::Applied
-            }
+        })
+    }
+
+    fn set_rating(&mut self, entry: RatingEntry) -> Outcome {
+        if self.erased_since(entry.at) {
+            return Outcome::Stale;
         }
+        last_write_wins(
+            &mut self.ratings,
+            entry,
+            |e| (e.item, e.at),
+            |a, b| a.value == b.value,
+        )
     }
 
     /// Records a purchase of `item`; a repeat purchase only refreshes its time.
@@ -145,24 +146,12 @@ impl UserState {
         if self.erased_since(at) {
             return Outcome::Stale;
         }
-        let entry = PurchaseEntry { item, at, seq };
-        match self.purchases.binary_search_by_key(&item, |e| e.item) {
-            Ok(i) => {
-                let old = self.purchases[i];
-                if at < old.at {
-                    Outcome::Stale
-                } else if at == old.at {
-                    Outcome::Duplicate
-                } else {
-                    self.purchases[i] = entry;
-                    Outcome::Applied
-                }
-            }
-            Err(i) => {
-                self.purchases.insert(i, entry);
-                Outcome::Applied
-            }
-        }
+        last_write_wins(
+            &mut self.purchases,
+            PurchaseEntry { item, at, seq },
+            |e| (e.item, e.at),
+            |_, _| true,
+        )
     }
 
     /// Forgets the whole history. The erasure time is kept, raised to the newest time

@@ -90,35 +90,34 @@ impl StatsFingerprint {
 
     /// One sentence per setting that differs between the stored and the asked-for values.
     pub fn differences(&self, asked: &StatsFingerprint) -> Vec<String> {
-        let mut out = Vec::new();
-        let mut check = |name: &str, stored: String, wanted: String| {
-            if stored != wanted {
-                out.push(format!(
-                    "similarity.{name}: the store was built with {stored}, the configuration says {wanted}"
-                ));
-            }
-        };
-        check(
-            "rating_min",
-            self.rating_min.to_string(),
-            asked.rating_min.to_string(),
-        );
-        check(
-            "rating_max",
-            self.rating_max.to_string(),
-            asked.rating_max.to_string(),
-        );
-        check(
-            "recenter_tolerance",
-            self.recenter_tolerance.to_string(),
-            asked.recenter_tolerance.to_string(),
-        );
-        check(
-            "max_items_per_user",
-            self.max_items_per_user.to_string(),
-            asked.max_items_per_user.to_string(),
-        );
-        out
+        [
+            (
+                "rating_min",
+                self.rating_min.to_string(),
+                asked.rating_min.to_string(),
+            ),
+            (
+                "rating_max",
+                self.rating_max.to_string(),
+                asked.rating_max.to_string(),
+            ),
+            (
+                "recenter_tolerance",
+                self.recenter_tolerance.to_string(),
+                asked.recenter_tolerance.to_string(),
+            ),
+            (
+                "max_items_per_user",
+                self.max_items_per_user.to_string(),
+                asked.max_items_per_user.to_string(),
+            ),
+        ]
+        .into_iter()
+        .filter(|(_, stored, wanted)| stored != wanted)
+        .map(|(name, stored, wanted)| {
+            format!("similarity.{name}: the store was built with {stored}, the configuration says {wanted}")
+        })
+        .collect()
     }
 }
 
