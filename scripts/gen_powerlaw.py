@@ -30,7 +30,7 @@ def main():
         f.write("user,item,value,at\n")
         for u in range(users):
             k = min(int(activity[u]), items // 2)
-            chosen = np.unique(rng.choice(items, size=k, p=popularity))
+            chosen = np.sort(rng.choice(items, size=k, replace=False, p=popularity))
             affinity = traits[chosen] @ taste[u] * 0.4
             values = np.clip(np.round((quality[chosen] + affinity + rng.normal(0, 0.6, size=len(chosen))) * 2) / 2, 1, 5)
             times = start + rng.integers(0, 180 * 86400, size=len(chosen))

@@ -63,8 +63,6 @@ pub struct BackfillSummary {
     pub users: u64,
     /// Items known to the store.
     pub items: u64,
-    /// RocksDB's estimate of distinct rating pairs.
-    pub rating_pairs_estimate: u64,
     /// Where rejected records were written.
     pub rejects_file: PathBuf,
 }
@@ -138,10 +136,15 @@ impl fmt::Display for BackfillSummary {
             "  lists rescored    {:>12}   ({} changed, {} now empty)",
             self.publication.rescored, self.publication.changed, self.publication.tombstones
         )?;
+        writeln!(
+            f,
+            "  rating pairs      {:>12}   (in the {} rescored rows; the whole store after a fresh backfill)",
+            self.publication.rating_pairs_seen, self.publication.rescored
+        )?;
         write!(
             f,
-            "  store now holds   {} users, {} items, ~{} rating pairs",
-            self.users, self.items, self.rating_pairs_estimate
+            "  store now holds   {} users, {} items",
+            self.users, self.items
         )
     }
 }
@@ -301,6 +304,5 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
     summary.publish_seconds = publish_started.elapsed().as_secs_f64();
     summary.users = u64::from(store.progress().next_user);
     summary.items = store.item_count() as u64;
-    summary.rating_pairs_estimate = store.estimated_rating_pair_keys()? / 2;
     Ok(summary)
 }

@@ -26,6 +26,9 @@ pub struct CycleReport {
     pub tombstones: u64,
     /// Earliest dirty time among the marks answered.
     pub oldest_dirty: Option<i64>,
+    /// Rating pairs seen in the rows rescored (each row entry counts half: a pair lies in
+    /// two rows). Exact for the whole store when every row was rescored.
+    pub rating_pairs_seen: u64,
 }
 
 impl CycleReport {
@@ -33,6 +36,7 @@ impl CycleReport {
         self.rescored += other.rescored;
         self.changed += other.changed;
         self.tombstones += other.tombstones;
+        self.rating_pairs_seen += other.rating_pairs_seen;
         self.oldest_dirty = match (self.oldest_dirty, other.oldest_dirty) {
             (Some(a), Some(b)) => Some(a.min(b)),
             (a, b) => a.or(b),
@@ -40,21 +44,51 @@ impl CycleReport {
     }
 }
 
+/// Position of every item id in name order, so ties can be broken by name with integer
+/// comparisons (one sort of the catalogue per cycle instead of string compares per row).
+pub struct NameOrder(Vec<u32>);
+
+impl NameOrder {
+    /// Ranks the store's current item names.
+    pub fn of(store: &Store) -> NameOrder {
+        let mut ids: Vec<u32> = (0..store.item_count() as u32).collect();
+        ids.sort_unstable_by(|a, b| store.item_name(*a).cmp(store.item_name(*b)));
+        let mut rank = vec![0u32; ids.len()];
+        for (position, id) in ids.into_iter().enumerate() {
+            rank[id as usize] = position as u32;
+        }
+        NameOrder(rank)
+    }
+
+    fn rank(&self, item: u32) -> u32 {
+        self.0.get(item as usize).copied().unwrap_or(u32::MAX)
+    }
+}
+
 /// Orders candidates best first: score descending, then item name ascending.
-fn rank(store: &Store, a: &StoredNeighbor, b: &StoredNeighbor) -> Ordering {
+fn rank(names: &NameOrder, a: &StoredNeighbor, b: &StoredNeighbor) -> Ordering {
     b.score
         .total_cmp(&a.score)
-        .then_with(|| store.item_name(a.item).cmp(store.item_name(b.item)))
+        .then_with(|| names.rank(a.item).cmp(&names.rank(b.item)))
 }
 
 /// Keeps the best `k` candidates, in rank order.
-fn top_k(store: &Store, mut candidates: Vec<StoredNeighbor>, k: usize) -> Vec<StoredNeighbor> {
+fn top_k(names: &NameOrder, mut candidates: Vec<StoredNeighbor>, k: usize) -> Vec<StoredNeighbor> {
     if candidates.len() > k {
-        candidates.select_nth_unstable_by(k - 1, |a, b| rank(store, a, b));
+        candidates.select_nth_unstable_by(k - 1, |a, b| rank(names, a, b));
         candidates.truncate(k);
     }
-    candidates.sort_unstable_by(|a, b| rank(store, a, b));
+    candidates.sort_unstable_by(|a, b| rank(names, a, b));
     candidates
+}
+
+/// A freshly computed list, with the size of the row it came from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ScoredRow {
+    /// The top-k, best first.
+    pub neighbors: Vec<StoredNeighbor>,
+    /// Other items in the row (rating signal), for counting pairs.
+    pub row_len: usize,
 }
 
 /// Computes the current list of one item from the store.
@@ -64,23 +98,27 @@ pub fn compute_list(
     item: u32,
     settings: &ListSettings,
     unavailable: &FxHashSet<u32>,
-) -> Result<Vec<StoredNeighbor>> {
-    if unavailable.contains(&item) {
-        return Ok(Vec::new());
-    }
-    let candidates = match signal {
-        Signal::Rating => store
-            .rating_row(item)?
-            .into_iter()
-            .filter(|(other, _)| *other != item && !unavailable.contains(other))
-            .filter_map(|(other, stats)| {
-                rating_list_score(&stats, settings).map(|score| StoredNeighbor {
-                    item: other,
-                    score,
-                    support: stats.n as u64,
+    names: &NameOrder,
+) -> Result<ScoredRow> {
+    let item_unavailable = unavailable.contains(&item);
+    let (candidates, row_len) = match signal {
+        Signal::Rating => {
+            let row = store.rating_row(item)?;
+            let row_len = row.iter().filter(|(other, _)| *other != item).count();
+            let candidates = row
+                .into_iter()
+                .filter(|(other, _)| !item_unavailable && *other != item && !unavailable.contains(other))
+                .filter_map(|(other, stats)| {
+                    rating_list_score(&stats, settings).map(|score| StoredNeighbor {
+                        item: other,
+                        score,
+                        support: stats.n as u64,
+                    })
                 })
-            })
-            .collect(),
+                .collect();
+            (candidates, row_len)
+        }
+        Signal::Purchase if item_unavailable => (Vec::new(), 0),
         Signal::Purchase => {
             let row = store.purchase_row(item)?;
             let own = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);
@@ -91,7 +129,7 @@ pub fn compute_list(
             let ids: Vec<u32> = others.iter().map(|(o, _)| *o).collect();
             let counts = store.buyer_counts(&ids)?;
             let total = store.progress().buyers;
-            others
+            let candidates = others
                 .into_iter()
                 .zip(counts)
                 .filter_map(|((other, co), n_other)| {
@@ -101,10 +139,14 @@ pub fn compute_list(
                         support: co as u64,
                     })
                 })
-                .collect()
+                .collect();
+            (candidates, 0)
         }
     };
-    Ok(top_k(store, candidates, settings.neighbors))
+    Ok(ScoredRow {
+        neighbors: top_k(names, candidates, settings.neighbors),
+        row_len,
+    })
 }
 
 /// Items to rescore for a signal: every marked item (whose mark the cycle clears), plus
@@ -134,7 +176,8 @@ fn compute_in_parallel(
     chunk: &[(Signal, u32, bool)],
     settings: &ListSettings,
     unavailable: &FxHashSet<u32>,
-) -> Result<Vec<Vec<StoredNeighbor>>> {
+    names: &NameOrder,
+) -> Result<Vec<ScoredRow>> {
     let workers = std::thread::available_parallelism()
         .map_or(1, |n| n.get())
         .min(chunk.len())
@@ -146,7 +189,9 @@ fn compute_in_parallel(
             .map(|part| {
                 scope.spawn(move || {
                     part.iter()
-                        .map(|&(signal, item, _)| compute_list(store, signal, item, settings, unavailable))
+                        .map(|&(signal, item, _)| {
+                            compute_list(store, signal, item, settings, unavailable, names)
+                        })
                         .collect::<Result<Vec<_>>>()
                 })
             })
@@ -168,6 +213,7 @@ pub fn publish_dirty(
     mut on_progress: impl FnMut(u64, u64),
 ) -> Result<CycleReport> {
     let unavailable = store.unavailable_items()?;
+    let names = NameOrder::of(store);
     let mut plan = Vec::new();
     let mut report = CycleReport::default();
     for signal in Signal::ALL {
@@ -183,8 +229,10 @@ pub fn publish_dirty(
     for chunk in plan.chunks(WRITE_CHUNK) {
         let mut writes = Vec::with_capacity(chunk.len());
         let mut part = CycleReport::default();
-        let lists = compute_in_parallel(store, chunk, settings, &unavailable)?;
-        for (&(signal, item, clears_mark), neighbors) in chunk.iter().zip(lists) {
+        let lists = compute_in_parallel(store, chunk, settings, &unavailable, &names)?;
+        for (&(signal, item, clears_mark), scored) in chunk.iter().zip(lists) {
+            part.rating_pairs_seen += scored.row_len as u64;
+            let neighbors = scored.neighbors;
             let previous = store.published(signal, item)?;
             let changed = match &previous {
                 Some(p) => p.neighbors != neighbors,
@@ -212,5 +260,7 @@ pub fn publish_dirty(
         report.absorb(part);
         on_progress(report.rescored, total);
     }
+    // Row entries were counted; each pair lies in two rows.
+    report.rating_pairs_seen /= 2;
     Ok(report)
 }

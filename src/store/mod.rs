@@ -703,14 +703,6 @@ impl Store {
         }
         self.write(wb)
     }
-
-    /// RocksDB's estimate of the keys in the rating pair family (two per pair).
-    pub fn estimated_rating_pair_keys(&self) -> Result<u64> {
-        Ok(self
-            .db
-            .property_int_value_cf(self.cf(CF_PAIRS), "rocksdb.estimate-num-keys")?
-            .unwrap_or(0))
-    }
 }
 
 /// Both orientations (row, other) of every unordered pair (lo, hi) in `deltas`, sorted
