@@ -53,7 +53,7 @@ pub struct BackfillSummary {
     pub recenterings: u64,
     /// Batches committed in this run.
     pub batches: u64,
-    /// Seconds spent reading and applying events.
+    /// Seconds spent opening the store, reading and applying events.
     pub apply_seconds: f64,
     /// Seconds spent publishing lists.
     pub publish_seconds: f64,
@@ -196,6 +196,7 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
         .map(|p| InputFile::describe(p))
         .collect::<Result<Vec<_>>>()?;
     let config = &request.config;
+    let started = Instant::now();
     let mut store = Store::open(&request.store_dir, config)?;
     let settings = EngineSettings {
         recenter_tolerance: config.similarity.recenter_tolerance,
@@ -209,7 +210,6 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
         ..BackfillSummary::default()
     };
 
-    let started = Instant::now();
     let pending_bytes: u64 = inputs
         .iter()
         .filter(|f| !store.progress().files.get(&f.canonical).is_some_and(|p| p.done))

@@ -156,6 +156,9 @@ pub struct Progress {
     pub pair_updates: u64,
     /// Position reached in each input file, by canonical path.
     pub files: BTreeMap<String, FilePosition>,
+    /// Whether any pair or buyer-count key was ever written (until then a put equals a
+    /// merge).
+    pub pair_keys_written: bool,
 }
 
 /// Item names by dense id and back, kept in memory: publication needs names for every
@@ -486,6 +489,9 @@ impl Store {
         }
         // Keys go into the batch in sorted order: RocksDB's skiplist memtable inserts
         // sorted runs far faster than random ones, and a bulk batch holds millions.
+        // Into a store that never held a pair, a put equals a merge and spares RocksDB a
+        // merge-operator call for every key on each later read, flush and compaction.
+        let fresh = !self.progress.pair_keys_written;
         let pairs = self.cf(CF_PAIRS);
         for (row, other, d) in oriented_sorted(&c.effects.rating_pairs) {
             let stats = if row < other {
@@ -503,11 +509,19 @@ impl Store {
                     s_other: d.s_lo,
                 }
             };
-            wb.merge_cf(pairs, codec::pair_row_key(row, other), stats.encode());
+            if fresh {
+                wb.put_cf(pairs, codec::pair_row_key(row, other), stats.encode());
+            } else {
+                wb.merge_cf(pairs, codec::pair_row_key(row, other), stats.encode());
+            }
         }
         let purchases = self.cf(CF_PURCHASE_PAIRS);
         for (row, other, d) in oriented_sorted(&c.effects.purchase_pairs) {
-            wb.merge_cf(purchases, codec::pair_row_key(row, other), d.to_le_bytes());
+            if fresh {
+                wb.put_cf(purchases, codec::pair_row_key(row, other), d.to_le_bytes());
+            } else {
+                wb.merge_cf(purchases, codec::pair_row_key(row, other), d.to_le_bytes());
+            }
         }
         let items = self.cf(CF_ITEMS);
         for (item, status) in &c.effects.statuses {
@@ -526,9 +540,12 @@ impl Store {
                 wb.merge_cf(dirty, codec::signal_item_key(signal, item), mark.encode());
             }
         }
-        wb.put_cf(self.cf(CF_META), META_PROGRESS, serde_json::to_vec(&c.progress)?);
+        let mut progress = c.progress;
+        progress.pair_keys_written |=
+            !c.effects.rating_pairs.is_empty() || !c.effects.purchase_pairs.is_empty();
+        wb.put_cf(self.cf(CF_META), META_PROGRESS, serde_json::to_vec(&progress)?);
         self.write(wb)?;
-        self.progress = c.progress;
+        self.progress = progress;
         for (id, name) in c.new_items {
             debug_assert_eq!(id as usize, self.items.names.len());
             self.items.ids.insert(name.clone(), id);
@@ -731,8 +748,13 @@ fn check_schema(db: &DB) -> Result<()> {
 
 impl Drop for Store {
     fn drop(&mut self) {
-        if let Some(dir) = &self.secondary_dir {
-            let _ = std::fs::remove_dir_all(dir);
+        match &self.secondary_dir {
+            Some(dir) => {
+                let _ = std::fs::remove_dir_all(dir);
+            }
+            // Everything committed is in the WAL; there is no need to wait for a flush or
+            // compaction in progress before closing.
+            None => self.db.cancel_all_background_work(false),
         }
     }
 }
