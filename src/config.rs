@@ -23,6 +23,8 @@ pub struct Config {
     pub input: InputConfig,
     /// How a backfill cuts its input into batches.
     pub backfill: BackfillConfig,
+    /// How recommendations are predicted from the lists.
+    pub recommend: RecommendConfig,
 }
 
 /// Which purchase-signal score ranks co-bought items.
@@ -104,6 +106,26 @@ pub struct BackfillConfig {
 impl Default for BackfillConfig {
     fn default() -> Self {
         BackfillConfig { batch_events: 50_000 }
+    }
+}
+
+/// `[recommend]`: prediction from published lists.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct RecommendConfig {
+    /// Exponent ρ applied to similarities in the weighted sum (case amplification;
+    /// 1 = off). The sign of a similarity is kept.
+    pub amplification: f64,
+    /// How many items a recommendation returns by default.
+    pub count: usize,
+}
+
+impl Default for RecommendConfig {
+    fn default() -> Self {
+        RecommendConfig {
+            amplification: 1.0,
+            count: 10,
+        }
     }
 }
 
@@ -193,6 +215,12 @@ impl Config {
         }
         if s.neighbors == 0 {
             bail!("similarity.neighbors must be at least 1");
+        }
+        if !(self.recommend.amplification.is_finite() && self.recommend.amplification > 0.0) {
+            bail!(
+                "recommend.amplification must be a finite number > 0, got {}",
+                self.recommend.amplification
+            );
         }
         if self.input.max_id_bytes == 0 {
             bail!("input.max_id_bytes must be at least 1");

@@ -10,9 +10,12 @@ use clap::{Parser, Subcommand};
 use simtide::backfill::{run_backfill, BackfillRequest};
 use simtide::config::Config;
 use simtide::demo::run_demo;
+use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
 use simtide::export::export_lists;
 use simtide::inspect::{explain_pair, neighbors_table};
+use simtide::recommend::recommend_user;
 use simtide::record::NeighborRecord;
+use simtide::report::write_report;
 use simtide::score::ListSettings;
 use simtide::signal::Signal;
 use simtide::store::Store;
@@ -89,6 +92,51 @@ enum Command {
         /// Output file; standard output when absent.
         #[arg(long, value_name = "FILE")]
         output: Option<PathBuf>,
+    },
+    /// Recommend items for a user from the published rating lists.
+    Recommend {
+        /// Store directory (may be held open by a running service).
+        #[arg(long, value_name = "DIR")]
+        store: PathBuf,
+        /// The user id.
+        #[arg(long)]
+        user: String,
+        /// How many items (default: recommend.count).
+        #[arg(long)]
+        count: Option<usize>,
+        /// Configuration whose [recommend] settings to apply.
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
+    },
+    /// Evaluate settings offline on held-out ratings and write a report.
+    Evaluate {
+        /// Event file; repeat for several.
+        #[arg(long, value_name = "PATH", required = true)]
+        input: Vec<PathBuf>,
+        /// Base configuration.
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
+        /// A swept key of [similarity] or [recommend], e.g. neighbors=10,20,30; repeatable.
+        #[arg(long, value_name = "KEY=V1,V2")]
+        sweep: Vec<String>,
+        /// Hold out this most recent fraction of each user's ratings.
+        #[arg(long, default_value_t = 0.2, conflicts_with = "cutoff")]
+        holdout: f64,
+        /// Hold out every rating at or after this time (RFC 3339) instead.
+        #[arg(long, value_name = "TIME")]
+        cutoff: Option<String>,
+        /// Length of the lists scored for precision and recall.
+        #[arg(long, default_value_t = 10)]
+        top_n: usize,
+        /// Held-out ratings at or above this are relevant for precision and recall.
+        #[arg(long, default_value_t = 4.0)]
+        relevant: f64,
+        /// Directory for report.html, results.csv and the plots.
+        #[arg(long, value_name = "DIR")]
+        report: PathBuf,
+        /// Do not draw a progress display.
+        #[arg(long)]
+        quiet: bool,
     },
 }
 
@@ -167,6 +215,98 @@ fn run(cli: Cli) -> Result<()> {
                 None => export_lists(&store, stdout, false)?,
             };
             tracing::debug!(written, "export finished");
+        }
+        Command::Recommend {
+            store,
+            user,
+            count,
+            config,
+        } => {
+            let config = Config::load(config.as_deref())?;
+            let store = Store::open_read_only(&store)?;
+            let recs = recommend_user(
+                &store,
+                &user,
+                count.unwrap_or(config.recommend.count),
+                config.recommend.amplification,
+            )?;
+            if recs.is_empty() {
+                writeln!(
+                    stdout,
+                    "no recommendations for {user:?}: no rating history, or no neighbors to draw on"
+                )?;
+            }
+            writeln!(
+                stdout,
+                "  {:>4}  {:<36} {:>9}  basis",
+                "rank", "item", "predicted"
+            )?;
+            for (rank, r) in recs.iter().enumerate() {
+                let basis = if r.from_neighbors {
+                    "neighbors"
+                } else {
+                    "user mean"
+                };
+                writeln!(
+                    stdout,
+                    "  {:>4}  {:<36} {:>9.3}  {basis}",
+                    rank + 1,
+                    store.item_name(r.item),
+                    r.predicted
+                )?;
+            }
+        }
+        Command::Evaluate {
+            input,
+            config,
+            sweep,
+            holdout,
+            cutoff,
+            top_n,
+            relevant,
+            report,
+            quiet,
+        } => {
+            let config = Config::load(config.as_deref())?;
+            let split = match cutoff {
+                Some(text) => Split::Cutoff(
+                    simtide::timefmt::parse_event_time(&text)
+                        .with_context(|| format!("--cutoff {text:?}: expected RFC 3339"))?,
+                ),
+                None if holdout > 0.0 && holdout < 1.0 => Split::LastFraction(holdout),
+                None => anyhow::bail!("--holdout must lie strictly between 0 and 1, got {holdout}"),
+            };
+            let request = EvaluationRequest {
+                inputs: input,
+                config: config.clone(),
+                sweeps: sweep.iter().map(|s| Sweep::parse(s)).collect::<Result<_>>()?,
+                split,
+                top_n,
+                relevant_rating: relevant,
+                show_progress: !quiet,
+            };
+            let work = report.join("training-stores");
+            let result = evaluate(&request, &work);
+            std::fs::remove_dir_all(&work).ok();
+            let result = result?;
+            let command: Vec<String> = std::env::args().collect();
+            let html = write_report(&report, &result, &config, &command.join(" "))?;
+            for p in &result.points {
+                let setting: Vec<String> = p.setting.iter().map(|(k, v)| format!("{k}={v}")).collect();
+                writeln!(
+                    stdout,
+                    "{:<32} MAE {:.4}  RMSE {:.4}  predicted {:.3}  P@{top_n} {:.4}  R@{top_n} {:.4}  coverage {:.3}",
+                    setting.join(" "), p.mae, p.rmse, p.predicted_share, p.precision, p.recall, p.coverage
+                )?;
+            }
+            writeln!(
+                stdout,
+                "{} held out, {} for training, {:.1}s; report: {}",
+                result.test_ratings,
+                result.train_ratings,
+                result.seconds,
+                html.display()
+            )?;
         }
     }
     Ok(())

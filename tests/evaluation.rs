@@ -1,0 +1,194 @@
+//! Prediction, recommendation and the evaluation report.
+
+mod common;
+
+use std::collections::HashMap;
+use std::path::Path;
+
+use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
+use simtide::recommend::{predict, recommend_user, NeighborIndex};
+use simtide::report::write_report;
+use simtide::store::Store;
+
+/// A small matrix written for this test (users u1–u6, items A–E, ratings 1–5):
+///
+/// |    | A | B | C | D | E | mean |
+/// |----|---|---|---|---|---|------|
+/// | u1 | 5 | 4 | 1 | 2 |   | 3    |
+/// | u2 | 4 | 5 | 2 |   | 1 | 3    |
+/// | u3 | 2 | 1 |   | 5 | 4 | 3    |
+/// | u4 |   | 2 | 5 | 4 | 5 | 4    |
+/// | u5 | 5 |   | 2 | 1 | 2 | 2.5  |
+/// | u6 |   |   | 4 | 2 |   | 3    |
+fn hand_matrix(path: &Path) {
+    let rows: &[(&str, &[(&str, f64)])] = &[
+        ("u1", &[("A", 5.0), ("B", 4.0), ("C", 1.0), ("D", 2.0)]),
+        ("u2", &[("A", 4.0), ("B", 5.0), ("C", 2.0), ("E", 1.0)]),
+        ("u3", &[("A", 2.0), ("B", 1.0), ("D", 5.0), ("E", 4.0)]),
+        ("u4", &[("B", 2.0), ("C", 5.0), ("D", 4.0), ("E", 5.0)]),
+        ("u5", &[("A", 5.0), ("C", 2.0), ("D", 1.0), ("E", 2.0)]),
+        ("u6", &[("C", 4.0), ("D", 2.0)]),
+    ];
+    let mut lines = String::from("user,item,value,at\n");
+    let mut t = 1_775_000_000;
+    for (user, ratings) in rows {
+        for (item, v) in *ratings {
+            t += 60;
+            lines.push_str(&format!("{user},{item},{v},{t}\n"));
+        }
+    }
+    std::fs::write(path, lines).unwrap();
+}
+
+#[test]
+fn hand_worked_similarity_and_prediction() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("hand.csv");
+    hand_matrix(&csv);
+    let store_dir = dir.path().join("store");
+    common::backfill(&store_dir, &[&csv], &common::config(0.0, 0, 1, 100));
+    let store = Store::open_read_only(&store_dir).unwrap();
+    let id = |name: &str| store.item_id(name).unwrap();
+    let score = |a: &str, b: &str| {
+        let s = simtide::score::RatingSums::from_stats(&store.rating_pair(id(a), id(b)).unwrap().unwrap());
+        (s, s.adjusted_cosine().unwrap())
+    };
+    // C and E, co-rated by u2, u4, u5: d_C = (2−3, 5−4, 2−2.5) = (−1, 1, −0.5),
+    // d_E = (1−3, 5−4, 2−2.5) = (−2, 1, −0.5).
+    // dot = 2 + 1 + 0.25 = 3.25; Σd_C² = 1 + 1 + 0.25 = 2.25; Σd_E² = 4 + 1 + 0.25 = 5.25;
+    // sim = 3.25 / (1.5 × √5.25) = 3.25 / 3.436931771 = 0.945610857689300.
+    let (ce, sim_ce) = score("C", "E");
+    assert_eq!(ce.n, 3);
+    assert!(
+        (ce.dot - 3.25).abs() < 1e-12 && (ce.norm_a - 2.25).abs() < 1e-12 && (ce.norm_b - 5.25).abs() < 1e-12
+    );
+    assert!((sim_ce - 0.945_610_857_689_300).abs() < 1e-12, "{sim_ce}");
+    // D and E, co-rated by u3, u4, u5: d_D = (2, 0, −1.5), d_E = (1, 1, −0.5):
+    // dot = 2 + 0 + 0.75 = 2.75; Σd_D² = 6.25; Σd_E² = 2.25; sim = 2.75 / (2.5 × 1.5) = 0.7333….
+    let (_, sim_de) = score("D", "E");
+    assert!((sim_de - 2.75 / 3.75).abs() < 1e-12, "{sim_de}");
+    // u6 rated C = 4 and D = 2; E's positive neighbors among them are C and D (its other
+    // pairs are negative and not published), so
+    // p(u6, E) = (0.9456108577 × 4 + 0.7333333333 × 2) / (0.9456108577 + 0.7333333333)
+    //          = 5.2491100974 / 1.6789441910 = 3.126435128392606.
+    let index = NeighborIndex::from_store(&store).unwrap();
+    let u6: HashMap<u32, f64> = [(id("C"), 4.0), (id("D"), 2.0)].into_iter().collect();
+    let p = predict(&index, &u6, id("E"), 1.0).unwrap();
+    assert!((p - 3.126_435_128_392_606).abs() < 1e-12, "{p}");
+    // Amplification ρ = 2 weighs the stronger neighbor more: closer to C's rating 4.
+    let p2 = predict(&index, &u6, id("E"), 2.0).unwrap();
+    assert!(p2 > p && p2 < 4.0);
+
+    let recs = recommend_user(&store, "u6", 10, 1.0).unwrap();
+    assert_eq!(recs.first().map(|r| store.item_name(r.item)), Some("E"));
+    assert!(
+        recs.iter()
+            .all(|r| !["C", "D"].contains(&store.item_name(r.item))),
+        "never what u6 has"
+    );
+    assert!(
+        recommend_user(&store, "nobody", 10, 1.0).unwrap().is_empty(),
+        "nothing for a stranger"
+    );
+}
+
+#[test]
+fn recommend_skips_owned_and_unavailable_items() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("hand.csv");
+    hand_matrix(&csv);
+    let status = dir.path().join("status.jsonl");
+    std::fs::write(
+        &status,
+        "{\"kind\":\"item_status\",\"item\":\"E\",\"available\":false,\"at\":1775999999}\n\
+         {\"kind\":\"purchase\",\"user\":\"u2\",\"item\":\"D\",\"at\":1775999999}\n",
+    )
+    .unwrap();
+    let store_dir = dir.path().join("store");
+    common::backfill(&store_dir, &[&csv, &status], &common::config(0.0, 0, 1, 100));
+    let store = Store::open_read_only(&store_dir).unwrap();
+    for user in ["u1", "u2", "u3", "u4", "u5", "u6"] {
+        let state = store.user_state(user).unwrap().unwrap();
+        for r in recommend_user(&store, user, 10, 1.0).unwrap() {
+            let name = store.item_name(r.item);
+            assert_ne!(name, "E", "{user}: E is unavailable");
+            assert!(
+                state.ratings.iter().all(|x| x.item != r.item),
+                "{user} already rated {name}"
+            );
+            assert!(
+                state.purchases.iter().all(|x| x.item != r.item),
+                "{user} already bought {name}"
+            );
+        }
+    }
+}
+
+fn run(dir: &Path, csv: &Path, report: &str) -> simtide::evaluate::EvaluationResult {
+    let request = EvaluationRequest {
+        inputs: vec![csv.to_path_buf()],
+        config: common::config(0.05, 500, 3, 50_000),
+        sweeps: vec![Sweep::parse("neighbors=5,30").unwrap()],
+        split: Split::LastFraction(0.2),
+        top_n: 10,
+        relevant_rating: 4.0,
+        show_progress: false,
+    };
+    let result = evaluate(&request, &dir.join(format!("{report}-work"))).unwrap();
+    write_report(
+        &dir.join(report),
+        &result,
+        &request.config,
+        "simtide evaluate (test)",
+    )
+    .unwrap();
+    result
+}
+
+#[test]
+fn movielens_sweep_is_deterministic_and_reports_every_setting() {
+    // MovieLens 100K (GroupLens, recbole==1.2.1 wheel; see tests/common), per-user 80/20
+    // split by time.
+    let dir = tempfile::tempdir().unwrap();
+    let csv = common::movielens_csv();
+    let a = run(dir.path(), &csv, "a");
+    let b = run(dir.path(), &csv, "b");
+    assert_eq!(a.points, b.points, "same input, same numbers");
+    assert_eq!(a.test_ratings + a.train_ratings, 100_000);
+    assert!(
+        a.test_ratings > 19_000 && a.test_ratings < 20_000,
+        "{}",
+        a.test_ratings
+    );
+    let (five, thirty) = (&a.points[0], &a.points[1]);
+    eprintln!("neighbors=5: {five:?}\nneighbors=30: {thirty:?}");
+    assert!(
+        thirty.mae <= five.mae,
+        "a larger neighborhood must not predict worse"
+    );
+    assert!(thirty.predicted_share > five.predicted_share);
+
+    let csv_text = std::fs::read_to_string(dir.path().join("a/results.csv")).unwrap();
+    let rows: Vec<&str> = csv_text.lines().collect();
+    assert_eq!(
+        rows[0],
+        "neighbors,mae,rmse,predicted_share,precision_at_n,recall_at_n,coverage"
+    );
+    assert_eq!(rows.len(), 3);
+    assert!(rows[1].starts_with("5,") && rows[2].starts_with("30,"));
+    let html = std::fs::read_to_string(dir.path().join("a/report.html")).unwrap();
+    let plots: Vec<&str> = html
+        .split("<img src=\"")
+        .skip(1)
+        .map(|s| s.split('"').next().unwrap())
+        .collect();
+    assert_eq!(plots.len(), 6, "one plot per metric");
+    for p in plots {
+        let svg = std::fs::read_to_string(dir.path().join("a").join(p)).unwrap();
+        assert!(
+            svg.starts_with("<svg") && svg.contains("<circle"),
+            "{p} is a plot with points"
+        );
+    }
+    assert!(html.contains("class=\"best\"") && html.contains("simtide evaluate (test)"));
+}
