@@ -109,6 +109,18 @@ impl Default for BackfillConfig {
     }
 }
 
+/// Which of an item's neighbors a prediction draws on.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum Neighborhood {
+    /// The user's items that appear in the item's published list (what serving has).
+    #[default]
+    List,
+    /// The `similarity.neighbors` most similar items among those the user rated, scored
+    /// from the stored pair sums (the neighborhood of Sarwar et al. 2001).
+    Rated,
+}
+
 /// `[recommend]`: prediction from published lists.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
@@ -118,6 +130,8 @@ pub struct RecommendConfig {
     pub amplification: f64,
     /// How many items a recommendation returns by default.
     pub count: usize,
+    /// Which neighbors predictions draw on.
+    pub neighborhood: Neighborhood,
 }
 
 impl Default for RecommendConfig {
@@ -125,6 +139,7 @@ impl Default for RecommendConfig {
         RecommendConfig {
             amplification: 1.0,
             count: 10,
+            neighborhood: Neighborhood::List,
         }
     }
 }

@@ -9,14 +9,14 @@ use std::time::Instant;
 use anyhow::{bail, Context, Result};
 use rustc_hash::FxHashSet;
 
-use crate::config::Config;
+use crate::config::{Config, Neighborhood};
 use crate::decode::Limits;
 use crate::engine::EngineSettings;
 use crate::event::{Event, EventBody, UnixNanos};
 use crate::meter::Meter;
 use crate::pipeline::apply_and_commit;
 use crate::publish::{compute_list, NameOrder};
-use crate::recommend::{predict, recommend_for, NeighborIndex};
+use crate::recommend::{recommend_for, user_history, NeighborIndex, Predictor, ScoreTable, UserView};
 use crate::score::ListSettings;
 use crate::signal::Signal;
 use crate::source::{Decoded, InputFile, RecordReader};
@@ -29,6 +29,22 @@ pub enum Split {
     LastFraction(f64),
     /// Every rating at or after this time.
     Cutoff(UnixNanos),
+    /// A pseudo-random fraction of each user's ratings, the same for the same seed (the
+    /// protocol of published figures that do not split by time).
+    Random {
+        /// Share held out.
+        fraction: f64,
+        /// Seed of the selection.
+        seed: u64,
+    },
+}
+
+/// SplitMix64: a fixed, well-mixed hash of an event's position for random splits.
+fn mix(mut x: u64) -> u64 {
+    x = x.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    x = (x ^ (x >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    x = (x ^ (x >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    x ^ (x >> 31)
 }
 
 /// One swept configuration key and its values, e.g. `neighbors=10,20,30`.
@@ -135,6 +151,29 @@ fn read_events(inputs: &[PathBuf], limits: Limits) -> Result<Vec<Event>> {
     Ok(events)
 }
 
+/// Indices of the last `fraction` of each user's ratings, ordered by `order(at, index)`
+/// then input position.
+fn last_of_each_user(
+    events: &[Event],
+    fraction: f64,
+    order: impl Fn(UnixNanos, usize) -> i64,
+) -> FxHashSet<usize> {
+    let mut by_user: BTreeMap<&str, Vec<(i64, usize)>> = BTreeMap::new();
+    for (i, e) in events.iter().enumerate() {
+        if let EventBody::Rating { user, .. } = &e.body {
+            by_user.entry(user).or_default().push((order(e.at, i), i));
+        }
+    }
+    by_user
+        .into_values()
+        .flat_map(|mut v| {
+            v.sort_unstable();
+            let keep = v.len() - (v.len() as f64 * fraction).floor() as usize;
+            v.into_iter().skip(keep).map(|(_, i)| i)
+        })
+        .collect()
+}
+
 /// Splits ratings into training events and held-out ratings; every other event kind
 /// stays in training.
 fn split_events(events: Vec<Event>, split: Split) -> (Vec<Event>, Vec<HeldOut>) {
@@ -145,21 +184,9 @@ fn split_events(events: Vec<Event>, split: Split) -> (Vec<Event>, Vec<HeldOut>) 
             .filter(|(_, e)| matches!(e.body, EventBody::Rating { .. }) && e.at >= t)
             .map(|(i, _)| i)
             .collect(),
-        Split::LastFraction(f) => {
-            let mut by_user: BTreeMap<&str, Vec<(UnixNanos, usize)>> = BTreeMap::new();
-            for (i, e) in events.iter().enumerate() {
-                if let EventBody::Rating { user, .. } = &e.body {
-                    by_user.entry(user).or_default().push((e.at, i));
-                }
-            }
-            by_user
-                .into_values()
-                .flat_map(|mut v| {
-                    v.sort_unstable();
-                    let keep = v.len() - (v.len() as f64 * f).floor() as usize;
-                    v.into_iter().skip(keep).map(|(_, i)| i)
-                })
-                .collect()
+        Split::LastFraction(f) => last_of_each_user(&events, f, |at, _| at),
+        Split::Random { fraction, seed } => {
+            last_of_each_user(&events, fraction, |_, i| mix(seed ^ i as u64) as i64)
         }
     };
     let mut train = Vec::with_capacity(events.len());
@@ -249,21 +276,11 @@ fn histories(store: &Store, test: &[HeldOut]) -> Result<Histories> {
         if out.contains_key(&h.user) {
             continue;
         }
-        let (ratings, owned) = match store.user_state(&h.user)? {
+        let history = match store.user_state(&h.user)? {
             None => (HashMap::new(), FxHashSet::default()),
-            Some(state) => {
-                let active = state.active_ratings(store.fingerprint().max_items_per_user);
-                let owned = state
-                    .ratings
-                    .iter()
-                    .filter(|r| r.value.is_some())
-                    .map(|r| r.item)
-                    .chain(state.purchases.iter().map(|p| p.item))
-                    .collect();
-                (active.into_iter().collect(), owned)
-            }
+            Some(state) => user_history(&state, store.fingerprint().max_items_per_user),
         };
-        out.insert(h.user.clone(), (ratings, owned));
+        out.insert(h.user.clone(), history);
     }
     Ok(out)
 }
@@ -274,8 +291,21 @@ fn score_point(
     histories: &Histories,
     test: &[HeldOut],
     request: &EvaluationRequest,
-    rho: f64,
+    config: &Config,
 ) -> Result<PointResult> {
+    let rho = config.recommend.amplification;
+    let table = match config.recommend.neighborhood {
+        Neighborhood::List => ScoreTable::default(),
+        Neighborhood::Rated => ScoreTable::for_items(
+            store,
+            0..store.item_count() as u32,
+            &ListSettings::from_config(config),
+        )?,
+    };
+    let predictor = match config.recommend.neighborhood {
+        Neighborhood::List => Predictor::List(index),
+        Neighborhood::Rated => Predictor::Rated(&table),
+    };
     let (mut abs, mut sq, mut predicted) = (0.0, 0.0, 0u64);
     let mut relevant: BTreeMap<&str, FxHashSet<u32>> = BTreeMap::new();
     for h in test {
@@ -283,7 +313,7 @@ fn score_point(
             continue;
         };
         let (ratings, _) = &histories[&h.user];
-        if let Some(p) = predict(index, ratings, item, rho) {
+        if let Some(p) = predictor.predict(ratings, item, rho) {
             abs += (p - h.value).abs();
             sq += (p - h.value).powi(2);
             predicted += 1;
@@ -296,7 +326,8 @@ fn score_point(
     let (mut precision, mut recall, mut recommended) = (0.0, 0.0, FxHashSet::default());
     for (user, wanted) in &relevant {
         let (ratings, owned) = &histories[*user];
-        let recs = recommend_for(index, ratings, owned, &unavailable, request.top_n, rho);
+        let view = UserView { ratings, owned };
+        let recs = recommend_for(index, &predictor, &view, &unavailable, request.top_n, rho)?;
         let hits = recs.iter().filter(|r| wanted.contains(&r.item)).count() as f64;
         precision += hits / request.top_n as f64;
         recall += hits / wanted.len() as f64;
@@ -344,14 +375,7 @@ pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<Evaluati
         };
         let (_, store, hist) = &stores[position];
         let index = lists_for(store, &ListSettings::from_config(&config))?;
-        let scored = score_point(
-            store,
-            &index,
-            hist,
-            &test,
-            request,
-            config.recommend.amplification,
-        )?;
+        let scored = score_point(store, &index, hist, &test, request, &config)?;
         results.push(PointResult { setting, ..scored });
         meter.update(done as u64 + 1, "settings");
     }

@@ -122,6 +122,10 @@ enum Command {
         /// Hold out this most recent fraction of each user's ratings.
         #[arg(long, default_value_t = 0.2, conflicts_with = "cutoff")]
         holdout: f64,
+        /// Hold out a seeded pseudo-random fraction (--holdout) of each user's ratings
+        /// instead of the most recent ones.
+        #[arg(long, value_name = "SEED", conflicts_with = "cutoff")]
+        random_split: Option<u64>,
         /// Hold out every rating at or after this time (RFC 3339) instead.
         #[arg(long, value_name = "TIME")]
         cutoff: Option<String>,
@@ -224,12 +228,7 @@ fn run(cli: Cli) -> Result<()> {
         } => {
             let config = Config::load(config.as_deref())?;
             let store = Store::open_read_only(&store)?;
-            let recs = recommend_user(
-                &store,
-                &user,
-                count.unwrap_or(config.recommend.count),
-                config.recommend.amplification,
-            )?;
+            let recs = recommend_user(&store, &user, count.unwrap_or(config.recommend.count), &config)?;
             if recs.is_empty() {
                 writeln!(
                     stdout,
@@ -261,6 +260,7 @@ fn run(cli: Cli) -> Result<()> {
             config,
             sweep,
             holdout,
+            random_split,
             cutoff,
             top_n,
             relevant,
@@ -273,8 +273,16 @@ fn run(cli: Cli) -> Result<()> {
                     simtide::timefmt::parse_event_time(&text)
                         .with_context(|| format!("--cutoff {text:?}: expected RFC 3339"))?,
                 ),
-                None if holdout > 0.0 && holdout < 1.0 => Split::LastFraction(holdout),
-                None => anyhow::bail!("--holdout must lie strictly between 0 and 1, got {holdout}"),
+                None if !(holdout > 0.0 && holdout < 1.0) => {
+                    anyhow::bail!("--holdout must lie strictly between 0 and 1, got {holdout}")
+                }
+                None => match random_split {
+                    Some(seed) => Split::Random {
+                        fraction: holdout,
+                        seed,
+                    },
+                    None => Split::LastFraction(holdout),
+                },
             };
             let request = EvaluationRequest {
                 inputs: input,

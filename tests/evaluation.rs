@@ -5,8 +5,9 @@ mod common;
 use std::collections::HashMap;
 use std::path::Path;
 
+use simtide::config::{Config, Neighborhood};
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
-use simtide::recommend::{predict, recommend_user, NeighborIndex};
+use simtide::recommend::{recommend_user, NeighborIndex, Predictor};
 use simtide::report::write_report;
 use simtide::store::Store;
 
@@ -73,13 +74,15 @@ fn hand_worked_similarity_and_prediction() {
     //          = 5.2491100974 / 1.6789441910 = 3.126435128392606.
     let index = NeighborIndex::from_store(&store).unwrap();
     let u6: HashMap<u32, f64> = [(id("C"), 4.0), (id("D"), 2.0)].into_iter().collect();
-    let p = predict(&index, &u6, id("E"), 1.0).unwrap();
+    let lists = Predictor::List(&index);
+    let p = lists.predict(&u6, id("E"), 1.0).unwrap();
     assert!((p - 3.126_435_128_392_606).abs() < 1e-12, "{p}");
     // Amplification ρ = 2 weighs the stronger neighbor more: closer to C's rating 4.
-    let p2 = predict(&index, &u6, id("E"), 2.0).unwrap();
+    let p2 = lists.predict(&u6, id("E"), 2.0).unwrap();
     assert!(p2 > p && p2 < 4.0);
 
-    let recs = recommend_user(&store, "u6", 10, 1.0).unwrap();
+    let config = Config::default();
+    let recs = recommend_user(&store, "u6", 10, &config).unwrap();
     assert_eq!(recs.first().map(|r| store.item_name(r.item)), Some("E"));
     assert!(
         recs.iter()
@@ -87,7 +90,7 @@ fn hand_worked_similarity_and_prediction() {
         "never what u6 has"
     );
     assert!(
-        recommend_user(&store, "nobody", 10, 1.0).unwrap().is_empty(),
+        recommend_user(&store, "nobody", 10, &config).unwrap().is_empty(),
         "nothing for a stranger"
     );
 }
@@ -107,9 +110,14 @@ fn recommend_skips_owned_and_unavailable_items() {
     let store_dir = dir.path().join("store");
     common::backfill(&store_dir, &[&csv, &status], &common::config(0.0, 0, 1, 100));
     let store = Store::open_read_only(&store_dir).unwrap();
-    for user in ["u1", "u2", "u3", "u4", "u5", "u6"] {
+    let mut configs = [Config::default(), Config::default()];
+    configs[1].recommend.neighborhood = Neighborhood::Rated;
+    for (user, config) in ["u1", "u2", "u3", "u4", "u5", "u6"]
+        .iter()
+        .flat_map(|u| configs.iter().map(move |c| (*u, c)))
+    {
         let state = store.user_state(user).unwrap().unwrap();
-        for r in recommend_user(&store, user, 10, 1.0).unwrap() {
+        for r in recommend_user(&store, user, 10, config).unwrap() {
             let name = store.item_name(r.item);
             assert_ne!(name, "E", "{user}: E is unavailable");
             assert!(
@@ -124,12 +132,19 @@ fn recommend_skips_owned_and_unavailable_items() {
     }
 }
 
-fn run(dir: &Path, csv: &Path, report: &str) -> simtide::evaluate::EvaluationResult {
+fn run(
+    dir: &Path,
+    csv: &Path,
+    report: &str,
+    config: Config,
+    split: Split,
+    sweep: &str,
+) -> simtide::evaluate::EvaluationResult {
     let request = EvaluationRequest {
         inputs: vec![csv.to_path_buf()],
-        config: common::config(0.05, 500, 3, 50_000),
-        sweeps: vec![Sweep::parse("neighbors=5,30").unwrap()],
-        split: Split::LastFraction(0.2),
+        config,
+        sweeps: vec![Sweep::parse(sweep).unwrap()],
+        split,
         top_n: 10,
         relevant_rating: 4.0,
         show_progress: false,
@@ -148,11 +163,12 @@ fn run(dir: &Path, csv: &Path, report: &str) -> simtide::evaluate::EvaluationRes
 #[test]
 fn movielens_sweep_is_deterministic_and_reports_every_setting() {
     // MovieLens 100K (GroupLens, recbole==1.2.1 wheel; see tests/common), per-user 80/20
-    // split by time.
+    // split by time, neighbors from the published lists.
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_csv();
-    let a = run(dir.path(), &csv, "a");
-    let b = run(dir.path(), &csv, "b");
+    let split = Split::LastFraction(0.2);
+    let a = run(dir.path(), &csv, "a", Config::default(), split, "neighbors=1,30");
+    let b = run(dir.path(), &csv, "b", Config::default(), split, "neighbors=1,30");
     assert_eq!(a.points, b.points, "same input, same numbers");
     assert_eq!(a.test_ratings + a.train_ratings, 100_000);
     assert!(
@@ -160,13 +176,13 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
         "{}",
         a.test_ratings
     );
-    let (five, thirty) = (&a.points[0], &a.points[1]);
-    eprintln!("neighbors=5: {five:?}\nneighbors=30: {thirty:?}");
+    let (one, thirty) = (&a.points[0], &a.points[1]);
+    eprintln!("neighbors=1: {one:?}\nneighbors=30: {thirty:?}");
     assert!(
-        thirty.mae <= five.mae,
-        "a larger neighborhood must not predict worse"
+        thirty.mae <= one.mae,
+        "a larger neighborhood must not predict worse than one neighbor"
     );
-    assert!(thirty.predicted_share > five.predicted_share);
+    assert!(thirty.predicted_share > one.predicted_share);
 
     let csv_text = std::fs::read_to_string(dir.path().join("a/results.csv")).unwrap();
     let rows: Vec<&str> = csv_text.lines().collect();
@@ -175,7 +191,7 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
         "neighbors,mae,rmse,predicted_share,precision_at_n,recall_at_n,coverage"
     );
     assert_eq!(rows.len(), 3);
-    assert!(rows[1].starts_with("5,") && rows[2].starts_with("30,"));
+    assert!(rows[1].starts_with("1,") && rows[2].starts_with("30,"));
     let html = std::fs::read_to_string(dir.path().join("a/report.html")).unwrap();
     let plots: Vec<&str> = html
         .split("<img src=\"")
@@ -191,4 +207,51 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
         );
     }
     assert!(html.contains("class=\"best\"") && html.contains("simtide evaluate (test)"));
+}
+
+/// Published accuracy, from memory and so marked: item-based adjusted cosine with the
+/// weighted sum reaches an MAE of about 0.72–0.76 on MovieLens 100K (Sarwar et al., WWW
+/// 2001), with a random 80/20 split and each prediction drawing on the most similar of
+/// the items the user rated. That protocol is `Split::Random` with the `rated`
+/// neighborhood; the band is widened to 0.70–0.80 because the figure is remembered.
+/// A split by time is harder (later tastes drift): it is checked only against a looser
+/// guard, measured at 0.824 when this test was written.
+#[test]
+fn movielens_mae_matches_published_accuracy() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = common::movielens_csv();
+    let mut config = Config::default();
+    config.recommend.neighborhood = Neighborhood::Rated;
+    let random = run(
+        dir.path(),
+        &csv,
+        "random",
+        config.clone(),
+        Split::Random {
+            fraction: 0.2,
+            seed: 7,
+        },
+        "neighbors=30",
+    );
+    let mae = random.points[0].mae;
+    eprintln!("random 80/20, 30 rated neighbors: {:?}", random.points[0]);
+    assert!((0.70..=0.80).contains(&mae), "MAE {mae} outside 0.70–0.80");
+    assert!(random.points[0].predicted_share > 0.95);
+    let by_time = run(
+        dir.path(),
+        &csv,
+        "time",
+        config,
+        Split::LastFraction(0.2),
+        "neighbors=30",
+    );
+    let mae = by_time.points[0].mae;
+    eprintln!(
+        "per-user last 20% by time, 30 rated neighbors: {:?}",
+        by_time.points[0]
+    );
+    assert!(
+        (0.70..=0.90).contains(&mae),
+        "MAE {mae} outside the time-split guard 0.70–0.90"
+    );
 }

@@ -620,6 +620,20 @@ impl Store {
         }
     }
 
+    /// The sums of the pairs (a, b) for every b in `others`, in order.
+    pub fn rating_pairs_of(&self, a: u32, others: &[u32]) -> Result<Vec<Option<RatingPairStats>>> {
+        let cf = self.cf(CF_PAIRS);
+        let keys: Vec<[u8; 8]> = others.iter().map(|&b| codec::pair_row_key(a, b)).collect();
+        self.db
+            .multi_get_cf(keys.iter().map(|k| (cf, k.as_slice())))
+            .into_iter()
+            .map(|r| match r? {
+                Some(v) => Ok(Some(RatingPairStats::decode(&v)?).filter(|s| s.n != 0)),
+                None => Ok(None),
+            })
+            .collect()
+    }
+
     /// Co-buyers of a pair (a, b), or a's buyers when a = b.
     pub fn purchase_pair(&self, a: u32, b: u32) -> Result<i64> {
         match self
