@@ -24,8 +24,6 @@ pub struct CycleReport {
     pub changed: u64,
     /// Of those, lists that became empty.
     pub tombstones: u64,
-    /// Earliest dirty time among the marks answered.
-    pub oldest_dirty: Option<i64>,
     /// Rating pairs seen in the rows rescored (each row entry counts half: a pair lies in
     /// two rows). Exact for the whole store when every row was rescored.
     pub rating_pairs_seen: u64,
@@ -37,10 +35,6 @@ impl CycleReport {
         self.changed += other.changed;
         self.tombstones += other.tombstones;
         self.rating_pairs_seen += other.rating_pairs_seen;
-        self.oldest_dirty = match (self.oldest_dirty, other.oldest_dirty) {
-            (Some(a), Some(b)) => Some(a.min(b)),
-            (a, b) => a.or(b),
-        };
     }
 }
 
@@ -151,9 +145,8 @@ pub fn compute_list(
 
 /// Items to rescore for a signal: every marked item (whose mark the cycle clears), plus
 /// the row members of items marked "with neighbors".
-fn targets(store: &Store, signal: Signal) -> Result<(BTreeMap<u32, bool>, Option<i64>)> {
+fn targets(store: &Store, signal: Signal) -> Result<BTreeMap<u32, bool>> {
     let marks = store.dirty_marks(signal)?;
-    let oldest = marks.iter().map(|(_, m)| m.since).min();
     let mut out: BTreeMap<u32, bool> = marks.iter().map(|(item, _)| (*item, true)).collect();
     for (item, mark) in &marks {
         if !mark.with_neighbors {
@@ -167,7 +160,7 @@ fn targets(store: &Store, signal: Signal) -> Result<(BTreeMap<u32, bool>, Option
             out.entry(m).or_insert(false);
         }
     }
-    Ok((out, oldest))
+    Ok(out)
 }
 
 /// Computes the lists of a chunk on every core: rows are independent reads.
@@ -217,11 +210,7 @@ pub fn publish_dirty(
     let mut plan = Vec::new();
     let mut report = CycleReport::default();
     for signal in Signal::ALL {
-        let (items, oldest) = targets(store, signal)?;
-        report.absorb(CycleReport {
-            oldest_dirty: oldest,
-            ..CycleReport::default()
-        });
+        let items = targets(store, signal)?;
         plan.extend(items.into_iter().map(|(item, clears)| (signal, item, clears)));
     }
     let total = plan.len() as u64;
