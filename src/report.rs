@@ -18,37 +18,21 @@ struct Metric {
     lower_is_better: bool,
 }
 
+const fn metric(name: &'static str, value: fn(&PointResult) -> f64, lower_is_better: bool) -> Metric {
+    Metric {
+        name,
+        value,
+        lower_is_better,
+    }
+}
+
 const METRICS: [Metric; 6] = [
-    Metric {
-        name: "mae",
-        value: |p| p.mae,
-        lower_is_better: true,
-    },
-    Metric {
-        name: "rmse",
-        value: |p| p.rmse,
-        lower_is_better: true,
-    },
-    Metric {
-        name: "predicted_share",
-        value: |p| p.predicted_share,
-        lower_is_better: false,
-    },
-    Metric {
-        name: "precision_at_n",
-        value: |p| p.precision,
-        lower_is_better: false,
-    },
-    Metric {
-        name: "recall_at_n",
-        value: |p| p.recall,
-        lower_is_better: false,
-    },
-    Metric {
-        name: "coverage",
-        value: |p| p.coverage,
-        lower_is_better: false,
-    },
+    metric("mae", |p| p.mae, true),
+    metric("rmse", |p| p.rmse, true),
+    metric("predicted_share", |p| p.predicted_share, false),
+    metric("precision_at_n", |p| p.precision, false),
+    metric("recall_at_n", |p| p.recall, false),
+    metric("coverage", |p| p.coverage, false),
 ];
 
 fn best_index(points: &[PointResult], m: &Metric) -> Option<usize> {
