@@ -509,19 +509,23 @@ impl Store {
                     s_other: d.s_lo,
                 }
             };
-            if fresh {
-                wb.put_cf(pairs, codec::pair_row_key(row, other), stats.encode());
-            } else {
-                wb.merge_cf(pairs, codec::pair_row_key(row, other), stats.encode());
-            }
+            add_pair(
+                &mut wb,
+                pairs,
+                fresh,
+                codec::pair_row_key(row, other),
+                &stats.encode(),
+            );
         }
         let purchases = self.cf(CF_PURCHASE_PAIRS);
         for (row, other, d) in oriented_sorted(&c.effects.purchase_pairs) {
-            if fresh {
-                wb.put_cf(purchases, codec::pair_row_key(row, other), d.to_le_bytes());
-            } else {
-                wb.merge_cf(purchases, codec::pair_row_key(row, other), d.to_le_bytes());
-            }
+            add_pair(
+                &mut wb,
+                purchases,
+                fresh,
+                codec::pair_row_key(row, other),
+                &d.to_le_bytes(),
+            );
         }
         let items = self.cf(CF_ITEMS);
         for (item, status) in &c.effects.statuses {
@@ -614,10 +618,7 @@ impl Store {
 
     /// The sums of one rating pair, oriented (a, b); `None` when no user rated both.
     pub fn rating_pair(&self, a: u32, b: u32) -> Result<Option<RatingPairStats>> {
-        match self.db.get_cf(self.cf(CF_PAIRS), codec::pair_row_key(a, b))? {
-            Some(v) => Ok(Some(RatingPairStats::decode(&v)?).filter(|s| s.n != 0)),
-            None => Ok(None),
-        }
+        Ok(self.rating_pairs_of(a, &[b])?.pop().flatten())
     }
 
     /// The sums of the pairs (a, b) for every b in `others`, in order.
@@ -733,6 +734,16 @@ impl Store {
             }
         }
         self.write(wb)
+    }
+}
+
+/// Writes a pair delta: as a plain value into a store that never held a pair (where a put
+/// equals a merge), as a merge operand otherwise.
+fn add_pair(wb: &mut WriteBatch, cf: &ColumnFamily, fresh: bool, key: [u8; 8], value: &[u8]) {
+    if fresh {
+        wb.put_cf(cf, key, value);
+    } else {
+        wb.merge_cf(cf, key, value);
     }
 }
 
