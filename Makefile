@@ -25,3 +25,4 @@ lint: setup-build
 bench: setup-test
 	$(CARGO) build --release --locked
 	bash scripts/bench.sh
+	$(CARGO) bench --locked --bench live_throughput

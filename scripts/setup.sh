@@ -2,7 +2,8 @@
 # Installs what building and testing simtide needs on a fresh Debian machine (as root),
 # skipping every step that is already done, so repeat runs take seconds.
 #   scripts/setup.sh build   C/C++ toolchain and libclang for the RocksDB bindings
-#   scripts/setup.sh test    the above, plus Python numpy/scipy oracles and MovieLens 100K
+#   scripts/setup.sh test    the above, plus Python numpy/scipy oracles, MovieLens 100K and
+#                            the tansu Kafka-protocol broker for the live-service tests
 set -euo pipefail
 
 CACHE=${SIMTIDE_CACHE:-/var/cache/simtide}
@@ -11,7 +12,7 @@ DATA="$CACHE/datasets"
 mode=${1:-build}
 
 need_apt=()
-for pkg in clang libclang-dev g++ make python3 python3-venv; do
+for pkg in clang libclang-dev g++ make pkg-config libssl-dev zlib1g-dev python3 python3-venv; do
   dpkg -s "$pkg" >/dev/null 2>&1 || need_apt+=("$pkg")
 done
 if [ ${#need_apt[@]} -gt 0 ]; then
@@ -38,4 +39,13 @@ if [ ! -s "$DATA/ml-100k.csv" ]; then
   "$VENV/bin/python" "$(dirname "$0")/movielens_to_csv.py" "$wheels"/recbole-1.2.1-*.whl "$DATA/ml-100k.csv"
   rm -rf "$wheels"
 fi
-echo "setup: ready (python: $VENV/bin/python, data: $DATA)"
+# The Kafka-protocol broker the live tests run against: tansu 0.6.0 from crates.io, with
+# its sqlite storage engine. Built once into the cache (about 15 minutes on 2 cores).
+TOOLS="$CACHE/tools"
+if [ ! -x "$TOOLS/bin/tansu" ]; then
+  echo "setup: building the tansu 0.6.0 broker into $TOOLS (first time only)"
+  CARGO_TARGET_DIR="$CACHE/tansu-target" cargo install tansu --version 0.6.0 \
+    --features dynostore,libsql --locked --root "$TOOLS" --quiet
+  rm -rf "$CACHE/tansu-target"
+fi
+echo "setup: ready (python: $VENV/bin/python, data: $DATA, broker: $TOOLS/bin/tansu)"

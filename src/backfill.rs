@@ -78,7 +78,7 @@ impl BackfillSummary {
         self.apply_seconds + self.publish_seconds
     }
 
-    fn absorb(&mut self, batch: &BatchSummary) {
+    pub(crate) fn absorb(&mut self, batch: &BatchSummary) {
         for (&(kind, outcome), &n) in &batch.outcomes {
             *self
                 .events
@@ -170,7 +170,7 @@ fn reject_line(
 }
 
 /// Opens the rejects file, cutting off anything a crashed run wrote after its last commit.
-fn open_rejects(store: &Store) -> Result<File> {
+pub(crate) fn open_rejects(store: &Store) -> Result<File> {
     let path = rejects_path(store.dir());
     let mut file = OpenOptions::new()
         .create(true)
@@ -198,10 +198,7 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
     let config = &request.config;
     let started = Instant::now();
     let mut store = Store::open(&request.store_dir, config)?;
-    let settings = EngineSettings {
-        recenter_tolerance: config.similarity.recenter_tolerance,
-        max_items_per_user: config.similarity.max_items_per_user,
-    };
+    let settings = EngineSettings::from_config(config);
     let limits = Limits::from_config(config);
     let batch_len = config.backfill.batch_events;
     let mut rejects_file = open_rejects(&store)?;
@@ -292,11 +289,21 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
     }
     meter.finish();
     summary.apply_seconds = started.elapsed().as_secs_f64();
+    publish_at_end(&store, request, &mut summary)?;
+    Ok(summary)
+}
 
+/// The publication that ends every backfill: every dirty list rescored and stored, with a
+/// progress display, and the store's totals for the summary.
+pub(crate) fn publish_at_end(
+    store: &Store,
+    request: &BackfillRequest,
+    summary: &mut BackfillSummary,
+) -> Result<()> {
     let publish_started = Instant::now();
-    let list_settings = ListSettings::from_config(config);
+    let list_settings = ListSettings::from_config(&request.config);
     let mut meter = Meter::new("publish", 0, false, request.show_progress);
-    summary.publication = publish_dirty(&store, &list_settings, now_nanos(), |done, total| {
+    summary.publication = publish_dirty(store, &list_settings, now_nanos(), |done, total| {
         meter.set_total(total);
         meter.update(done, "lists");
     })?;
@@ -304,5 +311,5 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
     summary.publish_seconds = publish_started.elapsed().as_secs_f64();
     summary.users = u64::from(store.progress().next_user);
     summary.items = store.item_count() as u64;
-    Ok(summary)
+    Ok(())
 }

@@ -1,48 +1,263 @@
-//! `simtide demo`: the embedded default. Replays the bundled Fernwick Garden Supply events
-//! (invented; see demo-data/generate.py) into a fresh store and prints a few lists.
+//! `simtide demo`: the embedded default, with no broker to install. It starts librdkafka's
+//! in-process mock cluster, replays the bundled Fernwick Garden Supply events (invented;
+//! see demo-data/generate.py) into its input topic at a visible pace, runs the real live
+//! service against it, prints a few neighbor lists each time they change on the output
+//! topic, then stops the service the way SIGTERM does and prints a summary.
 
-use std::io::Write;
+use std::collections::BTreeMap;
+use std::io::{BufRead, BufReader, Write};
 use std::path::PathBuf;
+use std::sync::mpsc;
+use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
+use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::mocking::MockCluster;
+use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
+use rdkafka::{ClientConfig, Message, Offset, TopicPartitionList};
 
-use crate::backfill::{run_backfill, BackfillRequest};
 use crate::config::Config;
 use crate::inspect::neighbors_table;
+use crate::live::{run_service, RunOptions};
+use crate::record::NeighborRecord;
 use crate::signal::Signal;
 use crate::store::Store;
 
 /// The bundled demo events, gzip-compressed JSON lines.
 const DEMO_EVENTS: &[u8] = include_bytes!("../demo-data/garden-events.jsonl.gz");
 
-/// Items whose lists the demo prints: one per customer interest, plus a discontinued one.
-const SHOWCASE: [&str; 4] = [
+/// Items whose list changes the demo prints as they happen.
+const SHOWCASE: [&str; 3] = [
     "heirloom-tomato-seeds",
     "drip-irrigation-kit",
     "bypass-pruning-shears",
-    "terracotta-pot-30cm",
 ];
+
+/// Two malformed messages mixed into the stream, to show the dead-letter path.
+const MALFORMED: [&str; 2] = [
+    r#"{"kind":"rating","user":"fw-0042","item":"compost-bin-300l","value":9,"at":"2026-04-02T10:00:00Z"}"#,
+    r#"{"kind":"rating","user":"fw-0042","item":"compost-bin-300l","value":4,"at":"yesterday"}"#,
+];
+
+/// How long the replay takes: slow enough to watch lists change, short enough to finish
+/// well inside a minute.
+const REPLAY_SECONDS: f64 = 12.0;
+
+/// The demo's topics.
+const INPUT: &str = "fernwick-events";
+const INPUT_PARTITIONS: i32 = 3;
+const OUTPUT: &str = "fernwick-neighbors";
+
+fn demo_config(brokers: &str, store_dir: &std::path::Path) -> Result<Config> {
+    let toml = format!(
+        r#"
+[store]
+dir = "{store}"
+[kafka]
+brokers = "{brokers}"
+group = "fernwick-simtide"
+input_topic = "{INPUT}"
+output_topic = "{OUTPUT}"
+purchase_output_topic = "fernwick-bought-together"
+dead_letter_topic = "fernwick-events-dead-letter"
+create_topics = false
+[live]
+batch_wait = "100ms"
+[publish]
+interval = "1s"
+[http]
+listen = "127.0.0.1:0"
+"#,
+        store = store_dir.display()
+    );
+    Config::from_toml_and_env(&toml, "demo configuration", std::iter::empty())
+}
+
+/// The demo events as (key, value) messages, malformed ones included.
+fn demo_messages() -> Result<Vec<(String, String)>> {
+    let reader = BufReader::new(flate2::read::GzDecoder::new(DEMO_EVENTS));
+    let mut out = Vec::new();
+    for line in reader.lines() {
+        let line = line.context("the bundled demo events are unreadable")?;
+        let value: serde_json::Value = serde_json::from_str(&line)?;
+        let key = value
+            .get("user")
+            .or_else(|| value.get("item"))
+            .and_then(|v| v.as_str())
+            .unwrap_or_default()
+            .to_string();
+        out.push((key, line));
+    }
+    for (i, bad) in MALFORMED.iter().enumerate() {
+        out.insert((i + 1) * out.len() / 3, ("fw-0042".to_string(), bad.to_string()));
+    }
+    Ok(out)
+}
+
+/// Replays the messages into the input topic at an even pace.
+fn replay(brokers: &str, messages: Vec<(String, String)>) -> Result<usize> {
+    let producer: ThreadedProducer<DefaultProducerContext> = ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("enable.idempotence", "true")
+        .create()?;
+    let started = Instant::now();
+    let per_message = REPLAY_SECONDS / messages.len() as f64;
+    for (i, (key, value)) in messages.iter().enumerate() {
+        let due = Duration::from_secs_f64(per_message * i as f64);
+        if let Some(wait) = due.checked_sub(started.elapsed()) {
+            std::thread::sleep(wait);
+        }
+        let mut record = BaseRecord::to(INPUT).key(key.as_str()).payload(value.as_str());
+        while let Err((_, back)) = producer.send(record) {
+            record = back;
+            std::thread::sleep(Duration::from_millis(5));
+        }
+    }
+    producer.flush(Duration::from_secs(10))?;
+    Ok(messages.len())
+}
+
+/// Follows the output topic, sending a line whenever a showcase item's list changes.
+fn follow_output(brokers: &str, lines: mpsc::Sender<String>, stop: mpsc::Receiver<()>) -> Result<()> {
+    let consumer: BaseConsumer = ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("group.id", "fernwick-reader")
+        .create()?;
+    let mut tpl = TopicPartitionList::new();
+    tpl.add_partition_offset(OUTPUT, 0, Offset::Beginning)?;
+    consumer.assign(&tpl)?;
+    let started = Instant::now();
+    let mut last: BTreeMap<String, Vec<String>> = BTreeMap::new();
+    while stop.try_recv().is_err() {
+        let Some(message) = consumer.poll(Duration::from_millis(200)) else {
+            continue;
+        };
+        let message = message?;
+        let Some(value) = message.payload() else {
+            continue;
+        };
+        let record: NeighborRecord = serde_json::from_slice(value)?;
+        if !SHOWCASE.contains(&record.item.as_str()) {
+            continue;
+        }
+        let top: Vec<String> = record
+            .neighbors
+            .iter()
+            .take(3)
+            .map(|n| format!("{} {:.2}", n.item, n.score))
+            .collect();
+        if last.get(&record.item) != Some(&top) {
+            let _ = lines.send(format!(
+                "  [{:>5.1}s] {} v{}: {}",
+                started.elapsed().as_secs_f64(),
+                record.item,
+                record.version,
+                top.join(", ")
+            ));
+            last.insert(record.item.clone(), top);
+        }
+    }
+    Ok(())
+}
+
+/// Reads the service group's committed offsets, which it commits after every store write.
+struct GroupWatcher {
+    client: BaseConsumer,
+}
+
+impl GroupWatcher {
+    fn new(brokers: &str, group: &str) -> Result<GroupWatcher> {
+        let client = ClientConfig::new()
+            .set("bootstrap.servers", brokers)
+            .set("group.id", group)
+            .create()?;
+        Ok(GroupWatcher { client })
+    }
+
+    /// Whether every input partition's committed offset reached its end.
+    fn caught_up(&self) -> Result<bool> {
+        let timeout = Duration::from_secs(5);
+        let mut tpl = TopicPartitionList::new();
+        for p in 0..INPUT_PARTITIONS {
+            tpl.add_partition(INPUT, p);
+        }
+        let committed = self.client.committed_offsets(tpl, timeout)?;
+        for element in committed.elements() {
+            let (_, high) = self
+                .client
+                .fetch_watermarks(INPUT, element.partition(), timeout)?;
+            if high > 0 && element.offset() != Offset::Offset(high) {
+                return Ok(false);
+            }
+        }
+        Ok(true)
+    }
+}
 
 /// Runs the demo; the store is kept at `keep` when given, otherwise removed afterwards.
 pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
     let work = std::env::temp_dir().join(format!("simtide-demo-{}", std::process::id()));
     std::fs::create_dir_all(&work)?;
-    let input = work.join("garden-events.jsonl.gz");
-    std::fs::write(&input, DEMO_EVENTS).context("cannot write the demo events")?;
     let store_dir = keep.clone().unwrap_or_else(|| work.join("store"));
+    let mock = MockCluster::new(1).context("cannot start the in-process Kafka mock cluster")?;
+    let brokers = mock.bootstrap_servers();
+    mock.create_topic(INPUT, INPUT_PARTITIONS, 1)?;
+    for topic in [OUTPUT, "fernwick-bought-together", "fernwick-events-dead-letter"] {
+        mock.create_topic(topic, 1, 1)?;
+    }
+    let config = demo_config(&brokers, &store_dir)?;
+    let messages = demo_messages()?;
     writeln!(
         out,
-        "Fernwick Garden Supply (an invented shop): replaying {} into {}",
-        input.display(),
+        "Fernwick Garden Supply (an invented shop): {} events replayed over {REPLAY_SECONDS:.0}s into an in-process Kafka mock cluster ({brokers}),\nconsumed live by simtide into {}; list changes as they reach the output topic:",
+        messages.len(),
         store_dir.display()
     )?;
-    let summary = run_backfill(&BackfillRequest {
-        store_dir: store_dir.clone(),
-        inputs: vec![input],
-        config: Config::load(None)?,
-        show_progress: true,
-    })?;
-    writeln!(out, "{summary}\n")?;
+
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?;
+    let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+    let service = {
+        let config = config.clone();
+        runtime.spawn(async move { run_service(&config, RunOptions::default(), stop_rx).await })
+    };
+    let (line_tx, line_rx) = mpsc::channel();
+    let (reader_stop_tx, reader_stop_rx) = mpsc::channel();
+    let reader = {
+        let brokers = brokers.clone();
+        std::thread::spawn(move || follow_output(&brokers, line_tx, reader_stop_rx))
+    };
+    let producer = {
+        let brokers = brokers.clone();
+        std::thread::spawn(move || replay(&brokers, messages))
+    };
+    while !producer.is_finished() {
+        while let Ok(line) = line_rx.recv_timeout(Duration::from_millis(100)) {
+            writeln!(out, "{line}")?;
+        }
+    }
+    let produced = producer.join().expect("replay thread does not panic")?;
+    // Wait until the service has committed everything, then stop it the way SIGTERM
+    // does: it commits and publishes what is pending before leaving.
+    let watcher = GroupWatcher::new(&brokers, &config.kafka.group)?;
+    let give_up = Instant::now() + Duration::from_secs(20);
+    while !watcher.caught_up()? && Instant::now() < give_up {
+        if let Ok(line) = line_rx.recv_timeout(Duration::from_millis(200)) {
+            writeln!(out, "{line}")?;
+        }
+    }
+    drop(watcher);
+    let _ = stop_tx.send(true);
+    let report = runtime.block_on(service)??;
+    while let Ok(line) = line_rx.recv_timeout(Duration::from_millis(800)) {
+        writeln!(out, "{line}")?;
+    }
+    let _ = reader_stop_tx.send(());
+    reader.join().expect("reader thread does not panic")?;
+    writeln!(out, "\n{produced} messages produced.\n{report}\n")?;
+
     let store = Store::open_read_only(&store_dir)?;
     for item in SHOWCASE {
         write!(out, "{}", neighbors_table(&store, item, Some(Signal::Rating))?)?;
@@ -58,6 +273,7 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
         "\n'reel-mower-blades' was discontinued (item_status available=false): it appears in no list."
     )?;
     drop(store);
+    drop(mock);
     if keep.is_none() {
         std::fs::remove_dir_all(&work)?;
     } else {

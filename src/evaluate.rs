@@ -246,10 +246,7 @@ fn with_override(config: &Config, key: &str, value: &str) -> Result<Config> {
 
 fn train_store(dir: &Path, config: &Config, events: &[Event]) -> Result<Store> {
     let mut store = Store::open(dir, config)?;
-    let settings = EngineSettings {
-        recenter_tolerance: config.similarity.recenter_tolerance,
-        max_items_per_user: config.similarity.max_items_per_user,
-    };
+    let settings = EngineSettings::from_config(config);
     for batch in events.chunks(config.backfill.batch_events as usize) {
         apply_and_commit(&mut store, &settings, batch, &BTreeMap::new(), |_| {})?;
     }

@@ -8,17 +8,21 @@ use anyhow::{Context, Result};
 use clap::{Parser, Subcommand};
 
 use simtide::backfill::{run_backfill, BackfillRequest};
+use simtide::config::secrets::{masked, Scrubber};
 use simtide::config::Config;
 use simtide::demo::run_demo;
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
 use simtide::export::export_lists;
 use simtide::inspect::{explain_pair, neighbors_table};
+use simtide::live::handover::{parse_offsets, StartRequest};
+use simtide::live::{run_service, RunOptions, RunReport};
 use simtide::recommend::recommend_user;
 use simtide::record::NeighborRecord;
 use simtide::report::write_report;
 use simtide::score::ListSettings;
 use simtide::signal::Signal;
 use simtide::store::Store;
+use simtide::topic_backfill::run_topic_backfill;
 
 #[derive(Parser)]
 #[command(
@@ -33,14 +37,24 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Replay historical event files (JSON lines or CSV, plain or .gz) into a store.
+    /// Replay historical event files (JSON lines or CSV, plain or .gz), or the input
+    /// topic itself, into a store.
     Backfill {
         /// Store directory; created if missing, continued if it exists.
         #[arg(long, value_name = "DIR")]
         store: PathBuf,
         /// Input file; repeat for several, applied in the order given.
-        #[arg(long, value_name = "PATH", required = true)]
+        #[arg(
+            long,
+            value_name = "PATH",
+            required_unless_present = "from_topic",
+            conflicts_with = "from_topic"
+        )]
         input: Vec<PathBuf>,
+        /// Replay kafka.input_topic from the store's positions (or the earliest offsets)
+        /// to its current end, then exit; `run` continues from there.
+        #[arg(long)]
+        from_topic: bool,
         /// TOML configuration file (defaults apply without one).
         #[arg(long, value_name = "FILE")]
         config: Option<PathBuf>,
@@ -50,6 +64,28 @@ enum Command {
         /// Do not draw a progress display.
         #[arg(long)]
         quiet: bool,
+    },
+    /// Run the live service: consume the input topic, keep the store, publish lists.
+    Run {
+        /// TOML configuration file.
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+        /// Store directory instead of store.dir.
+        #[arg(long, value_name = "DIR")]
+        store: Option<PathBuf>,
+        /// For a store that never consumed the topic (e.g. after a file backfill): start
+        /// each partition at its first message at or after this time (RFC 3339).
+        #[arg(long, value_name = "TIME", conflicts_with = "start_offsets")]
+        start_at: Option<String>,
+        /// For a store that never consumed the topic: start at these offsets
+        /// (PARTITION:OFFSET,…; unlisted partitions start at their beginning).
+        #[arg(long, value_name = "LIST")]
+        start_offsets: Option<String>,
+    },
+    /// Validate a configuration and print the effective settings, secrets masked.
+    CheckConfig {
+        /// TOML configuration file (defaults and environment only without one).
+        file: Option<PathBuf>,
     },
     /// Replay the bundled garden-shop demo events and print some neighbor lists.
     Demo {
@@ -148,12 +184,39 @@ fn parse_signal(text: &str) -> Result<Signal, String> {
     Signal::parse(text).ok_or_else(|| format!("unknown signal {text:?}: expected rating or purchase"))
 }
 
+/// Runs the live service on a multi-threaded runtime until SIGTERM or SIGINT.
+fn serve(config: &Config, options: RunOptions) -> Result<RunReport> {
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?;
+    runtime.block_on(async {
+        let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+        tokio::spawn(async move {
+            let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+                Ok(s) => s,
+                Err(e) => {
+                    tracing::error!(error = %e, "cannot listen for SIGTERM");
+                    return;
+                }
+            };
+            tokio::select! {
+                _ = term.recv() => tracing::info!("SIGTERM received"),
+                _ = tokio::signal::ctrl_c() => tracing::info!("SIGINT received"),
+            }
+            let _ = stop_tx.send(true);
+        });
+        run_service(config, options, stop_rx).await
+    })
+}
+
 fn run(cli: Cli) -> Result<()> {
     let stdout = &mut std::io::stdout().lock();
     match cli.command {
         Command::Backfill {
             store,
             input,
+            from_topic,
             config,
             batch_events,
             quiet,
@@ -163,13 +226,51 @@ fn run(cli: Cli) -> Result<()> {
                 config.backfill.batch_events = n;
                 config.validate()?;
             }
-            let summary = run_backfill(&BackfillRequest {
+            let request = BackfillRequest {
                 store_dir: store,
                 inputs: input,
                 config,
                 show_progress: !quiet,
-            })?;
+            };
+            let summary = if from_topic {
+                run_topic_backfill(&request)?
+            } else {
+                run_backfill(&request)?
+            };
             writeln!(stdout, "{summary}")?;
+        }
+        Command::Run {
+            config,
+            store,
+            start_at,
+            start_offsets,
+        } => {
+            let config = Config::load(Some(&config))?;
+            let start = match (start_at, start_offsets) {
+                (Some(text), _) => Some(StartRequest::AtTime(
+                    simtide::timefmt::parse_event_time(&text)
+                        .with_context(|| format!("--start-at {text:?}: expected RFC 3339"))?
+                        / 1_000_000,
+                )),
+                (None, Some(text)) => Some(StartRequest::Offsets(parse_offsets(&text)?)),
+                (None, None) => None,
+            };
+            let report = serve(
+                &config,
+                RunOptions {
+                    store_dir: store,
+                    start,
+                },
+            )?;
+            writeln!(stdout, "{report}")?;
+        }
+        Command::CheckConfig { file } => {
+            let config = Config::load(file.as_deref())?;
+            writeln!(
+                stdout,
+                "# effective configuration (file, then SIMTIDE_* environment; secrets masked)"
+            )?;
+            write!(stdout, "{}", toml::to_string(&masked(&config))?)?;
         }
         Command::Demo { store } => run_demo(store, stdout)?,
         Command::Neighbors {
@@ -321,17 +422,31 @@ fn run(cli: Cli) -> Result<()> {
 }
 
 fn main() -> ExitCode {
+    let cli = Cli::parse();
+    // The demo's own output is the show; its service logs only warnings unless asked.
+    let default_level = if matches!(cli.command, Command::Demo { .. }) {
+        "warn"
+    } else {
+        "info"
+    };
     tracing_subscriber::fmt()
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_env("SIMTIDE_LOG")
-                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info")),
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default_level)),
         )
         .with_writer(std::io::stderr)
         .init();
-    match run(Cli::parse()) {
+    let config_path = match &cli.command {
+        Command::Run { config, .. } => Some(config.clone()),
+        Command::CheckConfig { file } => file.clone(),
+        Command::Backfill { config, .. } => config.clone(),
+        _ => None,
+    };
+    match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
-            eprintln!("error: {e:#}");
+            let scrubber = Scrubber::of_sources(config_path.as_deref(), std::env::vars());
+            eprintln!("error: {}", scrubber.scrub(&format!("{e:#}")));
             ExitCode::FAILURE
         }
     }

@@ -10,7 +10,7 @@ use rustc_hash::FxHashSet;
 use crate::score::{purchase_list_score, rating_list_score, ListSettings};
 use crate::signal::Signal;
 use crate::store::codec::{PublishedList, StoredNeighbor};
-use crate::store::{PublicationWrite, Store};
+use crate::store::{Delivery, PublicationWrite, Store};
 
 /// Lists written per store write during a publication cycle.
 const WRITE_CHUNK: usize = 512;
@@ -27,15 +27,6 @@ pub struct CycleReport {
     /// Rating pairs seen in the rows rescored (each row entry counts half: a pair lies in
     /// two rows). Exact for the whole store when every row was rescored.
     pub rating_pairs_seen: u64,
-}
-
-impl CycleReport {
-    fn absorb(&mut self, other: CycleReport) {
-        self.rescored += other.rescored;
-        self.changed += other.changed;
-        self.tombstones += other.tombstones;
-        self.rating_pairs_seen += other.rating_pairs_seen;
-    }
 }
 
 /// Position of every item id in name order, so ties can be broken by name with integer
@@ -143,23 +134,36 @@ pub fn compute_list(
     })
 }
 
-/// Items to rescore for a signal: every marked item (whose mark the cycle clears), plus
-/// the row members of items marked "with neighbors".
-fn targets(store: &Store, signal: Signal) -> Result<BTreeMap<u32, bool>> {
+/// Items to rescore for a signal, with whether each clears a stored mark: every marked
+/// item, plus the row members of items marked "with neighbors". Items whose mark expands
+/// to a row come last, so a cycle cut short (crash, broker away) clears such a mark only
+/// after its whole row was rescored, and the next cycle redoes the expansion otherwise.
+fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, bool)>> {
     let marks = store.dirty_marks(signal)?;
-    let mut out: BTreeMap<u32, bool> = marks.iter().map(|(item, _)| (*item, true)).collect();
+    let mut plain: BTreeMap<u32, bool> = marks
+        .iter()
+        .filter(|(_, m)| !m.with_neighbors)
+        .map(|(item, _)| (*item, true))
+        .collect();
+    let mut expanding = Vec::new();
     for (item, mark) in &marks {
         if !mark.with_neighbors {
             continue;
         }
+        expanding.push((*item, true));
         let members: Vec<u32> = match signal {
             Signal::Rating => store.rating_row(*item)?.into_iter().map(|(o, _)| o).collect(),
             Signal::Purchase => store.purchase_row(*item)?.into_iter().map(|(o, _)| o).collect(),
         };
         for m in members {
-            out.entry(m).or_insert(false);
+            plain.entry(m).or_insert(false);
         }
     }
+    for (item, _) in &expanding {
+        plain.remove(item);
+    }
+    let mut out: Vec<(u32, bool)> = plain.into_iter().collect();
+    out.extend(expanding);
     Ok(out)
 }
 
@@ -197,44 +201,78 @@ fn compute_in_parallel(
     })
 }
 
-/// Rescores every dirty item of both signals and stores the lists that changed.
-/// `on_progress(done, total)` is called after each stored chunk.
-pub fn publish_dirty(
-    store: &Store,
-    settings: &ListSettings,
+/// One publication cycle: the dirty items of both signals, planned at the start and
+/// rescored chunk by chunk. The caller stores each chunk (after delivering it, in the live
+/// service), so a list is never recorded as published before it reached its readers.
+pub struct Cycle {
+    plan: Vec<(Signal, u32, bool)>,
+    position: usize,
+    unavailable: FxHashSet<u32>,
+    names: NameOrder,
+    watermark: Option<i64>,
     now: i64,
-    mut on_progress: impl FnMut(u64, u64),
-) -> Result<CycleReport> {
-    let unavailable = store.unavailable_items()?;
-    let names = NameOrder::of(store);
-    let mut plan = Vec::new();
-    let mut report = CycleReport::default();
-    for signal in Signal::ALL {
-        let items = targets(store, signal)?;
-        plan.extend(items.into_iter().map(|(item, clears)| (signal, item, clears)));
+    report: CycleReport,
+}
+
+impl Cycle {
+    /// Plans a cycle over everything dirty now; `now` stamps the lists it computes.
+    pub fn plan(store: &Store, now: i64) -> Result<Cycle> {
+        let mut plan = Vec::new();
+        for signal in Signal::ALL {
+            let items = targets(store, signal)?;
+            plan.extend(items.into_iter().map(|(item, clears)| (signal, item, clears)));
+        }
+        Ok(Cycle {
+            plan,
+            position: 0,
+            unavailable: store.unavailable_items()?,
+            names: NameOrder::of(store),
+            watermark: store.progress().event_time_watermark,
+            now,
+            report: CycleReport::default(),
+        })
     }
-    let total = plan.len() as u64;
-    let watermark = store.progress().event_time_watermark;
-    for chunk in plan.chunks(WRITE_CHUNK) {
+
+    /// Lists the cycle will rescore in all.
+    pub fn total(&self) -> u64 {
+        self.plan.len() as u64
+    }
+
+    /// Lists rescored so far.
+    pub fn done(&self) -> u64 {
+        self.position as u64
+    }
+
+    /// Rescores the next chunk; `None` when the cycle is complete. Each write holds the new
+    /// list when it changed, and the dirty mark it clears.
+    pub fn next_chunk(
+        &mut self,
+        store: &Store,
+        settings: &ListSettings,
+    ) -> Result<Option<Vec<PublicationWrite>>> {
+        if self.position >= self.plan.len() {
+            return Ok(None);
+        }
+        let end = (self.position + WRITE_CHUNK).min(self.plan.len());
+        let chunk = &self.plan[self.position..end];
+        let lists = compute_in_parallel(store, chunk, settings, &self.unavailable, &self.names)?;
         let mut writes = Vec::with_capacity(chunk.len());
-        let mut part = CycleReport::default();
-        let lists = compute_in_parallel(store, chunk, settings, &unavailable, &names)?;
         for (&(signal, item, clears_mark), scored) in chunk.iter().zip(lists) {
-            part.rating_pairs_seen += scored.row_len as u64;
+            self.report.rating_pairs_seen += scored.row_len as u64;
             let neighbors = scored.neighbors;
             let previous = store.published(signal, item)?;
             let changed = match &previous {
                 Some(p) => p.neighbors != neighbors,
                 None => !neighbors.is_empty(),
             };
-            part.rescored += 1;
+            self.report.rescored += 1;
             let list = changed.then(|| {
-                part.changed += 1;
-                part.tombstones += u64::from(neighbors.is_empty());
+                self.report.changed += 1;
+                self.report.tombstones += u64::from(neighbors.is_empty());
                 PublishedList {
                     version: previous.as_ref().map_or(1, |p| p.version + 1),
-                    computed_at: now,
-                    event_time_watermark: watermark,
+                    computed_at: self.now,
+                    event_time_watermark: self.watermark,
                     neighbors,
                 }
             });
@@ -243,13 +281,34 @@ pub fn publish_dirty(
                 item,
                 list,
                 clears_mark,
+                redirty: false,
             });
         }
-        store.write_publications(&writes)?;
-        report.absorb(part);
-        on_progress(report.rescored, total);
+        self.position = end;
+        Ok(Some(writes))
     }
-    // Row entries were counted; each pair lies in two rows.
-    report.rating_pairs_seen /= 2;
-    Ok(report)
+
+    /// What the cycle did so far. Row entries were counted; each pair lies in two rows.
+    pub fn report(&self) -> CycleReport {
+        CycleReport {
+            rating_pairs_seen: self.report.rating_pairs_seen / 2,
+            ..self.report
+        }
+    }
+}
+
+/// Rescores every dirty item of both signals and stores the lists that changed, without
+/// delivering them anywhere (backfill). `on_progress(done, total)` follows each chunk.
+pub fn publish_dirty(
+    store: &Store,
+    settings: &ListSettings,
+    now: i64,
+    mut on_progress: impl FnMut(u64, u64),
+) -> Result<CycleReport> {
+    let mut cycle = Cycle::plan(store, now)?;
+    while let Some(writes) = cycle.next_chunk(store, settings)? {
+        store.write_publications(&writes, Delivery::StoredOnly, now)?;
+        on_progress(cycle.done(), cycle.total());
+    }
+    Ok(cycle.report())
 }

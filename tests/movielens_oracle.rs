@@ -102,13 +102,11 @@ fn default_tolerance_in_micro_batches_stays_within_its_bound() {
         let (Some(se), Some(sp)) = (e.adjusted_cosine(), p.adjusted_cosine()) else {
             continue;
         };
-        let (sigma_a, sigma_b) = ((e.norm_a / e.n as f64).sqrt(), (e.norm_b / e.n as f64).sqrt());
         let err = (sp - se).abs();
         total_err += err;
         counted += 1;
         worst = worst.max(err);
-        if 0.05 < sigma_a && 0.05 < sigma_b {
-            let bound = (0.05 / sigma_a).asin() + (0.05 / sigma_b).asin();
+        if let Some(bound) = common::tolerance_bound(&e, 0.05) {
             if err > bound + 1e-9 {
                 violations.push(format!("{key:?}: error {err} > bound {bound}"));
             }

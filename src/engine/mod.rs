@@ -25,6 +25,16 @@ pub struct EngineSettings {
     pub max_items_per_user: usize,
 }
 
+impl EngineSettings {
+    /// The engine settings of a configuration.
+    pub fn from_config(config: &crate::config::Config) -> EngineSettings {
+        EngineSettings {
+            recenter_tolerance: config.similarity.recenter_tolerance,
+            max_items_per_user: config.similarity.max_items_per_user,
+        }
+    }
+}
+
 /// An event with ids already interned to dense numbers.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Action {

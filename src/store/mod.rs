@@ -55,6 +55,7 @@ const ALL_CFS: [&str; 8] = [
 const META_SCHEMA: &[u8] = b"schema_version";
 const META_FINGERPRINT: &[u8] = b"stats_fingerprint";
 const META_PROGRESS: &[u8] = b"progress";
+const META_DELIVERED_TO: &[u8] = b"delivered_to";
 
 /// Bytes one rating pair merge takes in a WriteBatch: tag, column family, lengths, key, value.
 const RATING_PAIR_RECORD_BYTES: usize = 1 + 4 + 2 + 8 + codec::RATING_PAIR_LEN;
@@ -159,6 +160,10 @@ pub struct Progress {
     /// Whether any pair or buyer-count key was ever written (until then a put equals a
     /// merge).
     pub pair_keys_written: bool,
+    /// Next offset to consume, by input topic and partition: the live service's position,
+    /// which it trusts over the consumer group's committed offsets.
+    #[serde(default)]
+    pub offsets: BTreeMap<String, BTreeMap<i32, i64>>,
 }
 
 /// Item names by dense id and back, kept in memory: publication needs names for every
@@ -195,6 +200,18 @@ pub struct PublicationWrite {
     pub list: Option<PublishedList>,
     /// Whether a dirty mark is stored for this item (expanded neighbors have none).
     pub clears_mark: bool,
+    /// The list could not be delivered: keep (or set) a dirty mark so the next cycle
+    /// tries again, and store nothing.
+    pub redirty: bool,
+}
+
+/// Whether the lists of a publication write have reached the output topics.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Delivery<'a> {
+    /// Stored only (backfill): the output topics no longer hold every stored list.
+    StoredOnly,
+    /// Delivered to the output topics named by this destination label.
+    Delivered(&'a str),
 }
 
 /// An open store.
@@ -720,12 +737,27 @@ impl Store {
     }
 
     /// Stores recomputed lists and clears the dirty marks they answer, in one write.
-    pub fn write_publications(&self, writes: &[PublicationWrite]) -> Result<()> {
+    /// A write that was stored only forgets which output topics hold every list, so a live
+    /// service starting on this store republishes them all first.
+    pub fn write_publications(
+        &self,
+        writes: &[PublicationWrite],
+        delivery: Delivery<'_>,
+        now: i64,
+    ) -> Result<()> {
         let mut wb = WriteBatch::default();
         let published = self.cf(CF_PUBLISHED);
         let dirty = self.cf(CF_DIRTY);
         for w in writes {
             let key = codec::signal_item_key(w.signal, w.item);
+            if w.redirty {
+                let mark = DirtyMark {
+                    since: now,
+                    with_neighbors: false,
+                };
+                wb.merge_cf(dirty, key, mark.encode());
+                continue;
+            }
             if let Some(list) = &w.list {
                 wb.put_cf(published, key, codec::encode_published(list));
             }
@@ -733,6 +765,22 @@ impl Store {
                 wb.delete_cf(dirty, key);
             }
         }
+        if delivery == Delivery::StoredOnly && writes.iter().any(|w| w.list.is_some()) {
+            wb.delete_cf(self.cf(CF_META), META_DELIVERED_TO);
+        }
+        self.write(wb)
+    }
+
+    /// The destination label whose topics hold every stored list, if any.
+    pub fn delivered_to(&self) -> Result<Option<String>> {
+        let value = self.db.get_cf(self.cf(CF_META), META_DELIVERED_TO)?;
+        Ok(value.map(|v| String::from_utf8_lossy(&v).into_owned()))
+    }
+
+    /// Records that every stored list has been delivered to `destination`'s topics.
+    pub fn set_delivered_to(&self, destination: &str) -> Result<()> {
+        let mut wb = WriteBatch::default();
+        wb.put_cf(self.cf(CF_META), META_DELIVERED_TO, destination.as_bytes());
         self.write(wb)
     }
 }

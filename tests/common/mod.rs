@@ -2,12 +2,16 @@
 //! short ways to configure, backfill and export a real store in a temp directory.
 #![allow(dead_code)] // each test binary uses a different subset
 
+pub mod broker;
+pub mod live;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use simtide::backfill::{run_backfill, BackfillRequest, BackfillSummary};
 use simtide::config::Config;
 use simtide::export::export_lists;
+use simtide::score::RatingSums;
 use simtide::store::Store;
 
 /// Where scripts/setup.sh keeps its downloads and the Python venv.
@@ -91,4 +95,13 @@ pub fn export_without_times(store: &Path, out: &Path) -> Vec<serde_json::Value> 
             v
         })
         .collect()
+}
+
+/// The largest change of one pair's adjusted cosine that a recenter tolerance τ allows,
+/// given the pair's exact sums: asin(τ/σ_a) + asin(τ/σ_b) with σ = √(Σd²/n) (derivation
+/// in tests/movielens_oracle.rs). `None` when τ is not below both σ (no bound then).
+pub fn tolerance_bound(exact: &RatingSums, tau: f64) -> Option<f64> {
+    let sigma_a = (exact.norm_a / exact.n as f64).sqrt();
+    let sigma_b = (exact.norm_b / exact.n as f64).sqrt();
+    (tau < sigma_a && tau < sigma_b).then(|| (tau / sigma_a).asin() + (tau / sigma_b).asin())
 }

@@ -5,10 +5,16 @@
 //! `SIMTIDE_SIMILARITY__NEIGHBORS=20`. Unknown keys are refused by name, so a typo never
 //! silently falls back to a default.
 
+pub mod duration_text;
+pub mod secrets;
+pub mod service;
+
 use std::path::Path;
 
 use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
+
+pub use service::{HttpConfig, KafkaConfig, LiveConfig, PublishConfig, StartPosition, StoreConfig};
 
 /// Prefix of the environment variables that override configuration keys.
 pub const ENV_PREFIX: &str = "SIMTIDE_";
@@ -25,6 +31,16 @@ pub struct Config {
     pub backfill: BackfillConfig,
     /// How recommendations are predicted from the lists.
     pub recommend: RecommendConfig,
+    /// Where the live service keeps its store.
+    pub store: StoreConfig,
+    /// The event bus and its topics.
+    pub kafka: KafkaConfig,
+    /// Micro-batching and lifecycle of the live service.
+    pub live: LiveConfig,
+    /// Publication cycles of the live service.
+    pub publish: PublishConfig,
+    /// The HTTP listener.
+    pub http: HttpConfig,
 }
 
 /// Which purchase-signal score ranks co-bought items.
@@ -179,16 +195,27 @@ impl Config {
             };
             let section = section.to_ascii_lowercase();
             let key = key.to_ascii_lowercase();
-            let parsed = parse_env_value(&value);
-            let entry = table
-                .entry(section.clone())
-                .or_insert_with(|| toml::Value::Table(toml::Table::new()));
-            match entry {
-                toml::Value::Table(t) => {
-                    t.insert(key, parsed);
-                }
-                _ => bail!("{name}: section [{section}] is not a table in {origin}"),
+            // `SIMTIDE_KAFKA__CLIENT__SASL_PASSWORD` sets `sasl.password` in [kafka.client]:
+            // librdkafka's property names use dots where environment names cannot.
+            let (path, key, parsed) = match key.strip_prefix("client__") {
+                Some(property) if section == "kafka" => (
+                    vec![section, "client".to_string()],
+                    property.replace('_', "."),
+                    toml::Value::String(value),
+                ),
+                _ => (vec![section], key, parse_env_value(&value)),
+            };
+            let mut target = &mut table;
+            for part in &path {
+                let entry = target
+                    .entry(part.clone())
+                    .or_insert_with(|| toml::Value::Table(toml::Table::new()));
+                target = match entry {
+                    toml::Value::Table(t) => t,
+                    _ => bail!("{name}: [{}] is not a table in {origin}", path.join(".")),
+                };
             }
+            target.insert(key, parsed);
         }
         let config: Config = toml::Value::Table(table)
             .try_into()
@@ -242,6 +269,57 @@ impl Config {
         }
         if self.backfill.batch_events == 0 {
             bail!("backfill.batch_events must be at least 1");
+        }
+        self.validate_service()
+    }
+
+    /// The live-service sections: names that must be set, counts that must be positive.
+    fn validate_service(&self) -> Result<()> {
+        let k = &self.kafka;
+        for (key, value) in [
+            ("kafka.brokers", &k.brokers),
+            ("kafka.group", &k.group),
+            ("kafka.input_topic", &k.input_topic),
+            ("kafka.output_topic", &k.output_topic),
+            ("kafka.purchase_output_topic", &k.purchase_output_topic),
+            ("kafka.dead_letter_topic", &k.dead_letter_topic),
+            ("store.dir", &self.store.dir),
+        ] {
+            if value.trim().is_empty() {
+                bail!("{key} must not be empty");
+            }
+        }
+        let topics = [
+            &k.input_topic,
+            &k.output_topic,
+            &k.purchase_output_topic,
+            &k.dead_letter_topic,
+        ];
+        for (i, a) in topics.iter().enumerate() {
+            if topics[i + 1..].contains(a) {
+                bail!("kafka topics must differ from each other: \"{a}\" is used twice");
+            }
+        }
+        if k.topic_partitions < 1 || k.topic_replication < 1 {
+            bail!("kafka.topic_partitions and kafka.topic_replication must be at least 1");
+        }
+        if self.live.batch_events == 0 {
+            bail!("live.batch_events must be at least 1");
+        }
+        for (key, d) in [
+            ("publish.interval", self.publish.interval),
+            ("live.shutdown_timeout", self.live.shutdown_timeout),
+            ("live.delivery_timeout", self.live.delivery_timeout),
+        ] {
+            if d.is_zero() {
+                bail!("{key} must be longer than 0");
+            }
+        }
+        if self.http.listen.parse::<std::net::SocketAddr>().is_err() {
+            bail!(
+                "http.listen: \"{}\" is not an address:port such as 127.0.0.1:9464",
+                self.http.listen
+            );
         }
         Ok(())
     }
@@ -300,6 +378,30 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(err.contains("neigbors"), "{err}");
+    }
+
+    #[test]
+    fn kafka_client_properties_come_from_the_environment_with_dots() {
+        let c = Config::from_toml_and_env(
+            "[kafka.client]\n\"security.protocol\" = \"SASL_SSL\"\n",
+            "t",
+            env(&[
+                ("SIMTIDE_KAFKA__CLIENT__SASL_PASSWORD", "hunter2"),
+                ("SIMTIDE_PUBLISH__INTERVAL", "2s"),
+            ]),
+        )
+        .unwrap();
+        assert_eq!(c.kafka.client["security.protocol"], "SASL_SSL");
+        assert_eq!(c.kafka.client["sasl.password"], "hunter2");
+        assert_eq!(c.publish.interval, std::time::Duration::from_secs(2));
+    }
+
+    #[test]
+    fn a_topic_used_twice_is_refused() {
+        let err = Config::from_toml_and_env("[kafka]\noutput_topic = \"shop-events\"\n", "t", [])
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("\"shop-events\" is used twice"), "{err}");
     }
 
     #[test]

@@ -1,0 +1,180 @@
+//! Live-service benchmark: MovieLens 100K through a real broker (tansu 0.6.0, sqlite) at
+//! the default settings, against the file backfill of the same events in the same run.
+//!
+//! 1. Saturation: all events produced up front; time until the service committed them
+//!    all = sustained consumption rate.
+//! 2. Paced: events offered at a fixed rate (`SIMTIDE_BENCH_RATE`, default 3000/s) while
+//!    the consumer lag is sampled every 500 ms; the service's exit summary gives the
+//!    event-to-publication latency (record timestamp → end of the publication cycle
+//!    that covered the event), p50 and p99.
+//! 3. `simtide backfill` of the same events from a CSV file.
+//!
+//! Run with `cargo bench --bench live_throughput` (part of `make bench`).
+
+#[path = "../tests/common/mod.rs"]
+mod common;
+
+use std::time::{Duration, Instant};
+
+use common::broker::Broker;
+use common::live::{
+    caught_up, csv_events, produce, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, GROUP, INPUT,
+    OUTPUT, PURCHASE_OUTPUT,
+};
+use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::{ClientConfig, Offset, TopicPartitionList};
+
+const PARTITIONS: i32 = 3;
+
+fn fresh_broker() -> Broker {
+    let broker = Broker::start();
+    broker.create_topic(INPUT, PARTITIONS, false);
+    broker.create_topic(OUTPUT, 1, true);
+    broker.create_topic(PURCHASE_OUTPUT, 1, true);
+    broker.create_topic(DEAD_LETTER, 1, false);
+    broker
+}
+
+/// Σ over partitions of (high watermark − the group's committed offset).
+fn lag(brokers: &str) -> i64 {
+    let c: BaseConsumer = ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("group.id", GROUP)
+        .create()
+        .unwrap();
+    let mut tpl = TopicPartitionList::new();
+    for p in 0..PARTITIONS {
+        tpl.add_partition(INPUT, p);
+    }
+    let committed = c.committed_offsets(tpl, Duration::from_secs(5)).unwrap();
+    committed
+        .elements()
+        .iter()
+        .map(|e| {
+            let (_, high) = c
+                .fetch_watermarks(INPUT, e.partition(), Duration::from_secs(5))
+                .unwrap();
+            match e.offset() {
+                Offset::Offset(o) => high - o,
+                _ => high,
+            }
+        })
+        .sum()
+}
+
+fn defaults() -> LiveSettings {
+    LiveSettings {
+        tolerance: 0.05,
+        min_support: 3,
+        publish_interval: "5s",
+        batch_events: 5000,
+    }
+}
+
+fn saturation(events: &[(String, String, Option<i64>)]) {
+    let work = tempfile::tempdir().unwrap();
+    let broker = fresh_broker();
+    let t = Instant::now();
+    produce(&broker.bootstrap(), INPUT, events);
+    let produce_s = t.elapsed().as_secs_f64();
+    let (config, port) = write_config(
+        work.path(),
+        &broker.bootstrap(),
+        &work.path().join("store"),
+        &defaults(),
+    );
+    let started = Instant::now();
+    let service = Service::start(&config, port, &[]);
+    wait_for("saturation run to catch up", Duration::from_secs(600), || {
+        caught_up(&broker.bootstrap(), PARTITIONS)
+    });
+    let consume_s = started.elapsed().as_secs_f64();
+    let (_, report) = service.terminate(Duration::from_secs(60));
+    println!(
+        "saturation: produced {} in {produce_s:.1}s ({:.0}/s); consumed and committed in {consume_s:.1}s from process start = {:.0} events/s",
+        events.len(),
+        events.len() as f64 / produce_s,
+        events.len() as f64 / consume_s
+    );
+    println!("{report}\n");
+}
+
+fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
+    let work = tempfile::tempdir().unwrap();
+    let broker = fresh_broker();
+    let (config, port) = write_config(
+        work.path(),
+        &broker.bootstrap(),
+        &work.path().join("store"),
+        &defaults(),
+    );
+    let service = Service::start(&config, port, &[]);
+    wait_for("ready", Duration::from_secs(60), || {
+        service.get("/readyz").is_some_and(|(s, _)| s == 200)
+    });
+    let brokers = broker.bootstrap();
+    let chunk = (rate / 10.0).max(1.0) as usize;
+    let started = Instant::now();
+    let mut lags = Vec::new();
+    let mut last_sample = Instant::now();
+    for (i, part) in events.chunks(chunk).enumerate() {
+        let due = Duration::from_secs_f64((i * chunk) as f64 / rate);
+        if let Some(wait) = due.checked_sub(started.elapsed()) {
+            std::thread::sleep(wait);
+        }
+        produce(&brokers, INPUT, part);
+        if last_sample.elapsed() >= Duration::from_millis(500) {
+            lags.push(lag(&brokers));
+            last_sample = Instant::now();
+        }
+    }
+    let offered_s = started.elapsed().as_secs_f64();
+    wait_for("paced run to catch up", Duration::from_secs(300), || {
+        caught_up(&brokers, PARTITIONS)
+    });
+    let drained_s = started.elapsed().as_secs_f64() - offered_s;
+    let (_, report) = service.terminate(Duration::from_secs(60));
+    let max_lag = lags.iter().copied().max().unwrap_or(0);
+    let tail = &lags[lags.len().saturating_sub(5)..];
+    println!(
+        "paced: offered {} events at {rate:.0}/s over {offered_s:.1}s (achieved {:.0}/s); lag samples {}: max {max_lag}, last five {tail:?}; drained {drained_s:.1}s after the last produce",
+        events.len(),
+        events.len() as f64 / offered_s,
+        lags.len()
+    );
+    println!("{report}\n");
+}
+
+fn file_backfill() {
+    let work = tempfile::tempdir().unwrap();
+    let started = Instant::now();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["backfill", "--quiet", "--store"])
+        .arg(work.path().join("store"))
+        .arg("--input")
+        .arg(common::movielens_csv())
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    println!(
+        "file backfill of the same events (defaults, batches of 50,000): {:.1}s wall\n{}",
+        started.elapsed().as_secs_f64(),
+        String::from_utf8_lossy(&out.stdout)
+    );
+}
+
+fn main() {
+    // `cargo bench` passes --bench; any other argument is ignored.
+    let rate: f64 = std::env::var("SIMTIDE_BENCH_RATE")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(3000.0);
+    let events: Vec<(String, String, Option<i64>)> = csv_events(&common::movielens_csv(), 100_000)
+        .into_iter()
+        .map(|(k, v, _)| (k, v, None))
+        .collect();
+    println!("simtide live benchmark, MovieLens 100K, default settings, tansu 0.6.0 broker on 127.0.0.1\n");
+    saturation(&events);
+    paced(&events, rate);
+    file_backfill();
+}

@@ -1,0 +1,146 @@
+//! The sections of the configuration that only the live service reads: where its store
+//! lives, how it talks to Kafka, how it batches, publishes and answers HTTP.
+
+use std::collections::BTreeMap;
+use std::time::Duration;
+
+use serde::{Deserialize, Serialize};
+
+use super::duration_text;
+
+/// `[store]`: where the live service keeps its state.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct StoreConfig {
+    /// Store directory of `simtide run` (created if missing).
+    pub dir: String,
+}
+
+impl Default for StoreConfig {
+    fn default() -> Self {
+        StoreConfig {
+            dir: "simtide-store".to_string(),
+        }
+    }
+}
+
+/// Where a partition without a stored position starts.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum StartPosition {
+    /// The oldest retained message.
+    #[default]
+    Earliest,
+    /// Only messages produced after the service joined.
+    Latest,
+}
+
+/// `[kafka]`: the event bus.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct KafkaConfig {
+    /// Bootstrap servers, comma separated.
+    pub brokers: String,
+    /// Consumer group of the service.
+    pub group: String,
+    /// Topic the events arrive on (key = user id).
+    pub input_topic: String,
+    /// Compacted topic that receives rating-signal lists (key = item id).
+    pub output_topic: String,
+    /// Compacted topic that receives purchase-signal lists (key = item id). A separate
+    /// topic, because compaction keeps one record per key and each signal has its own list.
+    pub purchase_output_topic: String,
+    /// Topic that receives every event that failed validation, with the reason in headers.
+    pub dead_letter_topic: String,
+    /// Where a partition the store holds no position for starts.
+    pub start: StartPosition,
+    /// Create missing output and dead-letter topics (compacted outputs) at start-up.
+    pub create_topics: bool,
+    /// Partitions of topics the service creates.
+    pub topic_partitions: i32,
+    /// Replication factor of topics the service creates.
+    pub topic_replication: i32,
+    /// librdkafka properties passed unchanged (SASL, TLS, timeouts…). Values whose key
+    /// contains password, secret, token or key are masked wherever simtide prints them.
+    pub client: BTreeMap<String, String>,
+}
+
+impl Default for KafkaConfig {
+    fn default() -> Self {
+        KafkaConfig {
+            brokers: "127.0.0.1:9092".to_string(),
+            group: "simtide".to_string(),
+            input_topic: "shop-events".to_string(),
+            output_topic: "item-neighbors".to_string(),
+            purchase_output_topic: "item-neighbors-bought".to_string(),
+            dead_letter_topic: "shop-events-dead-letter".to_string(),
+            start: StartPosition::Earliest,
+            create_topics: true,
+            topic_partitions: 1,
+            topic_replication: 1,
+            client: BTreeMap::new(),
+        }
+    }
+}
+
+/// `[live]`: micro-batching and the lifecycle of `simtide run`.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct LiveConfig {
+    /// A micro-batch is committed when it holds this many messages…
+    pub batch_events: usize,
+    /// …or when its first message has waited this long.
+    #[serde(with = "duration_text")]
+    pub batch_wait: Duration,
+    /// Longest time from SIGTERM/SIGINT to exit: finish the batch, publish, leave.
+    #[serde(with = "duration_text")]
+    pub shutdown_timeout: Duration,
+    /// Longest wait for the broker to confirm a batch of produced records before the
+    /// attempt counts as failed and is retried.
+    #[serde(with = "duration_text")]
+    pub delivery_timeout: Duration,
+}
+
+impl Default for LiveConfig {
+    fn default() -> Self {
+        LiveConfig {
+            batch_events: 5000,
+            batch_wait: Duration::from_millis(250),
+            shutdown_timeout: Duration::from_secs(30),
+            delivery_timeout: Duration::from_secs(10),
+        }
+    }
+}
+
+/// `[publish]`: how often dirty lists are recomputed and produced.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct PublishConfig {
+    /// Time between publication cycles.
+    #[serde(with = "duration_text")]
+    pub interval: Duration,
+}
+
+impl Default for PublishConfig {
+    fn default() -> Self {
+        PublishConfig {
+            interval: Duration::from_secs(5),
+        }
+    }
+}
+
+/// `[http]`: the health, metrics and lookup listener.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct HttpConfig {
+    /// Address to listen on; loopback unless told otherwise.
+    pub listen: String,
+}
+
+impl Default for HttpConfig {
+    fn default() -> Self {
+        HttpConfig {
+            listen: "127.0.0.1:9464".to_string(),
+        }
+    }
+}

@@ -1,0 +1,193 @@
+//! librdkafka clients as simtide builds them: the `[kafka.client]` table passed unchanged,
+//! and one client context that routes librdkafka's logs and errors into tracing at a
+//! bounded rate, scrubbed of secrets, while tracking whether the brokers are reachable.
+
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use rdkafka::config::RDKafkaLogLevel;
+use rdkafka::consumer::ConsumerContext;
+use rdkafka::error::{KafkaError, RDKafkaErrorCode};
+use rdkafka::{ClientConfig, ClientContext};
+
+use crate::config::secrets::Scrubber;
+use crate::config::KafkaConfig;
+
+/// Shortest time between two log lines of the same kind from librdkafka.
+const LOG_EVERY: Duration = Duration::from_secs(10);
+
+/// Whether the brokers answered recently: cleared by librdkafka's "all brokers down"
+/// and transport errors, set again by a successful metadata request.
+#[derive(Debug)]
+pub struct BrokerState {
+    reachable: AtomicBool,
+}
+
+impl Default for BrokerState {
+    fn default() -> Self {
+        BrokerState {
+            reachable: AtomicBool::new(true),
+        }
+    }
+}
+
+impl BrokerState {
+    /// Whether the last word from the brokers was good.
+    pub fn reachable(&self) -> bool {
+        self.reachable.load(Ordering::Relaxed)
+    }
+
+    /// Records the outcome of a request or an error report; logs the transitions.
+    pub fn set_reachable(&self, now_reachable: bool) {
+        let before = self.reachable.swap(now_reachable, Ordering::Relaxed);
+        if before != now_reachable {
+            if now_reachable {
+                tracing::info!("brokers reachable again");
+            } else {
+                tracing::warn!("brokers unreachable; retrying in the background");
+            }
+        }
+    }
+}
+
+/// Lets one line per kind through every [`LOG_EVERY`], counting the ones held back.
+#[derive(Debug, Default)]
+struct LogLimiter {
+    last: HashMap<String, (Instant, u64)>,
+}
+
+impl LogLimiter {
+    /// `Some(suppressed since the last line)` when a line of this kind may be written now.
+    fn admit(&mut self, kind: &str) -> Option<u64> {
+        let now = Instant::now();
+        match self.last.get_mut(kind) {
+            Some((at, held)) if now.duration_since(*at) < LOG_EVERY => {
+                *held += 1;
+                None
+            }
+            Some((at, held)) => {
+                let n = *held;
+                *at = now;
+                *held = 0;
+                Some(n)
+            }
+            None => {
+                self.last.insert(kind.to_string(), (now, 0));
+                Some(0)
+            }
+        }
+    }
+}
+
+/// The client context every simtide Kafka client uses.
+#[derive(Clone)]
+pub struct BusContext {
+    brokers: Arc<BrokerState>,
+    scrubber: Arc<Scrubber>,
+    limiter: Arc<Mutex<LogLimiter>>,
+}
+
+impl BusContext {
+    /// A context reporting into `brokers`, masking the secrets `scrubber` knows.
+    pub fn new(brokers: Arc<BrokerState>, scrubber: Arc<Scrubber>) -> BusContext {
+        BusContext {
+            brokers,
+            scrubber,
+            limiter: Arc::default(),
+        }
+    }
+
+    /// The shared broker reachability.
+    pub fn brokers(&self) -> &Arc<BrokerState> {
+        &self.brokers
+    }
+
+    /// The scrubber for text from librdkafka.
+    pub fn scrubber(&self) -> &Scrubber {
+        &self.scrubber
+    }
+
+    fn admit(&self, kind: &str) -> Option<u64> {
+        self.limiter.lock().expect("log limiter lock").admit(kind)
+    }
+}
+
+impl ClientContext for BusContext {
+    fn log(&self, level: RDKafkaLogLevel, facility: &str, message: &str) {
+        let Some(held) = self.admit(facility) else {
+            return;
+        };
+        let message = self.scrubber.scrub(message);
+        match level {
+            RDKafkaLogLevel::Emerg
+            | RDKafkaLogLevel::Alert
+            | RDKafkaLogLevel::Critical
+            | RDKafkaLogLevel::Error => {
+                tracing::error!(target: "librdkafka", facility, suppressed = held, "{message}")
+            }
+            RDKafkaLogLevel::Warning => {
+                tracing::warn!(target: "librdkafka", facility, suppressed = held, "{message}")
+            }
+            RDKafkaLogLevel::Notice | RDKafkaLogLevel::Info => {
+                tracing::info!(target: "librdkafka", facility, suppressed = held, "{message}")
+            }
+            RDKafkaLogLevel::Debug => {
+                tracing::debug!(target: "librdkafka", facility, suppressed = held, "{message}")
+            }
+        }
+    }
+
+    fn error(&self, error: KafkaError, reason: &str) {
+        let code = error.rdkafka_error_code();
+        if matches!(
+            code,
+            Some(RDKafkaErrorCode::AllBrokersDown | RDKafkaErrorCode::BrokerTransportFailure)
+        ) {
+            self.brokers.set_reachable(false);
+        }
+        let kind = format!("{code:?}");
+        if let Some(held) = self.admit(&kind) {
+            let text = self.scrubber.scrub(&format!("{error}: {reason}"));
+            tracing::warn!(target: "librdkafka", suppressed = held, "{text}");
+        }
+    }
+}
+
+/// Plain consumers (metadata, offsets, topic backfill) use the default rebalance handling.
+impl ConsumerContext for BusContext {}
+
+/// The base client configuration: brokers, then `[kafka.client]` unchanged (so it may
+/// override anything simtide sets, SASL and TLS included).
+pub fn base_config(kafka: &KafkaConfig) -> ClientConfig {
+    let mut c = ClientConfig::new();
+    c.set("bootstrap.servers", &kafka.brokers);
+    c.set_log_level(RDKafkaLogLevel::Warning);
+    for (key, value) in &kafka.client {
+        c.set(key, value);
+    }
+    c
+}
+
+/// A client-creation error as text without secrets: librdkafka quotes the offending
+/// value when a property is invalid.
+pub fn describe_error(scrubber: &Scrubber, what: &str, error: &KafkaError) -> anyhow::Error {
+    anyhow::anyhow!("{what}: {}", scrubber.scrub(&error.to_string()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn limiter_admits_one_line_per_kind_and_counts_the_rest() {
+        let mut l = LogLimiter::default();
+        assert_eq!(l.admit("FAIL"), Some(0));
+        assert_eq!(l.admit("FAIL"), None);
+        assert_eq!(l.admit("FAIL"), None);
+        assert_eq!(l.admit("REQTMOUT"), Some(0));
+        l.last.get_mut("FAIL").unwrap().0 -= LOG_EVERY;
+        assert_eq!(l.admit("FAIL"), Some(2));
+    }
+}

@@ -1,0 +1,194 @@
+//! Producing records and knowing which ones the broker acknowledged. One idempotent
+//! producer serves the output and dead-letter topics; [`RecordProducer::deliver`] produces
+//! a set of records and waits, within a deadline, for the broker's answer on each, so the
+//! caller only records as delivered what really was.
+
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::Result;
+use rdkafka::error::{KafkaError, RDKafkaErrorCode};
+use rdkafka::message::{DeliveryResult, Header, OwnedHeaders};
+use rdkafka::producer::{BaseRecord, Producer, ProducerContext, ThreadedProducer};
+use rdkafka::ClientContext;
+
+use super::client::{base_config, describe_error, BusContext};
+use crate::config::KafkaConfig;
+
+/// One record to produce.
+#[derive(Debug, Clone)]
+pub struct OutRecord {
+    /// Destination topic.
+    pub topic: String,
+    /// Record key.
+    pub key: Vec<u8>,
+    /// Value; `None` is a tombstone.
+    pub value: Option<Vec<u8>>,
+    /// Headers, in order.
+    pub headers: Vec<(String, Vec<u8>)>,
+}
+
+/// Acknowledgements of the current [`RecordProducer::deliver`] call. The opaque of each
+/// record carries the call's generation, so a late answer to an earlier, timed-out call
+/// is ignored rather than credited to the wrong record.
+#[derive(Default)]
+struct Acks {
+    generation: AtomicU64,
+    state: Mutex<AckState>,
+}
+
+#[derive(Default)]
+struct AckState {
+    answered: Vec<Option<std::result::Result<(), String>>>,
+}
+
+/// Producer context: the shared bus context plus delivery bookkeeping.
+#[derive(Clone)]
+pub struct DeliveryContext {
+    bus: BusContext,
+    acks: Arc<Acks>,
+}
+
+impl ClientContext for DeliveryContext {
+    fn log(&self, level: rdkafka::config::RDKafkaLogLevel, fac: &str, message: &str) {
+        self.bus.log(level, fac, message);
+    }
+
+    fn error(&self, error: KafkaError, reason: &str) {
+        self.bus.error(error, reason);
+    }
+}
+
+/// Bits of the opaque that hold the record's index within its call.
+const INDEX_BITS: u32 = 32;
+
+impl ProducerContext for DeliveryContext {
+    type DeliveryOpaque = usize;
+
+    fn delivery(&self, result: &DeliveryResult<'_>, opaque: usize) {
+        let generation = (opaque as u64) >> INDEX_BITS;
+        let index = opaque & ((1usize << INDEX_BITS) - 1);
+        if generation != self.acks.generation.load(Ordering::Acquire) {
+            return;
+        }
+        let outcome = match result {
+            Ok(_) => {
+                self.bus.brokers().set_reachable(true);
+                Ok(())
+            }
+            Err((e, _)) => Err(self.bus.scrubber().scrub(&e.to_string())),
+        };
+        let mut state = self.acks.state.lock().expect("ack lock");
+        if let Some(slot) = state.answered.get_mut(index) {
+            *slot = Some(outcome);
+        }
+    }
+}
+
+/// The idempotent producer of output lists and dead letters.
+pub struct RecordProducer {
+    producer: ThreadedProducer<DeliveryContext>,
+    acks: Arc<Acks>,
+    serial: Mutex<()>,
+}
+
+/// What became of a set of records.
+#[derive(Debug, Default)]
+pub struct DeliveryReport {
+    /// Indexes of records the broker did not acknowledge, with the reason.
+    pub failed: Vec<(usize, String)>,
+}
+
+impl DeliveryReport {
+    /// Whether every record was acknowledged.
+    pub fn all_delivered(&self) -> bool {
+        self.failed.is_empty()
+    }
+}
+
+impl RecordProducer {
+    /// Creates the producer. Idempotence and full acknowledgement are forced: they are what
+    /// makes a retried delivery safe.
+    pub fn new(kafka: &KafkaConfig, bus: BusContext) -> Result<RecordProducer> {
+        let mut config = base_config(kafka);
+        config.set("enable.idempotence", "true");
+        config.set("acks", "all");
+        config.set("compression.type", "none");
+        let acks = Arc::new(Acks::default());
+        let context = DeliveryContext {
+            bus: bus.clone(),
+            acks: acks.clone(),
+        };
+        let producer: ThreadedProducer<DeliveryContext> = config
+            .create_with_context(context)
+            .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka producer", &e))?;
+        Ok(RecordProducer {
+            producer,
+            acks,
+            serial: Mutex::new(()),
+        })
+    }
+
+    /// Produces every record and waits up to `timeout` for the broker's answers. Records
+    /// not acknowledged by then are reported failed (they may still arrive later; every
+    /// record simtide produces is safe to see twice).
+    pub fn deliver(&self, records: &[OutRecord], timeout: Duration) -> DeliveryReport {
+        let _one_call_at_a_time = self.serial.lock().expect("producer call lock");
+        let generation = self.acks.generation.fetch_add(1, Ordering::AcqRel) + 1;
+        self.acks.state.lock().expect("ack lock").answered = vec![None; records.len()];
+        let deadline = Instant::now() + timeout;
+        let mut report = DeliveryReport::default();
+        let mut not_sent = vec![false; records.len()];
+        for (index, r) in records.iter().enumerate() {
+            let opaque = ((generation << INDEX_BITS) as usize) | index;
+            let mut headers = OwnedHeaders::new_with_capacity(r.headers.len());
+            for (name, value) in &r.headers {
+                headers = headers.insert(Header {
+                    key: name,
+                    value: Some(value),
+                });
+            }
+            let mut record = BaseRecord::with_opaque_to(&r.topic, opaque)
+                .key(&r.key[..])
+                .headers(headers);
+            if let Some(v) = &r.value {
+                record = record.payload(&v[..]);
+            }
+            loop {
+                match self.producer.send(record) {
+                    Ok(()) => break,
+                    Err((KafkaError::MessageProduction(RDKafkaErrorCode::QueueFull), back))
+                        if Instant::now() < deadline =>
+                    {
+                        record = back;
+                        std::thread::sleep(Duration::from_millis(5));
+                    }
+                    Err((e, _)) => {
+                        report.failed.push((index, e.to_string()));
+                        not_sent[index] = true;
+                        break;
+                    }
+                }
+            }
+        }
+        let left = deadline.saturating_duration_since(Instant::now());
+        // A flush that times out leaves the unanswered records to be reported below.
+        let _ = self.producer.flush(left);
+        let state = self.acks.state.lock().expect("ack lock");
+        for (index, answer) in state.answered.iter().enumerate() {
+            if not_sent[index] {
+                continue;
+            }
+            match answer {
+                Some(Ok(())) => {}
+                Some(Err(reason)) => report.failed.push((index, reason.clone())),
+                None => report
+                    .failed
+                    .push((index, "no acknowledgement before the deadline".into())),
+            }
+        }
+        report.failed.sort_by_key(|(i, _)| *i);
+        report
+    }
+}

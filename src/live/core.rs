@@ -1,0 +1,378 @@
+//! The service's state behind one lock: the store, the batch being collected, and the
+//! producer. Both the consumer loop and the rebalance callback flush batches through
+//! [`Core::flush`], so a batch is committed the same way whoever ends it.
+
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anyhow::Result;
+
+use super::batch::PendingBatch;
+use super::latency::LatencyRecorder;
+use crate::config::Config;
+use crate::decode::Limits;
+use crate::engine::EngineSettings;
+use crate::health::Health;
+use crate::kafka::producer::{OutRecord, RecordProducer};
+use crate::pipeline::{apply_and_commit, event_counter_key};
+use crate::publish::{Cycle, CycleReport};
+use crate::record::NeighborRecord;
+use crate::score::ListSettings;
+use crate::signal::Signal;
+use crate::store::codec::PublishedList;
+use crate::store::{Delivery, Store};
+use crate::timefmt::now_nanos;
+
+/// Longest pause between two retries of a failing store write or delivery.
+const MAX_BACKOFF: Duration = Duration::from_secs(30);
+
+/// Lists produced per delivery when republishing the whole store.
+const REPUBLISH_CHUNK: usize = 2000;
+
+/// What a flush did.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Flushed {
+    /// Nothing was pending.
+    Nothing,
+    /// The batch is in the store; these are the next offsets of its partitions.
+    Committed(BTreeMap<i32, i64>),
+    /// The deadline passed before the batch could be committed; it was dropped and will
+    /// be consumed again from the store's positions.
+    Abandoned,
+}
+
+/// Counters of this process's run, for the summary printed at exit.
+#[derive(Debug, Clone, Default)]
+pub struct RunCounters {
+    /// Messages consumed and committed.
+    pub messages: u64,
+    /// Accepted events by `kind/outcome`.
+    pub events: BTreeMap<String, u64>,
+    /// Dead letters delivered, by reason code.
+    pub dead_letters: BTreeMap<String, u64>,
+    /// Batches committed.
+    pub batches: u64,
+    /// Publication cycles completed.
+    pub cycles: u64,
+    /// Lists (and tombstones) delivered.
+    pub lists_delivered: u64,
+    /// Deliveries that failed and were left dirty for the next cycle.
+    pub lists_undelivered: u64,
+}
+
+/// The service state.
+pub struct Core {
+    /// The store.
+    pub store: Store,
+    /// The batch being collected.
+    pub pending: PendingBatch,
+    /// This run's counters.
+    pub counters: RunCounters,
+    /// Event-to-publication latency of this run.
+    pub latency: LatencyRecorder,
+    engine: EngineSettings,
+    lists: ListSettings,
+    limits: Limits,
+    config: Config,
+    producer: Arc<RecordProducer>,
+    health: Arc<Health>,
+    stopping: Arc<AtomicBool>,
+    /// Record timestamps of committed messages not yet covered by a publication.
+    unpublished_ms: Vec<i64>,
+}
+
+/// Waits before the next attempt, doubling up to [`MAX_BACKOFF`]; false when the
+/// deadline would pass first or shutdown began (checked every 100 ms of the wait).
+fn back_off(delay: &mut Duration, deadline: Option<Instant>, stopping: &AtomicBool) -> bool {
+    let until = Instant::now() + *delay;
+    if deadline.is_some_and(|d| until > d) {
+        return false;
+    }
+    while Instant::now() < until {
+        if stopping.load(Ordering::Relaxed) {
+            return false;
+        }
+        std::thread::sleep(Duration::from_millis(100).min(until.saturating_duration_since(Instant::now())));
+    }
+    *delay = (*delay * 2).min(MAX_BACKOFF);
+    true
+}
+
+impl Core {
+    /// Wraps an open store. Retries end early once `stopping` is set.
+    pub fn new(
+        store: Store,
+        config: &Config,
+        producer: Arc<RecordProducer>,
+        health: Arc<Health>,
+        stopping: Arc<AtomicBool>,
+    ) -> Core {
+        Core {
+            store,
+            pending: PendingBatch::default(),
+            counters: RunCounters::default(),
+            latency: LatencyRecorder::default(),
+            engine: EngineSettings::from_config(config),
+            lists: ListSettings::from_config(config),
+            limits: Limits::from_config(config),
+            config: config.clone(),
+            producer,
+            health,
+            stopping,
+            unpublished_ms: Vec::new(),
+        }
+    }
+
+    /// Decoding limits for incoming messages.
+    pub fn limits(&self) -> &Limits {
+        &self.limits
+    }
+
+    /// The store's next offsets for the input topic.
+    pub fn stored_offsets(&self) -> BTreeMap<i32, i64> {
+        self.store
+            .progress()
+            .offsets
+            .get(&self.config.kafka.input_topic)
+            .cloned()
+            .unwrap_or_default()
+    }
+
+    /// Whether the pending batch should be committed now.
+    pub fn batch_due(&self) -> bool {
+        self.pending.messages >= self.config.live.batch_events
+            || self
+                .pending
+                .opened
+                .is_some_and(|t| t.elapsed() >= self.config.live.batch_wait)
+    }
+
+    /// When the pending batch becomes due by age.
+    pub fn batch_deadline(&self) -> Option<Instant> {
+        self.pending.opened.map(|t| t + self.config.live.batch_wait)
+    }
+
+    /// Commits the pending batch: dead letters delivered first (a refused message is never
+    /// lost), then events, counters and the next offsets in one store write. Failures are
+    /// retried with backoff until `deadline`; consumption waits meanwhile.
+    pub fn flush(&mut self, deadline: Option<Instant>) -> Flushed {
+        if self.pending.is_empty() {
+            return Flushed::Nothing;
+        }
+        let kafka = &self.config.kafka;
+        let mut letters: Vec<OutRecord> = self
+            .pending
+            .rejected
+            .iter()
+            .map(|r| r.dead_letter(&kafka.input_topic, &kafka.dead_letter_topic))
+            .collect();
+        let mut delay = Duration::from_millis(200);
+        while !letters.is_empty() {
+            let report = self.producer.deliver(&letters, self.config.live.delivery_timeout);
+            if report.all_delivered() {
+                break;
+            }
+            tracing::warn!(
+                undelivered = report.failed.len(),
+                first_reason = %report.failed[0].1,
+                "dead letters not delivered; the batch waits and retries"
+            );
+            let failed: Vec<usize> = report.failed.iter().map(|(i, _)| *i).collect();
+            letters = failed.into_iter().map(|i| letters[i].clone()).collect();
+            if !back_off(&mut delay, deadline, &self.stopping) {
+                return self.abandon();
+            }
+        }
+        let rejects = self.pending.reject_counts();
+        let topic = kafka.input_topic.clone();
+        let offsets = self.pending.next_offsets.clone();
+        let mut delay = Duration::from_millis(200);
+        let summary = loop {
+            let advance = |p: &mut crate::store::Progress| {
+                let stored = p.offsets.entry(topic.clone()).or_default();
+                for (&partition, &next) in &offsets {
+                    stored.insert(partition, next);
+                }
+            };
+            match apply_and_commit(
+                &mut self.store,
+                &self.engine,
+                &self.pending.events,
+                &rejects,
+                advance,
+            ) {
+                Ok(summary) => break summary,
+                Err(e) => {
+                    let text = format!("store write failed: {e:#}");
+                    tracing::error!("{text}; consumption paused, retrying");
+                    self.health.set_store_error(Some(text));
+                    if !back_off(&mut delay, deadline, &self.stopping) {
+                        return self.abandon();
+                    }
+                }
+            }
+        };
+        self.health.set_store_error(None);
+        let batch = std::mem::take(&mut self.pending);
+        self.counters.messages += batch.messages as u64;
+        self.counters.batches += 1;
+        for (&(kind, outcome), &n) in &summary.outcomes {
+            *self
+                .counters
+                .events
+                .entry(event_counter_key(kind, outcome))
+                .or_default() += n;
+        }
+        for (reason, n) in rejects {
+            *self
+                .counters
+                .dead_letters
+                .entry(reason.code().to_string())
+                .or_default() += n;
+        }
+        self.unpublished_ms.extend(batch.timestamps_ms);
+        tracing::debug!(
+            messages = batch.messages,
+            pair_updates = summary.pair_updates,
+            "batch committed"
+        );
+        Flushed::Committed(offsets)
+    }
+
+    fn abandon(&mut self) -> Flushed {
+        tracing::warn!(
+            messages = self.pending.messages,
+            "batch dropped before commit; it will be consumed again from the stored positions"
+        );
+        self.pending = PendingBatch::default();
+        Flushed::Abandoned
+    }
+
+    /// Which output topics hold every stored list once they are all delivered.
+    fn destination(&self) -> String {
+        let k = &self.config.kafka;
+        format!("{} {} {}", k.brokers, k.output_topic, k.purchase_output_topic)
+    }
+
+    fn list_record(&self, signal: Signal, item: u32, list: &PublishedList) -> OutRecord {
+        let k = &self.config.kafka;
+        let topic = match signal {
+            Signal::Rating => &k.output_topic,
+            Signal::Purchase => &k.purchase_output_topic,
+        };
+        let value = (!list.neighbors.is_empty()).then(|| {
+            serde_json::to_vec(&NeighborRecord::from_stored(&self.store, signal, item, list))
+                .expect("a record serializes")
+        });
+        OutRecord {
+            topic: topic.clone(),
+            key: self.store.item_name(item).as_bytes().to_vec(),
+            value,
+            headers: Vec::new(),
+        }
+    }
+
+    /// Whether the output topics are known to hold every stored list (false after a
+    /// backfill or a change of topics or cluster).
+    pub fn outputs_in_sync(&self) -> Result<bool> {
+        Ok(self.store.delivered_to()?.as_deref() == Some(self.destination().as_str()))
+    }
+
+    /// Produces every stored list (tombstones for empty ones) and records the outputs as
+    /// in sync. Returns false when some delivery failed; it is tried again later.
+    pub fn republish_all(&mut self) -> Result<bool> {
+        let stored: Vec<(Signal, u32, PublishedList)> = self.store.all_published().collect::<Result<_>>()?;
+        tracing::info!(
+            lists = stored.len(),
+            "delivering every stored list to the output topics"
+        );
+        for chunk in stored.chunks(REPUBLISH_CHUNK) {
+            let records: Vec<OutRecord> = chunk
+                .iter()
+                .map(|(signal, item, list)| self.list_record(*signal, *item, list))
+                .collect();
+            let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
+            if !report.all_delivered() {
+                tracing::warn!(
+                    undelivered = report.failed.len(),
+                    first_reason = %report.failed[0].1,
+                    "republication incomplete; retrying later"
+                );
+                return Ok(false);
+            }
+            self.counters.lists_delivered += records.len() as u64;
+        }
+        self.store.set_delivered_to(&self.destination())?;
+        Ok(true)
+    }
+
+    /// One publication cycle: rescore dirty items, deliver the lists that changed, and
+    /// store as published only what the broker acknowledged; the rest stays dirty.
+    pub fn publish(&mut self) -> Result<CycleReport> {
+        let started_ms = now_nanos() / 1_000_000;
+        let covered = std::mem::take(&mut self.unpublished_ms);
+        let now = now_nanos();
+        let mut cycle = Cycle::plan(&self.store, now)?;
+        let destination = self.destination();
+        let mut undelivered = 0u64;
+        while let Some(mut writes) = cycle.next_chunk(&self.store, &self.lists)? {
+            let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
+            let records: Vec<OutRecord> = changed
+                .iter()
+                .map(|&i| {
+                    let w = &writes[i];
+                    self.list_record(
+                        w.signal,
+                        w.item,
+                        w.list.as_ref().expect("changed lists hold a list"),
+                    )
+                })
+                .collect();
+            if !records.is_empty() {
+                let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
+                for (k, reason) in &report.failed {
+                    writes[changed[*k]].redirty = true;
+                    tracing::debug!(%reason, "list not delivered");
+                }
+                undelivered += report.failed.len() as u64;
+                self.counters.lists_delivered += (records.len() - report.failed.len()) as u64;
+                let nothing_delivered = report.failed.len() == records.len();
+                self.store
+                    .write_publications(&writes, Delivery::Delivered(&destination), now)?;
+                if nothing_delivered {
+                    // The broker is away: end the cycle; what was not rescored keeps its
+                    // dirty marks (marks that expand to a whole row are cleared last).
+                    break;
+                }
+                continue;
+            }
+            self.store
+                .write_publications(&writes, Delivery::Delivered(&destination), now)?;
+        }
+        self.counters.cycles += 1;
+        self.counters.lists_undelivered += undelivered;
+        if undelivered > 0 {
+            tracing::warn!(
+                undelivered,
+                "lists not delivered; they stay dirty for the next cycle"
+            );
+        }
+        let delivered_ms = now_nanos() / 1_000_000;
+        if undelivered == 0 {
+            self.latency.record_all(&covered, delivered_ms);
+        } else {
+            // Not every list reflecting these events went out; keep them for the next cycle.
+            self.unpublished_ms = covered;
+        }
+        let report = cycle.report();
+        tracing::debug!(
+            rescored = report.rescored,
+            changed = report.changed,
+            millis = delivered_ms - started_ms,
+            "publication cycle"
+        );
+        Ok(report)
+    }
+}

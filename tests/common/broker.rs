@@ -1,0 +1,126 @@
+//! A real Kafka-protocol broker for the tests: tansu 0.6.0 (crates.io), built into the
+//! cache by scripts/setup.sh, started on a free 127.0.0.1 port with its sqlite storage
+//! engine in a temp directory, and stopped (or restarted on the same port and data) by
+//! the test.
+
+use std::net::TcpStream;
+use std::path::PathBuf;
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
+use rdkafka::client::DefaultClientContext;
+use rdkafka::ClientConfig;
+
+use super::cache_dir;
+
+/// A free TCP port on 127.0.0.1 (bound, then released for the child to take).
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .expect("an ephemeral port")
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+/// A running tansu broker.
+pub struct Broker {
+    child: Option<Child>,
+    port: u16,
+    data: tempfile::TempDir,
+}
+
+fn tansu_binary() -> PathBuf {
+    let path = cache_dir().join("tools/bin/tansu");
+    assert!(
+        path.exists(),
+        "{} is missing: run `scripts/setup.sh test` (make test does)",
+        path.display()
+    );
+    path
+}
+
+impl Broker {
+    /// Starts a broker with empty storage and waits until it accepts connections.
+    pub fn start() -> Broker {
+        let mut broker = Broker {
+            child: None,
+            port: free_port(),
+            data: tempfile::tempdir().expect("broker data dir"),
+        };
+        broker.resume();
+        broker
+    }
+
+    /// `host:port` for bootstrap.servers.
+    pub fn bootstrap(&self) -> String {
+        format!("127.0.0.1:{}", self.port)
+    }
+
+    /// Kills the broker process (its storage stays).
+    pub fn stop(&mut self) {
+        if let Some(mut child) = self.child.take() {
+            let _ = child.kill();
+            let _ = child.wait();
+        }
+    }
+
+    /// Starts the broker again on the same port and storage.
+    pub fn resume(&mut self) {
+        assert!(self.child.is_none(), "broker already running");
+        let url = format!("tcp://127.0.0.1:{}", self.port);
+        let storage = format!("sqlite://{}", self.data.path().join("tansu.db").display());
+        let log = std::fs::File::create(self.data.path().join("broker.log")).expect("broker log");
+        let child = Command::new(tansu_binary())
+            .args([
+                "broker",
+                "--listener-url",
+                &url,
+                "--advertised-listener-url",
+                &url,
+            ])
+            .args(["--storage-engine", &storage])
+            .stdout(Stdio::null())
+            .stderr(log)
+            .spawn()
+            .expect("tansu starts");
+        self.child = Some(child);
+        let deadline = Instant::now() + Duration::from_secs(30);
+        while TcpStream::connect(("127.0.0.1", self.port)).is_err() {
+            assert!(
+                Instant::now() < deadline,
+                "tansu did not listen on port {} within 30 s",
+                self.port
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+
+    /// Creates a topic (tansu does not auto-create), compacted when asked.
+    pub fn create_topic(&self, name: &str, partitions: i32, compacted: bool) {
+        let admin: AdminClient<DefaultClientContext> = ClientConfig::new()
+            .set("bootstrap.servers", self.bootstrap())
+            .create()
+            .expect("admin client");
+        let mut topic = NewTopic::new(name, partitions, TopicReplication::Fixed(1));
+        if compacted {
+            topic = topic.set("cleanup.policy", "compact");
+        }
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()
+            .unwrap();
+        let results = runtime
+            .block_on(admin.create_topics([&topic], &AdminOptions::new()))
+            .expect("create_topics answered");
+        for r in results {
+            r.unwrap_or_else(|(t, e)| panic!("creating topic {t}: {e}"));
+        }
+    }
+}
+
+impl Drop for Broker {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}

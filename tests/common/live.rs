@@ -1,0 +1,373 @@
+//! Driving `simtide run` as a real process against a real broker: its configuration, the
+//! events produced to the input topic, what it published, and its HTTP answers.
+
+use std::collections::BTreeMap;
+use std::io::{BufRead, BufReader, Read, Write};
+use std::net::TcpStream;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, ExitStatus, Stdio};
+use std::time::{Duration, Instant};
+
+use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::message::Headers;
+use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
+use rdkafka::{ClientConfig, Message, Offset, TopicPartitionList};
+
+use super::broker::free_port;
+
+/// The topic names every live test uses.
+pub const INPUT: &str = "ratings-in";
+/// Rating lists.
+pub const OUTPUT: &str = "lists-out";
+/// Purchase lists.
+pub const PURCHASE_OUTPUT: &str = "bought-out";
+/// Dead letters.
+pub const DEAD_LETTER: &str = "ratings-dead";
+/// The service's consumer group.
+pub const GROUP: &str = "simtide-test";
+
+/// Settings a live test varies.
+#[derive(Debug, Clone)]
+pub struct LiveSettings {
+    /// similarity.recenter_tolerance
+    pub tolerance: f64,
+    /// similarity.min_support
+    pub min_support: u64,
+    /// publish.interval
+    pub publish_interval: &'static str,
+    /// live.batch_events
+    pub batch_events: usize,
+}
+
+impl Default for LiveSettings {
+    fn default() -> Self {
+        LiveSettings {
+            tolerance: 0.0,
+            min_support: 1,
+            publish_interval: "1s",
+            batch_events: 2000,
+        }
+    }
+}
+
+/// Writes a configuration for `simtide run`; returns its path and the HTTP port.
+pub fn write_config(dir: &Path, brokers: &str, store: &Path, s: &LiveSettings) -> (PathBuf, u16) {
+    let port = free_port();
+    let text = format!(
+        r#"[similarity]
+recenter_tolerance = {tol}
+min_support = {support}
+max_items_per_user = 0
+[store]
+dir = "{store}"
+[kafka]
+brokers = "{brokers}"
+group = "{GROUP}"
+input_topic = "{INPUT}"
+output_topic = "{OUTPUT}"
+purchase_output_topic = "{PURCHASE_OUTPUT}"
+dead_letter_topic = "{DEAD_LETTER}"
+create_topics = false
+[kafka.client]
+"topic.metadata.refresh.interval.ms" = "2000"
+[live]
+batch_events = {batch}
+batch_wait = "100ms"
+shutdown_timeout = "60s"
+[publish]
+interval = "{interval}"
+[http]
+listen = "127.0.0.1:{port}"
+"#,
+        tol = s.tolerance,
+        support = s.min_support,
+        store = store.display(),
+        batch = s.batch_events,
+        interval = s.publish_interval,
+    );
+    let path = dir.join(format!("simtide-{port}.toml"));
+    std::fs::write(&path, text).unwrap();
+    (path, port)
+}
+
+/// A running `simtide run` process.
+pub struct Service {
+    child: Child,
+    /// Where its stderr (the log) goes.
+    pub log: PathBuf,
+    /// Its HTTP port.
+    pub port: u16,
+}
+
+impl Service {
+    /// Starts `simtide run --config FILE` with extra arguments.
+    pub fn start(config: &Path, port: u16, extra: &[&str]) -> Service {
+        static STARTS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let n = STARTS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let log = config.with_extension(format!("run{n}.log"));
+        let child = Command::new(env!("CARGO_BIN_EXE_simtide"))
+            .arg("run")
+            .arg("--config")
+            .arg(config)
+            .args(extra)
+            .env("SIMTIDE_LOG", "info")
+            .stdout(Stdio::piped())
+            .stderr(std::fs::File::create(&log).unwrap())
+            .spawn()
+            .expect("simtide starts");
+        Service { child, log, port }
+    }
+
+    /// Sends SIGTERM and waits for the exit; returns the status and stdout.
+    pub fn terminate(mut self, within: Duration) -> (ExitStatus, String) {
+        let pid = self.child.id().to_string();
+        Command::new("kill").args(["-TERM", &pid]).status().unwrap();
+        let deadline = Instant::now() + within;
+        loop {
+            if let Some(status) = self.child.try_wait().unwrap() {
+                let mut out = String::new();
+                self.child
+                    .stdout
+                    .take()
+                    .unwrap()
+                    .read_to_string(&mut out)
+                    .unwrap();
+                return (status, out);
+            }
+            assert!(
+                Instant::now() < deadline,
+                "simtide did not exit within {within:?} of SIGTERM"
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+
+    /// SIGKILL, no chance to clean up.
+    pub fn kill(mut self) {
+        self.child.kill().unwrap();
+        self.child.wait().unwrap();
+    }
+
+    /// Whether the process is still running.
+    pub fn running(&mut self) -> bool {
+        self.child.try_wait().unwrap().is_none()
+    }
+
+    /// GET `path` on the service's HTTP port: (status code, body), `None` if it does not
+    /// answer.
+    pub fn get(&self, path: &str) -> Option<(u16, String)> {
+        http_get(self.port, path)
+    }
+
+    /// The log so far.
+    pub fn log_text(&self) -> String {
+        std::fs::read_to_string(&self.log).unwrap_or_default()
+    }
+}
+
+impl Drop for Service {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// A minimal HTTP/1.0 GET.
+pub fn http_get(port: u16, path: &str) -> Option<(u16, String)> {
+    let mut stream = TcpStream::connect(("127.0.0.1", port)).ok()?;
+    stream.set_read_timeout(Some(Duration::from_secs(5))).ok()?;
+    write!(stream, "GET {path} HTTP/1.0\r\nHost: 127.0.0.1\r\n\r\n").ok()?;
+    let mut text = String::new();
+    stream.read_to_string(&mut text).ok()?;
+    let status = text.split_whitespace().nth(1)?.parse().ok()?;
+    let body = text.split_once("\r\n\r\n").map_or("", |(_, b)| b).to_string();
+    Some((status, body))
+}
+
+/// Waits until `check` holds, panicking with `what` after `within`.
+pub fn wait_for(what: &str, within: Duration, mut check: impl FnMut() -> bool) {
+    let deadline = Instant::now() + within;
+    while !check() {
+        assert!(
+            Instant::now() < deadline,
+            "timed out after {within:?} waiting for {what}"
+        );
+        std::thread::sleep(Duration::from_millis(200));
+    }
+}
+
+/// One simtide CSV row of MovieLens as a JSON event: (key = user, value, `at` seconds).
+pub fn csv_events(csv: &Path, limit: usize) -> Vec<(String, String, i64)> {
+    let file = std::fs::File::open(csv).unwrap();
+    BufReader::new(file)
+        .lines()
+        .skip(1)
+        .take(limit)
+        .map(|line| {
+            let line = line.unwrap();
+            let f: Vec<&str> = line.split(',').collect();
+            let at: i64 = f[3].parse().unwrap();
+            let value = format!(
+                r#"{{"kind":"rating","user":"{}","item":"{}","value":{},"at":{at}}}"#,
+                f[0], f[1], f[2]
+            );
+            (f[0].to_string(), value, at)
+        })
+        .collect()
+}
+
+/// Writes the first `limit` rows of a CSV (header kept) to `out`.
+pub fn csv_slice(csv: &Path, limit: usize, out: &Path) {
+    let text = std::fs::read_to_string(csv).unwrap();
+    let kept: Vec<&str> = text.lines().take(limit + 1).collect();
+    std::fs::write(out, kept.join("\n") + "\n").unwrap();
+}
+
+/// Produces (key, value, timestamp ms) records to a topic and waits for every
+/// acknowledgement.
+pub fn produce(brokers: &str, topic: &str, records: &[(String, String, Option<i64>)]) {
+    let producer: ThreadedProducer<DefaultProducerContext> = ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("enable.idempotence", "true")
+        .set("linger.ms", "20")
+        .create()
+        .expect("producer");
+    for (key, value, ts) in records {
+        let mut record = BaseRecord::to(topic).key(key.as_str()).payload(value.as_str());
+        if let Some(ts) = ts {
+            record = record.timestamp(*ts);
+        }
+        while let Err((e, back)) = producer.send(record) {
+            assert!(
+                matches!(
+                    e.rdkafka_error_code(),
+                    Some(rdkafka::error::RDKafkaErrorCode::QueueFull)
+                ),
+                "produce failed: {e}"
+            );
+            record = back;
+            std::thread::sleep(Duration::from_millis(5));
+        }
+    }
+    producer
+        .flush(Duration::from_secs(60))
+        .expect("all records acknowledged");
+}
+
+fn client(brokers: &str, group: &str) -> BaseConsumer {
+    ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("group.id", group)
+        .set("enable.auto.commit", "false")
+        .create()
+        .expect("consumer")
+}
+
+/// Whether the service group's committed offsets reached the end of every partition.
+pub fn caught_up(brokers: &str, partitions: i32) -> bool {
+    let c = client(brokers, GROUP);
+    let mut tpl = TopicPartitionList::new();
+    for p in 0..partitions {
+        tpl.add_partition(INPUT, p);
+    }
+    let Ok(committed) = c.committed_offsets(tpl, Duration::from_secs(5)) else {
+        return false;
+    };
+    committed.elements().iter().all(|e| {
+        let high = c
+            .fetch_watermarks(INPUT, e.partition(), Duration::from_secs(5))
+            .map_or(-1, |(_, h)| h);
+        high == 0 || e.offset() == Offset::Offset(high)
+    })
+}
+
+/// One record read back from a topic.
+#[derive(Debug, Clone)]
+pub struct ReadRecord {
+    /// Key.
+    pub key: String,
+    /// Value, `None` for a tombstone.
+    pub value: Option<Vec<u8>>,
+    /// Headers.
+    pub headers: BTreeMap<String, String>,
+}
+
+/// Every record of a topic from the beginning to its current end, in partition order.
+pub fn read_all(brokers: &str, topic: &str) -> Vec<ReadRecord> {
+    let c = client(brokers, "simtide-test-reader");
+    let metadata = c.fetch_metadata(Some(topic), Duration::from_secs(10)).unwrap();
+    let mut ends = BTreeMap::new();
+    let mut tpl = TopicPartitionList::new();
+    for p in metadata.topics()[0].partitions() {
+        let (low, high) = c
+            .fetch_watermarks(topic, p.id(), Duration::from_secs(10))
+            .unwrap();
+        if high > low {
+            ends.insert(p.id(), high);
+            tpl.add_partition_offset(topic, p.id(), Offset::Offset(low))
+                .unwrap();
+        }
+    }
+    c.assign(&tpl).unwrap();
+    let mut out = Vec::new();
+    let deadline = Instant::now() + Duration::from_secs(120);
+    while !ends.is_empty() {
+        assert!(
+            Instant::now() < deadline,
+            "reading {topic} to its end took too long"
+        );
+        let Some(m) = c.poll(Duration::from_millis(500)) else {
+            // Records without a value may be skipped by the broker: the position says
+            // whether a partition is done.
+            for e in c.position().unwrap().elements() {
+                if let (Offset::Offset(at), Some(&end)) = (e.offset(), ends.get(&e.partition())) {
+                    if at >= end {
+                        ends.remove(&e.partition());
+                    }
+                }
+            }
+            continue;
+        };
+        let m = m.unwrap();
+        let headers = m
+            .headers()
+            .map(|h| {
+                h.iter()
+                    .map(|x| {
+                        (
+                            x.key.to_string(),
+                            String::from_utf8_lossy(x.value.unwrap_or_default()).into_owned(),
+                        )
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        out.push(ReadRecord {
+            key: String::from_utf8_lossy(m.key().unwrap_or_default()).into_owned(),
+            value: m.payload().map(<[u8]>::to_vec),
+            headers,
+        });
+        if ends.get(&m.partition()).is_some_and(|&end| m.offset() + 1 >= end) {
+            ends.remove(&m.partition());
+        }
+    }
+    out
+}
+
+/// The last record per key, in the form of `simtide export` (one JSON line per list),
+/// written to `out`; keys whose last record is a tombstone are left out, as export leaves
+/// out empty lists. Returns the number of lists written.
+pub fn last_lists_as_export(records: &[ReadRecord], out: &Path) -> usize {
+    let mut last: BTreeMap<&str, &Option<Vec<u8>>> = BTreeMap::new();
+    for r in records {
+        last.insert(&r.key, &r.value);
+    }
+    let mut file = std::fs::File::create(out).unwrap();
+    let mut n = 0;
+    for value in last.values().filter_map(|v| v.as_ref()) {
+        file.write_all(value).unwrap();
+        file.write_all(b"\n").unwrap();
+        n += 1;
+    }
+    n
+}
