@@ -217,9 +217,13 @@ impl Config {
             }
             target.insert(key, parsed);
         }
-        let config: Config = toml::Value::Table(table)
-            .try_into()
-            .map_err(|e: toml::de::Error| anyhow::anyhow!("{origin}: {}", e.message()))?;
+        // The path of the offending key goes into the message: toml's own error loses it
+        // once environment overrides have been merged into the table.
+        let config: Config = serde_path_to_error::deserialize(toml::Value::Table(table)).map_err(
+            |e: serde_path_to_error::Error<toml::de::Error>| {
+                anyhow::anyhow!("{origin}: {}: {}", e.path(), e.inner().message())
+            },
+        )?;
         config.validate()?;
         Ok(config)
     }
