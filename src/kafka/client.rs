@@ -116,6 +116,13 @@ impl BusContext {
 
 impl ClientContext for BusContext {
     fn log(&self, level: RDKafkaLogLevel, facility: &str, message: &str) {
+        // One [kafka.client] table serves consumer, producer and admin clients, so
+        // librdkafka warns of every property a client type ignores: not news.
+        let level = if facility == "CONFWARN" {
+            RDKafkaLogLevel::Debug
+        } else {
+            level
+        };
         let Some(held) = self.admit(facility) else {
             return;
         };

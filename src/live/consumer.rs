@@ -84,6 +84,17 @@ impl LiveContext {
                 tracing::error!(error = %self.bus.scrubber().scrub(&e.to_string()), "cannot take the assignment")
             }
         }
+        // Tell the group where the store is, so external lag tools are right even for a
+        // partition that stays idle (or a group that never committed before).
+        let known: BTreeMap<i32, i64> = stored
+            .into_iter()
+            .filter(|(p, _)| tpl.elements().iter().any(|e| e.partition() == *p))
+            .collect();
+        if !known.is_empty() {
+            if let Err(e) = consumer.commit(&offsets_list(&self.topic, &known), CommitMode::Async) {
+                tracing::debug!(error = %e, "group offsets not committed at assignment");
+            }
+        }
     }
 
     fn revoke(&self, consumer: &BaseConsumer<Self>, tpl: &TopicPartitionList) {

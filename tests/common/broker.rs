@@ -69,7 +69,8 @@ impl Broker {
     pub fn resume(&mut self) {
         assert!(self.child.is_none(), "broker already running");
         let url = format!("tcp://127.0.0.1:{}", self.port);
-        let storage = format!("sqlite://{}", self.data.path().join("tansu.db").display());
+        // tansu reads the sqlite path relative to its working directory.
+        let storage = "sqlite://tansu.db";
         let log = std::fs::File::create(self.data.path().join("broker.log")).expect("broker log");
         let child = Command::new(tansu_binary())
             .args([
@@ -79,7 +80,8 @@ impl Broker {
                 "--advertised-listener-url",
                 &url,
             ])
-            .args(["--storage-engine", &storage])
+            .args(["--storage-engine", storage])
+            .current_dir(self.data.path())
             .stdout(Stdio::null())
             .stderr(log)
             .spawn()

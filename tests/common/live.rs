@@ -102,6 +102,11 @@ pub struct Service {
 impl Service {
     /// Starts `simtide run --config FILE` with extra arguments.
     pub fn start(config: &Path, port: u16, extra: &[&str]) -> Service {
+        Service::start_in_group(config, port, extra, GROUP)
+    }
+
+    /// Starts the service in consumer group `group` (an environment override).
+    pub fn start_in_group(config: &Path, port: u16, extra: &[&str], group: &str) -> Service {
         static STARTS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
         let n = STARTS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
         let log = config.with_extension(format!("run{n}.log"));
@@ -110,7 +115,11 @@ impl Service {
             .arg("--config")
             .arg(config)
             .args(extra)
-            .env("SIMTIDE_LOG", "info")
+            .env(
+                "SIMTIDE_LOG",
+                std::env::var("SIMTIDE_TEST_LOG").unwrap_or_else(|_| "info".into()),
+            )
+            .env("SIMTIDE_KAFKA__GROUP", group)
             .stdout(Stdio::piped())
             .stderr(std::fs::File::create(&log).unwrap())
             .spawn()
@@ -265,7 +274,31 @@ fn client(brokers: &str, group: &str) -> BaseConsumer {
 
 /// Whether the service group's committed offsets reached the end of every partition.
 pub fn caught_up(brokers: &str, partitions: i32) -> bool {
-    let c = client(brokers, GROUP);
+    caught_up_in(brokers, GROUP, partitions)
+}
+
+/// Σ of `group`'s committed offsets over the input partitions (0 where none).
+pub fn committed_total(brokers: &str, group: &str, partitions: i32) -> i64 {
+    let c = client(brokers, group);
+    let mut tpl = TopicPartitionList::new();
+    for p in 0..partitions {
+        tpl.add_partition(INPUT, p);
+    }
+    c.committed_offsets(tpl, Duration::from_secs(5))
+        .map_or(0, |list| {
+            list.elements()
+                .iter()
+                .map(|e| match e.offset() {
+                    Offset::Offset(o) => o,
+                    _ => 0,
+                })
+                .sum()
+        })
+}
+
+/// Whether `group`'s committed offsets reached the end of every partition.
+pub fn caught_up_in(brokers: &str, group: &str, partitions: i32) -> bool {
+    let c = client(brokers, group);
     let mut tpl = TopicPartitionList::new();
     for p in 0..partitions {
         tpl.add_partition(INPUT, p);
