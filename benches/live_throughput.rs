@@ -22,6 +22,7 @@ use common::live::{
     OUTPUT, PURCHASE_OUTPUT,
 };
 use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
 use rdkafka::{ClientConfig, Offset, TopicPartitionList};
 
 const PARTITIONS: i32 = 3;
@@ -35,31 +36,46 @@ fn fresh_broker() -> Broker {
     broker
 }
 
-/// Σ over partitions of (high watermark − the group's committed offset).
-fn lag(brokers: &str) -> i64 {
-    let c: BaseConsumer = ClientConfig::new()
-        .set("bootstrap.servers", brokers)
-        .set("group.id", GROUP)
-        .create()
-        .unwrap();
-    let mut tpl = TopicPartitionList::new();
-    for p in 0..PARTITIONS {
-        tpl.add_partition(INPUT, p);
+/// Reads the service group's consumer lag: Σ over partitions of (high watermark − the
+/// group's committed offset).
+struct LagReader {
+    client: BaseConsumer,
+}
+
+impl LagReader {
+    fn new(brokers: &str) -> LagReader {
+        let client = ClientConfig::new()
+            .set("bootstrap.servers", brokers)
+            .set("group.id", GROUP)
+            .create()
+            .unwrap();
+        LagReader { client }
     }
-    let committed = c.committed_offsets(tpl, Duration::from_secs(5)).unwrap();
-    committed
-        .elements()
-        .iter()
-        .map(|e| {
-            let (_, high) = c
-                .fetch_watermarks(INPUT, e.partition(), Duration::from_secs(5))
-                .unwrap();
-            match e.offset() {
-                Offset::Offset(o) => high - o,
-                _ => high,
-            }
-        })
-        .sum()
+
+    fn lag(&self) -> i64 {
+        let mut tpl = TopicPartitionList::new();
+        for p in 0..PARTITIONS {
+            tpl.add_partition(INPUT, p);
+        }
+        let committed = self
+            .client
+            .committed_offsets(tpl, Duration::from_secs(5))
+            .unwrap();
+        committed
+            .elements()
+            .iter()
+            .map(|e| {
+                let (_, high) = self
+                    .client
+                    .fetch_watermarks(INPUT, e.partition(), Duration::from_secs(5))
+                    .unwrap();
+                match e.offset() {
+                    Offset::Offset(o) => high - o,
+                    _ => high,
+                }
+            })
+            .sum()
+    }
 }
 
 fn defaults() -> LiveSettings {
@@ -113,7 +129,14 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
         service.get("/readyz").is_some_and(|(s, _)| s == 200)
     });
     let brokers = broker.bootstrap();
-    let chunk = (rate / 10.0).max(1.0) as usize;
+    let producer: ThreadedProducer<DefaultProducerContext> = ClientConfig::new()
+        .set("bootstrap.servers", &brokers)
+        .set("enable.idempotence", "true")
+        .set("linger.ms", "5")
+        .create()
+        .unwrap();
+    let lag_reader = LagReader::new(&brokers);
+    let chunk = (rate / 20.0).max(1.0) as usize;
     let started = Instant::now();
     let mut lags = Vec::new();
     let mut last_sample = Instant::now();
@@ -122,12 +145,19 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
         if let Some(wait) = due.checked_sub(started.elapsed()) {
             std::thread::sleep(wait);
         }
-        produce(&brokers, INPUT, part);
+        for (key, value, _) in part {
+            let mut record = BaseRecord::to(INPUT).key(key.as_str()).payload(value.as_str());
+            while let Err((_, back)) = producer.send(record) {
+                record = back;
+                std::thread::sleep(Duration::from_millis(1));
+            }
+        }
         if last_sample.elapsed() >= Duration::from_millis(500) {
-            lags.push(lag(&brokers));
+            lags.push(lag_reader.lag());
             last_sample = Instant::now();
         }
     }
+    producer.flush(Duration::from_secs(30)).unwrap();
     let offered_s = started.elapsed().as_secs_f64();
     wait_for("paced run to catch up", Duration::from_secs(300), || {
         caught_up(&brokers, PARTITIONS)
