@@ -534,3 +534,42 @@ fn full_movielens_at_the_default_tolerance_stays_within_the_engine_bound() {
     assert!(overlap > 0.9, "mean top-50 overlap {overlap}");
     assert_eq!(sc.counters().0.get("rating/applied"), Some(&(all as u64)));
 }
+
+#[test]
+fn missing_written_topics_are_created_at_start_up() {
+    let work = tempfile::tempdir().unwrap();
+    let broker = Broker::start();
+    broker.create_topic(INPUT, 3, false);
+    let (config, port) = write_config(
+        work.path(),
+        &broker.bootstrap(),
+        &work.path().join("store"),
+        &LiveSettings::default(),
+    );
+    let text = std::fs::read_to_string(&config)
+        .unwrap()
+        .replace("create_topics = false", "create_topics = true");
+    std::fs::write(&config, text).unwrap();
+    let service = Service::start(&config, port, &[]);
+    let client: rdkafka::consumer::BaseConsumer = rdkafka::ClientConfig::new()
+        .set("bootstrap.servers", broker.bootstrap())
+        .create()
+        .unwrap();
+    let topics = || -> Vec<String> {
+        use rdkafka::consumer::Consumer;
+        client
+            .fetch_metadata(None, Duration::from_secs(5))
+            .map(|m| m.topics().iter().map(|t| t.name().to_string()).collect())
+            .unwrap_or_default()
+    };
+    wait_for("the written topics to exist", Duration::from_secs(60), || {
+        let t = topics();
+        [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER]
+            .iter()
+            .all(|w| t.iter().any(|x| x == w))
+    });
+    let log = service.log_text();
+    assert!(log.contains("created topic"), "{log}");
+    let (status, _) = service.terminate(Duration::from_secs(30));
+    assert!(status.success());
+}
