@@ -23,6 +23,14 @@ if [ ${#need_apt[@]} -gt 0 ]; then
 fi
 [ "$mode" = build ] && exit 0
 
+# promtool (Debian's prometheus package) checks the metrics exposition in the tests.
+if ! command -v promtool >/dev/null 2>&1; then
+  echo "setup: installing prometheus (for promtool)"
+  export DEBIAN_FRONTEND=noninteractive
+  apt-get update -qq
+  apt-get install -y -qq prometheus >/dev/null
+fi
+
 mkdir -p "$CACHE" "$DATA"
 if [ ! -x "$VENV/bin/python" ] || ! "$VENV/bin/python" -c 'import numpy, scipy' 2>/dev/null; then
   echo "setup: creating Python venv with numpy and scipy in $VENV"

@@ -30,6 +30,8 @@ pub struct BatchSummary {
     pub recenterings: u64,
     /// Largest |mean − center| among touched users after the batch.
     pub max_center_gap: f64,
+    /// |mean − center| of each touched user with ratings after the batch.
+    pub center_gaps: Vec<f64>,
 }
 
 /// Dense ids of one kind of name (users or items) within a batch: known ones, and the
@@ -205,5 +207,6 @@ pub fn apply_and_commit(
         pair_updates: effects.pair_updates,
         recenterings: effects.recenterings,
         max_center_gap: effects.max_center_gap,
+        center_gaps: effects.center_gaps.clone(),
     })
 }

@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use anyhow::Result;
 use rustc_hash::FxHashSet;
 
+use crate::drift::{overlap_drift, rank_biased_overlap, RBO_PERSISTENCE};
 use crate::score::{purchase_list_score, rating_list_score, ListSettings};
 use crate::signal::Signal;
 use crate::store::codec::{PublishedList, StoredNeighbor};
@@ -201,6 +202,23 @@ fn compute_in_parallel(
     })
 }
 
+/// How far a changed list moved from the one it replaces.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ListDrift {
+    /// 1 − share of neighbors kept ([`overlap_drift`]).
+    pub changed_share: f64,
+    /// Rank-biased overlap with p = 0.9 ([`rank_biased_overlap`]).
+    pub rbo: f64,
+}
+
+/// One rescored item: what to store, and the drift when its list changed.
+pub struct Rescored {
+    /// The store write.
+    pub write: PublicationWrite,
+    /// Drift from the previous list; `None` for a first list or an unchanged one.
+    pub drift: Option<ListDrift>,
+}
+
 /// One publication cycle: the dirty items of both signals, planned at the start and
 /// rescored chunk by chunk. The caller stores each chunk (after delivering it, in the live
 /// service), so a list is never recorded as published before it reached its readers.
@@ -238,6 +256,11 @@ impl Cycle {
         self.plan.len() as u64
     }
 
+    /// Newest event time the cycle's lists reflect.
+    pub fn watermark(&self) -> Option<i64> {
+        self.watermark
+    }
+
     /// Lists rescored so far.
     pub fn done(&self) -> u64 {
         self.position as u64
@@ -245,18 +268,14 @@ impl Cycle {
 
     /// Rescores the next chunk; `None` when the cycle is complete. Each write holds the new
     /// list when it changed, and the dirty mark it clears.
-    pub fn next_chunk(
-        &mut self,
-        store: &Store,
-        settings: &ListSettings,
-    ) -> Result<Option<Vec<PublicationWrite>>> {
+    pub fn next_chunk(&mut self, store: &Store, settings: &ListSettings) -> Result<Option<Vec<Rescored>>> {
         if self.position >= self.plan.len() {
             return Ok(None);
         }
         let end = (self.position + WRITE_CHUNK).min(self.plan.len());
         let chunk = &self.plan[self.position..end];
         let lists = compute_in_parallel(store, chunk, settings, &self.unavailable, &self.names)?;
-        let mut writes = Vec::with_capacity(chunk.len());
+        let mut writes: Vec<Rescored> = Vec::with_capacity(chunk.len());
         for (&(signal, item, clears_mark), scored) in chunk.iter().zip(lists) {
             self.report.rating_pairs_seen += scored.row_len as u64;
             let neighbors = scored.neighbors;
@@ -266,6 +285,17 @@ impl Cycle {
                 None => !neighbors.is_empty(),
             };
             self.report.rescored += 1;
+            let drift = match &previous {
+                Some(p) if changed => {
+                    let before: Vec<u32> = p.neighbors.iter().map(|n| n.item).collect();
+                    let after: Vec<u32> = neighbors.iter().map(|n| n.item).collect();
+                    Some(ListDrift {
+                        changed_share: overlap_drift(&before, &after),
+                        rbo: rank_biased_overlap(&before, &after, RBO_PERSISTENCE),
+                    })
+                }
+                _ => None,
+            };
             let list = changed.then(|| {
                 self.report.changed += 1;
                 self.report.tombstones += u64::from(neighbors.is_empty());
@@ -276,12 +306,15 @@ impl Cycle {
                     neighbors,
                 }
             });
-            writes.push(PublicationWrite {
-                signal,
-                item,
-                list,
-                clears_mark,
-                redirty: false,
+            writes.push(Rescored {
+                write: PublicationWrite {
+                    signal,
+                    item,
+                    list,
+                    clears_mark,
+                    redirty: false,
+                },
+                drift,
             });
         }
         self.position = end;
@@ -306,7 +339,8 @@ pub fn publish_dirty(
     mut on_progress: impl FnMut(u64, u64),
 ) -> Result<CycleReport> {
     let mut cycle = Cycle::plan(store, now)?;
-    while let Some(writes) = cycle.next_chunk(store, settings)? {
+    while let Some(rescored) = cycle.next_chunk(store, settings)? {
+        let writes: Vec<PublicationWrite> = rescored.into_iter().map(|r| r.write).collect();
         store.write_publications(&writes, Delivery::StoredOnly, now)?;
         on_progress(cycle.done(), cycle.total());
     }

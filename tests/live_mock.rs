@@ -8,26 +8,10 @@ mod common;
 use std::time::Duration;
 
 use common::live::{
-    produce, read_all, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, INPUT, OUTPUT,
-    PURCHASE_OUTPUT,
+    produce, rating, read_all, unrating, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, INPUT,
+    OUTPUT, PURCHASE_OUTPUT,
 };
 use rdkafka::mocking::MockCluster;
-
-fn rating(user: &str, item: &str, value: u8, at: u32) -> (String, String, Option<i64>) {
-    (
-        user.to_string(),
-        format!(r#"{{"kind":"rating","user":"{user}","item":"{item}","value":{value},"at":{at}}}"#),
-        None,
-    )
-}
-
-fn unrating(user: &str, item: &str, at: u32) -> (String, String, Option<i64>) {
-    (
-        user.to_string(),
-        format!(r#"{{"kind":"unrating","user":"{user}","item":"{item}","at":{at}}}"#),
-        None,
-    )
-}
 
 fn mock_with_topics() -> MockCluster<'static, rdkafka::producer::DefaultProducerContext> {
     let mock = MockCluster::new(1).expect("mock cluster");

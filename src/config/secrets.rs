@@ -32,6 +32,7 @@ impl Scrubber {
             .iter()
             .filter(|(k, v)| is_secret_key(k) && !v.is_empty())
             .map(|(_, v)| v.clone())
+            .chain((!config.http.admin_token.is_empty()).then(|| config.http.admin_token.clone()))
             .collect();
         // Longest first, so a secret that contains another is masked whole.
         values.sort_by_key(|v| std::cmp::Reverse(v.len()));
@@ -59,10 +60,9 @@ impl Scrubber {
             }
         }
         for (name, value) in env {
-            if name.starts_with(super::ENV_PREFIX)
-                && name.to_ascii_uppercase().contains("__CLIENT__")
-                && is_secret_key(&name)
-            {
+            let upper = name.to_ascii_uppercase();
+            let client_secret = upper.contains("__CLIENT__") && is_secret_key(&name);
+            if name.starts_with(super::ENV_PREFIX) && (client_secret || upper.ends_with("__ADMIN_TOKEN")) {
                 values.push(value);
             }
         }
@@ -86,6 +86,9 @@ impl Scrubber {
 /// The configuration as it would be printed: secret values masked.
 pub fn masked(config: &Config) -> Config {
     let mut shown = config.clone();
+    if !shown.http.admin_token.is_empty() {
+        shown.http.admin_token = MASK.to_string();
+    }
     for (key, value) in shown.kafka.client.iter_mut() {
         if is_secret_key(key) {
             *value = MASK.to_string();

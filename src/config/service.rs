@@ -135,12 +135,16 @@ impl Default for PublishConfig {
 pub struct HttpConfig {
     /// Address to listen on; loopback unless told otherwise.
     pub listen: String,
+    /// Bearer token for the endpoints that change state (republish, compact); empty
+    /// turns them off. Best set through SIMTIDE_HTTP__ADMIN_TOKEN.
+    pub admin_token: String,
 }
 
 impl Default for HttpConfig {
     fn default() -> Self {
         HttpConfig {
             listen: "127.0.0.1:9464".to_string(),
+            admin_token: String::new(),
         }
     }
 }

@@ -162,6 +162,8 @@ pub struct BatchEffects {
     pub pair_updates: u64,
     /// Largest |mean − center| among touched users after the batch.
     pub max_center_gap: f64,
+    /// |mean − center| of every touched user with ratings, after the batch.
+    pub center_gaps: Vec<f64>,
     /// Newest event time among applied events.
     pub newest_event_at: Option<UnixNanos>,
 }
@@ -299,7 +301,9 @@ fn settle_user(
             state.center = mean;
             fx.recenterings += 1;
         }
-        fx.max_center_gap = fx.max_center_gap.max((mean - state.center).abs());
+        let gap = (mean - state.center).abs();
+        fx.max_center_gap = fx.max_center_gap.max(gap);
+        fx.center_gaps.push(gap);
     }
     let new = contribution(state, settings);
     // Bitwise comparison: any change of center changes every deviation.

@@ -16,6 +16,8 @@ use crate::decode::Limits;
 use crate::engine::EngineSettings;
 use crate::health::Health;
 use crate::kafka::producer::{OutRecord, RecordProducer};
+use crate::metrics::Metrics;
+use crate::observe::{DeliveredList, Observation};
 use crate::pipeline::{apply_and_commit, event_counter_key};
 use crate::publish::{Cycle, CycleReport};
 use crate::record::NeighborRecord;
@@ -78,6 +80,7 @@ pub struct Core {
     config: Config,
     producer: Arc<RecordProducer>,
     health: Arc<Health>,
+    metrics: Arc<Metrics>,
     stopping: Arc<AtomicBool>,
     /// Record timestamps of committed messages not yet covered by a publication.
     unpublished_ms: Vec<i64>,
@@ -107,6 +110,7 @@ impl Core {
         config: &Config,
         producer: Arc<RecordProducer>,
         health: Arc<Health>,
+        metrics: Arc<Metrics>,
         stopping: Arc<AtomicBool>,
     ) -> Core {
         Core {
@@ -120,9 +124,16 @@ impl Core {
             config: config.clone(),
             producer,
             health,
+            metrics,
             stopping,
             unpublished_ms: Vec::new(),
         }
+    }
+
+    /// Starts the lag gauge from the stored positions (before any batch of this run).
+    pub fn seed_positions(&self) {
+        self.metrics.set_positions(&self.stored_offsets());
+        self.refresh_store_gauges();
     }
 
     /// Decoding limits for incoming messages.
@@ -174,11 +185,12 @@ impl Core {
             if report.all_delivered() {
                 break;
             }
-            tracing::warn!(
-                undelivered = report.failed.len(),
-                first_reason = %report.failed[0].1,
-                "dead letters not delivered; the batch waits and retries"
-            );
+            Observation::DeliveryFailed {
+                what: "dead letters",
+                count: report.failed.len(),
+                first_reason: &report.failed[0].1,
+            }
+            .emit(&self.metrics);
             let failed: Vec<usize> = report.failed.iter().map(|(i, _)| *i).collect();
             letters = failed.into_iter().map(|i| letters[i].clone()).collect();
             if !back_off(&mut delay, deadline, &self.stopping) {
@@ -186,6 +198,10 @@ impl Core {
             }
         }
         let rejects = self.pending.reject_counts();
+        if !rejects.is_empty() {
+            Observation::DeadLettersDelivered { by_reason: &rejects }.emit(&self.metrics);
+        }
+        let started = Instant::now();
         let topic = kafka.input_topic.clone();
         let offsets = self.pending.next_offsets.clone();
         let mut delay = Duration::from_millis(200);
@@ -206,7 +222,7 @@ impl Core {
                 Ok(summary) => break summary,
                 Err(e) => {
                     let text = format!("store write failed: {e:#}");
-                    tracing::error!("{text}; consumption paused, retrying");
+                    Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
                     self.health.set_store_error(Some(text));
                     if !back_off(&mut delay, deadline, &self.stopping) {
                         return self.abandon();
@@ -225,7 +241,7 @@ impl Core {
                 .entry(event_counter_key(kind, outcome))
                 .or_default() += n;
         }
-        for (reason, n) in rejects {
+        for (reason, &n) in &rejects {
             *self
                 .counters
                 .dead_letters
@@ -233,11 +249,15 @@ impl Core {
                 .or_default() += n;
         }
         self.unpublished_ms.extend(batch.timestamps_ms);
-        tracing::debug!(
-            messages = batch.messages,
-            pair_updates = summary.pair_updates,
-            "batch committed"
-        );
+        Observation::BatchCommitted {
+            messages: batch.messages,
+            summary: &summary,
+            rejects: &rejects,
+            seconds: started.elapsed().as_secs_f64(),
+        }
+        .emit(&self.metrics);
+        self.metrics.set_positions(&offsets);
+        self.refresh_store_gauges();
         Flushed::Committed(offsets)
     }
 
@@ -311,14 +331,22 @@ impl Core {
     /// One publication cycle: rescore dirty items, deliver the lists that changed, and
     /// store as published only what the broker acknowledged; the rest stays dirty.
     pub fn publish(&mut self) -> Result<CycleReport> {
-        let started_ms = now_nanos() / 1_000_000;
+        let started = Instant::now();
         let covered = std::mem::take(&mut self.unpublished_ms);
         let now = now_nanos();
         let mut cycle = Cycle::plan(&self.store, now)?;
         let destination = self.destination();
         let mut undelivered = 0u64;
-        while let Some(mut writes) = cycle.next_chunk(&self.store, &self.lists)? {
+        let mut delivered = Vec::new();
+        while let Some(rescored) = cycle.next_chunk(&self.store, &self.lists)? {
+            let (mut writes, drifts): (Vec<_>, Vec<_>) =
+                rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
             let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
+            if changed.is_empty() {
+                self.store
+                    .write_publications(&writes, Delivery::Delivered(&destination), now)?;
+                continue;
+            }
             let records: Vec<OutRecord> = changed
                 .iter()
                 .map(|&i| {
@@ -330,49 +358,80 @@ impl Core {
                     )
                 })
                 .collect();
-            if !records.is_empty() {
-                let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
-                for (k, reason) in &report.failed {
-                    writes[changed[*k]].redirty = true;
-                    tracing::debug!(%reason, "list not delivered");
-                }
-                undelivered += report.failed.len() as u64;
-                self.counters.lists_delivered += (records.len() - report.failed.len()) as u64;
-                let nothing_delivered = report.failed.len() == records.len();
-                self.store
-                    .write_publications(&writes, Delivery::Delivered(&destination), now)?;
-                if nothing_delivered {
-                    // The broker is away: end the cycle; what was not rescored keeps its
-                    // dirty marks (marks that expand to a whole row are cleared last).
-                    break;
-                }
-                continue;
+            let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
+            let mut failed = vec![false; changed.len()];
+            for (k, _) in &report.failed {
+                failed[*k] = true;
+                writes[changed[*k]].redirty = true;
             }
+            for (k, &i) in changed.iter().enumerate().filter(|(k, _)| !failed[*k]) {
+                delivered.push(DeliveredList {
+                    signal: writes[i].signal,
+                    tombstone: records[k].value.is_none(),
+                    drift: drifts[i],
+                });
+            }
+            if !report.all_delivered() {
+                Observation::DeliveryFailed {
+                    what: "lists",
+                    count: report.failed.len(),
+                    first_reason: &report.failed[0].1,
+                }
+                .emit(&self.metrics);
+            }
+            undelivered += report.failed.len() as u64;
             self.store
                 .write_publications(&writes, Delivery::Delivered(&destination), now)?;
+            if report.failed.len() == records.len() {
+                // The broker is away: end the cycle; what was not rescored keeps its
+                // dirty marks (marks that expand to a whole row are cleared last).
+                break;
+            }
         }
+        self.counters.lists_delivered += delivered.len() as u64;
         self.counters.cycles += 1;
         self.counters.lists_undelivered += undelivered;
-        if undelivered > 0 {
-            tracing::warn!(
-                undelivered,
-                "lists not delivered; they stay dirty for the next cycle"
-            );
+        let report = cycle.report();
+        Observation::CycleCompleted {
+            report: &report,
+            delivered: &delivered,
+            undelivered,
+            seconds: started.elapsed().as_secs_f64(),
         }
+        .emit(&self.metrics);
         let delivered_ms = now_nanos() / 1_000_000;
         if undelivered == 0 {
             self.latency.record_all(&covered, delivered_ms);
+            self.metrics.set_published_watermark(cycle.watermark());
         } else {
             // Not every list reflecting these events went out; keep them for the next cycle.
             self.unpublished_ms = covered;
         }
-        let report = cycle.report();
-        tracing::debug!(
-            rescored = report.rescored,
-            changed = report.changed,
-            millis = delivered_ms - started_ms,
-            "publication cycle"
-        );
+        self.refresh_store_gauges();
         Ok(report)
+    }
+
+    /// Brings the store-derived gauges up to date: pending changes, sizes, counts.
+    pub fn refresh_store_gauges(&self) {
+        let m = &self.metrics;
+        match self.store.oldest_dirty_since() {
+            Ok(oldest) => m.set_oldest_dirty(oldest),
+            Err(e) => tracing::warn!(error = %e, "cannot read pending changes"),
+        }
+        if let Ok(stats) = self.store.stats() {
+            m.store_bytes.set(stats.sst_bytes as i64);
+            m.pending_compaction_bytes
+                .set(stats.pending_compaction_bytes as i64);
+            m.disk_available_bytes.set(stats.disk_available_bytes as i64);
+            m.entities
+                .with_label_values(&["rating_pairs"])
+                .set(stats.rating_pairs_estimate as i64);
+        }
+        m.entities
+            .with_label_values(&["items"])
+            .set(self.store.item_count() as i64);
+        m.entities
+            .with_label_values(&["users"])
+            .set(i64::from(self.store.progress().next_user));
     }
 }

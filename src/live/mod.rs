@@ -24,9 +24,12 @@ use self::core::{Core, Flushed, RunCounters};
 use crate::config::secrets::Scrubber;
 use crate::config::Config;
 use crate::health::Health;
+use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
 use crate::kafka::producer::RecordProducer;
 use crate::kafka::topics::ensure_topics;
+use crate::metrics::Metrics;
+use crate::score::ListSettings;
 use crate::store::Store;
 use handover::StartRequest;
 
@@ -93,8 +96,14 @@ impl fmt::Display for RunReport {
     }
 }
 
-/// Keeps `health`'s broker flag current by asking for metadata every [`PROBE_EVERY`].
-fn spawn_broker_probe(config: &Config, bus: &BusContext, stop: watch::Receiver<bool>) -> Result<()> {
+/// Keeps the broker flag current by asking for metadata every [`PROBE_EVERY`], and the
+/// per-partition lag gauge from the input topic's high watermarks.
+fn spawn_broker_probe(
+    config: &Config,
+    bus: &BusContext,
+    metrics: Arc<Metrics>,
+    stop: watch::Receiver<bool>,
+) -> Result<()> {
     let client = handover::offsets_client(&config.kafka, bus)?;
     let topic = config.kafka.input_topic.clone();
     let brokers = bus.brokers().clone();
@@ -102,8 +111,21 @@ fn spawn_broker_probe(config: &Config, bus: &BusContext, stop: watch::Receiver<b
         .name("simtide-broker-probe".into())
         .spawn(move || {
             while !*stop.borrow() {
-                let answered = client.fetch_metadata(Some(&topic), PROBE_EVERY).is_ok();
-                brokers.set_reachable(answered);
+                let partitions = handover::partitions_of(&client, &topic);
+                brokers.set_reachable(partitions.is_ok());
+                metrics.broker_up.set(i64::from(brokers.reachable()));
+                if let Ok(partitions) = partitions {
+                    let high: std::collections::BTreeMap<i32, i64> = partitions
+                        .into_iter()
+                        .filter_map(|p| {
+                            client
+                                .fetch_watermarks(&topic, p, PROBE_EVERY)
+                                .ok()
+                                .map(|(_, h)| (p, h))
+                        })
+                        .collect();
+                    metrics.set_lag_from_watermarks(&high);
+                }
                 std::thread::sleep(PROBE_EVERY);
             }
         })?;
@@ -134,14 +156,26 @@ pub async fn run_service(
     let brokers = Arc::new(BrokerState::default());
     let bus = BusContext::new(brokers.clone(), scrubber);
     let health = Arc::new(Health::new(brokers));
-    let listener = crate::http::bind(&config.http.listen).await?;
-    tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz)");
-    let http = tokio::spawn(crate::http::serve(listener, health.clone()));
-
+    let metrics = Arc::new(Metrics::new());
+    let admin = Arc::new(AdminRequests::default());
     let store_dir = options
         .store_dir
         .clone()
         .unwrap_or_else(|| PathBuf::from(&config.store.dir));
+    let listener = crate::http::bind(&config.http.listen).await?;
+    tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
+    let http = tokio::spawn(crate::http::serve(
+        listener,
+        HttpState {
+            health: health.clone(),
+            metrics: metrics.clone(),
+            store_dir: store_dir.clone(),
+            lists: ListSettings::from_config(config),
+            admin_token: config.http.admin_token.clone(),
+            admin: admin.clone(),
+        },
+    ));
+
     let mut store = Store::open(&store_dir, config)?;
     if let Some(request) = &options.start {
         let (kafka, b, r) = (config.kafka.clone(), bus.clone(), request.clone());
@@ -158,7 +192,7 @@ pub async fn run_service(
             }
         });
     }
-    spawn_broker_probe(config, &bus, stop.clone())?;
+    spawn_broker_probe(config, &bus, metrics.clone(), stop.clone())?;
 
     // Retry loops (store writes, deliveries) give up once shutdown begins.
     let stopping = Arc::new(AtomicBool::new(false));
@@ -179,8 +213,10 @@ pub async fn run_service(
         config,
         producer,
         health.clone(),
+        metrics.clone(),
         stopping,
     )));
+    core.lock().expect("core lock").seed_positions();
     let consumer = consumer::subscribe(
         &config.kafka,
         bus.clone(),
@@ -226,6 +262,17 @@ pub async fn run_service(
         if due {
             let flushed = core.lock().expect("core lock").flush(None);
             commit_group_offsets(&consumer, &config.kafka.input_topic, flushed);
+        }
+        if admin.compact.swap(false, Ordering::Relaxed) {
+            tracing::info!("compacting the store on request");
+            core.lock().expect("core lock").store.compact();
+        }
+        if admin.republish.swap(false, Ordering::Relaxed) {
+            in_sync = false;
+            next_publish = Instant::now();
+        }
+        if admin.publish.swap(false, Ordering::Relaxed) {
+            next_publish = Instant::now();
         }
         if Instant::now() >= next_publish {
             let mut c = core.lock().expect("core lock");

@@ -183,14 +183,34 @@ impl Drop for Service {
 
 /// A minimal HTTP/1.0 GET.
 pub fn http_get(port: u16, path: &str) -> Option<(u16, String)> {
+    http_request(port, "GET", path, &[])
+}
+
+/// A minimal HTTP/1.0 request without a body: (status code, body), `None` when nothing
+/// answers.
+pub fn http_request(port: u16, method: &str, path: &str, headers: &[(&str, &str)]) -> Option<(u16, String)> {
     let mut stream = TcpStream::connect(("127.0.0.1", port)).ok()?;
-    stream.set_read_timeout(Some(Duration::from_secs(5))).ok()?;
-    write!(stream, "GET {path} HTTP/1.0\r\nHost: 127.0.0.1\r\n\r\n").ok()?;
+    stream.set_read_timeout(Some(Duration::from_secs(10))).ok()?;
+    let mut request = format!("{method} {path} HTTP/1.0\r\nHost: 127.0.0.1\r\nContent-Length: 0\r\n");
+    for (name, value) in headers {
+        request.push_str(&format!("{name}: {value}\r\n"));
+    }
+    request.push_str("\r\n");
+    stream.write_all(request.as_bytes()).ok()?;
     let mut text = String::new();
     stream.read_to_string(&mut text).ok()?;
     let status = text.split_whitespace().nth(1)?.parse().ok()?;
     let body = text.split_once("\r\n\r\n").map_or("", |(_, b)| b).to_string();
     Some((status, body))
+}
+
+/// The value of one sample in a Prometheus text exposition (`name{labels}` exactly as
+/// written there, labels included).
+pub fn sample(metrics: &str, series: &str) -> Option<f64> {
+    metrics.lines().find_map(|l| {
+        let (name, value) = l.rsplit_once(' ')?;
+        (name == series).then(|| value.parse().ok())?
+    })
 }
 
 /// Waits until `check` holds, panicking with `what` after `within`.
@@ -403,4 +423,22 @@ pub fn last_lists_as_export(records: &[ReadRecord], out: &Path) -> usize {
         n += 1;
     }
     n
+}
+
+/// A rating event as a (key, value, no timestamp) record for [`produce`].
+pub fn rating(user: &str, item: &str, value: u8, at: u64) -> (String, String, Option<i64>) {
+    (
+        user.to_string(),
+        format!(r#"{{"kind":"rating","user":"{user}","item":"{item}","value":{value},"at":{at}}}"#),
+        None,
+    )
+}
+
+/// An unrating event as a record for [`produce`].
+pub fn unrating(user: &str, item: &str, at: u64) -> (String, String, Option<i64>) {
+    (
+        user.to_string(),
+        format!(r#"{{"kind":"unrating","user":"{user}","item":"{item}","at":{at}}}"#),
+        None,
+    )
 }

@@ -1,0 +1,314 @@
+//! The Prometheus metrics of simtide (DESIGN §7), in one registry of our own. Names carry
+//! the `simtide_` prefix and follow Prometheus conventions: base units, `_total` for
+//! counters, `_seconds` for durations. Values that depend on "now" (staleness, event-time
+//! lag) are computed when scraped from the instants the service records.
+
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicI64, Ordering};
+use std::sync::Mutex;
+
+use prometheus::{
+    Encoder, Gauge, GaugeVec, Histogram, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge,
+    IntGaugeVec, Opts, Registry, TextEncoder,
+};
+
+use crate::timefmt::now_nanos;
+
+/// "Not known yet" for the instants kept as atomics.
+const UNSET: i64 = i64::MIN;
+
+/// Every metric, registered once.
+pub struct Metrics {
+    registry: Registry,
+    /// Accepted events by kind and outcome.
+    pub events: IntCounterVec,
+    /// Refused events by reason.
+    pub rejected: IntCounterVec,
+    /// Dead letters acknowledged by the broker, by reason.
+    pub dead_letters: IntCounterVec,
+    /// Micro-batches committed.
+    pub batches: IntCounter,
+    /// Time to apply and commit one batch.
+    pub batch_seconds: Histogram,
+    /// Pair contributions added or retracted.
+    pub pair_updates: IntCounter,
+    /// Users whose center moved.
+    pub recenterings: IntCounter,
+    /// Largest |mean − center| among the users of the last batch.
+    pub center_gap_max: Gauge,
+    /// |mean − center| of each user touched, after its batch.
+    pub center_gap: Histogram,
+    /// Messages behind the end of each input partition (high watermark − stored offset).
+    pub consumer_lag: IntGaugeVec,
+    /// Publication cycles completed.
+    pub cycles: IntCounter,
+    /// Duration of one publication cycle.
+    pub cycle_seconds: Histogram,
+    /// Lists delivered (changed lists and tombstones), by signal.
+    pub lists_published: IntCounterVec,
+    /// Of those, tombstones.
+    pub tombstones: IntCounterVec,
+    /// List deliveries the broker did not acknowledge (retried next cycle).
+    pub delivery_failures: IntCounter,
+    /// 1 − overlap between an item's consecutive lists, by signal.
+    pub list_drift: HistogramVec,
+    /// Rank-biased overlap (p = 0.9) between an item's consecutive lists, by signal.
+    pub list_rbo: HistogramVec,
+    /// Failed store writes (each retried).
+    pub store_write_failures: IntCounter,
+    /// Known items, users and rating pairs (pairs: RocksDB's key estimate / 2).
+    pub entities: IntGaugeVec,
+    /// Bytes of the store's SST files.
+    pub store_bytes: IntGauge,
+    /// RocksDB's estimate of bytes compaction still has to rewrite.
+    pub pending_compaction_bytes: IntGauge,
+    /// Free bytes on the store's filesystem.
+    pub disk_available_bytes: IntGauge,
+    /// 1 while a broker answered recently.
+    pub broker_up: IntGauge,
+    /// 1 while every readiness check passes.
+    pub ready: IntGauge,
+    /// Unix time of the last completed publication cycle.
+    pub last_publish: Gauge,
+    staleness: Gauge,
+    event_time_lag: Gauge,
+    oldest_dirty_ns: AtomicI64,
+    published_watermark_ns: AtomicI64,
+    positions: Mutex<BTreeMap<i32, i64>>,
+}
+
+/// Buckets for |mean − center| on a rating scale (the default tolerance is 0.05).
+const CENTER_GAP_BUCKETS: [f64; 9] = [0.001, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0];
+/// Buckets for drift and overlap ratios in [0, 1].
+const RATIO_BUCKETS: [f64; 10] = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.7, 0.9, 1.0];
+
+fn counter_vec(name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
+    IntCounterVec::new(Opts::new(name, help), labels).expect("valid metric")
+}
+
+fn histogram(name: &str, help: &str, buckets: Vec<f64>) -> Histogram {
+    Histogram::with_opts(HistogramOpts::new(name, help).buckets(buckets)).expect("valid metric")
+}
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Metrics::new()
+    }
+}
+
+impl Metrics {
+    /// Creates and registers every metric.
+    pub fn new() -> Metrics {
+        let registry = Registry::new();
+        let m = Metrics {
+            events: counter_vec("simtide_events_total", "Accepted events by kind and outcome.", &["kind", "outcome"]),
+            rejected: counter_vec("simtide_rejected_events_total", "Events refused by validation, by reason.", &["reason"]),
+            dead_letters: counter_vec(
+                "simtide_dead_letters_total",
+                "Refused events delivered to the dead-letter topic, by reason.",
+                &["reason"],
+            ),
+            batches: IntCounter::new("simtide_batches_total", "Micro-batches committed to the store.").expect("valid"),
+            batch_seconds: histogram(
+                "simtide_batch_duration_seconds",
+                "Time to apply one micro-batch and commit it.",
+                prometheus::exponential_buckets(0.005, 2.0, 12).expect("valid"),
+            ),
+            pair_updates: IntCounter::new("simtide_pair_updates_total", "Pair contributions added or retracted.")
+                .expect("valid"),
+            recenterings: IntCounter::new("simtide_recenterings_total", "Users whose applied center moved.")
+                .expect("valid"),
+            center_gap_max: Gauge::new(
+                "simtide_center_gap_max",
+                "Largest |mean − applied center| among the users of the last batch (rating units).",
+            )
+            .expect("valid"),
+            center_gap: histogram(
+                "simtide_center_gap",
+                "|mean − applied center| of each user touched by a batch (rating units).",
+                CENTER_GAP_BUCKETS.to_vec(),
+            ),
+            consumer_lag: IntGaugeVec::new(
+                Opts::new(
+                    "simtide_consumer_lag_messages",
+                    "Messages between the stored position and the end of each input partition.",
+                ),
+                &["partition"],
+            )
+            .expect("valid"),
+            cycles: IntCounter::new("simtide_publish_cycles_total", "Publication cycles completed.").expect("valid"),
+            cycle_seconds: histogram(
+                "simtide_publish_cycle_duration_seconds",
+                "Duration of one publication cycle (rescore, deliver, store).",
+                prometheus::exponential_buckets(0.001, 2.5, 12).expect("valid"),
+            ),
+            lists_published: counter_vec(
+                "simtide_lists_published_total",
+                "Changed lists delivered to the output topics (tombstones included), by signal.",
+                &["signal"],
+            ),
+            tombstones: counter_vec(
+                "simtide_tombstones_published_total",
+                "Tombstones delivered (a list became empty), by signal.",
+                &["signal"],
+            ),
+            delivery_failures: IntCounter::new(
+                "simtide_list_delivery_failures_total",
+                "List deliveries the broker did not acknowledge; each stays dirty and is retried.",
+            )
+            .expect("valid"),
+            list_drift: HistogramVec::new(
+                HistogramOpts::new(
+                    "simtide_list_drift_ratio",
+                    "1 − |previous ∩ new| / max(|previous|, |new|) between an item's consecutive lists.",
+                )
+                .buckets(RATIO_BUCKETS.to_vec()),
+                &["signal"],
+            )
+            .expect("valid"),
+            list_rbo: HistogramVec::new(
+                HistogramOpts::new(
+                    "simtide_list_rank_biased_overlap_ratio",
+                    "Rank-biased overlap (Webber, Moffat and Zobel 2010, p = 0.9, extrapolated) of an item's consecutive lists.",
+                )
+                .buckets(RATIO_BUCKETS.to_vec()),
+                &["signal"],
+            )
+            .expect("valid"),
+            store_write_failures: IntCounter::new(
+                "simtide_store_write_failures_total",
+                "Store writes that failed and were retried.",
+            )
+            .expect("valid"),
+            entities: IntGaugeVec::new(
+                Opts::new("simtide_entities", "Items, users and rating pairs (pairs estimated by RocksDB)."),
+                &["entity"],
+            )
+            .expect("valid"),
+            store_bytes: IntGauge::new("simtide_store_size_bytes", "Bytes of the store's SST files.").expect("valid"),
+            pending_compaction_bytes: IntGauge::new(
+                "simtide_store_pending_compaction_bytes",
+                "RocksDB's estimate of the bytes compaction still has to rewrite.",
+            )
+            .expect("valid"),
+            disk_available_bytes: IntGauge::new(
+                "simtide_store_disk_available_bytes",
+                "Free bytes on the filesystem holding the store.",
+            )
+            .expect("valid"),
+            broker_up: IntGauge::new("simtide_broker_reachable", "1 while a broker answered recently.").expect("valid"),
+            ready: IntGauge::new("simtide_ready", "1 while every readiness check passes.").expect("valid"),
+            last_publish: Gauge::new(
+                "simtide_last_publish_timestamp_seconds",
+                "Unix time at which the last publication cycle completed.",
+            )
+            .expect("valid"),
+            staleness: Gauge::new(
+                "simtide_staleness_seconds",
+                "Age of the oldest change not yet reflected in a published list (0 when none).",
+            )
+            .expect("valid"),
+            event_time_lag: Gauge::new(
+                "simtide_event_time_lag_seconds",
+                "Now minus the newest event time reflected in the published lists.",
+            )
+            .expect("valid"),
+            oldest_dirty_ns: AtomicI64::new(UNSET),
+            published_watermark_ns: AtomicI64::new(UNSET),
+            positions: Mutex::new(BTreeMap::new()),
+            registry,
+        };
+        let build = GaugeVec::new(
+            Opts::new("simtide_build_info", "Always 1; the labels say which build runs."),
+            &["version"],
+        )
+        .expect("valid");
+        build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1.0);
+        let collectors: Vec<Box<dyn prometheus::core::Collector>> = vec![
+            Box::new(build),
+            Box::new(m.events.clone()),
+            Box::new(m.rejected.clone()),
+            Box::new(m.dead_letters.clone()),
+            Box::new(m.batches.clone()),
+            Box::new(m.batch_seconds.clone()),
+            Box::new(m.pair_updates.clone()),
+            Box::new(m.recenterings.clone()),
+            Box::new(m.center_gap_max.clone()),
+            Box::new(m.center_gap.clone()),
+            Box::new(m.consumer_lag.clone()),
+            Box::new(m.cycles.clone()),
+            Box::new(m.cycle_seconds.clone()),
+            Box::new(m.lists_published.clone()),
+            Box::new(m.tombstones.clone()),
+            Box::new(m.delivery_failures.clone()),
+            Box::new(m.list_drift.clone()),
+            Box::new(m.list_rbo.clone()),
+            Box::new(m.store_write_failures.clone()),
+            Box::new(m.entities.clone()),
+            Box::new(m.store_bytes.clone()),
+            Box::new(m.pending_compaction_bytes.clone()),
+            Box::new(m.disk_available_bytes.clone()),
+            Box::new(m.broker_up.clone()),
+            Box::new(m.ready.clone()),
+            Box::new(m.last_publish.clone()),
+            Box::new(m.staleness.clone()),
+            Box::new(m.event_time_lag.clone()),
+        ];
+        for c in collectors {
+            m.registry.register(c).expect("metric names are unique");
+        }
+        m
+    }
+
+    /// Records when the oldest unpublished change happened (`None`: nothing is dirty).
+    pub fn set_oldest_dirty(&self, since_ns: Option<i64>) {
+        self.oldest_dirty_ns
+            .store(since_ns.unwrap_or(UNSET), Ordering::Relaxed);
+    }
+
+    /// Records the store's next offsets after a commit (the base of the lag gauge).
+    pub fn set_positions(&self, next: &BTreeMap<i32, i64>) {
+        self.positions
+            .lock()
+            .expect("positions lock")
+            .extend(next.iter().map(|(&p, &o)| (p, o)));
+    }
+
+    /// Sets each partition's lag from its high watermark and the stored position.
+    pub fn set_lag_from_watermarks(&self, high: &BTreeMap<i32, i64>) {
+        let positions = self.positions.lock().expect("positions lock");
+        for (&p, &h) in high {
+            let at = positions.get(&p).copied().unwrap_or(0);
+            self.consumer_lag
+                .with_label_values(&[&p.to_string()])
+                .set((h - at).max(0));
+        }
+    }
+
+    /// Records the newest event time reflected in published lists.
+    pub fn set_published_watermark(&self, watermark_ns: Option<i64>) {
+        if let Some(w) = watermark_ns {
+            self.published_watermark_ns.store(w, Ordering::Relaxed);
+        }
+    }
+
+    /// The text exposition of every metric, with the time-dependent gauges brought to now.
+    pub fn render(&self) -> String {
+        let now = now_nanos();
+        let oldest = self.oldest_dirty_ns.load(Ordering::Relaxed);
+        self.staleness.set(if oldest == UNSET {
+            0.0
+        } else {
+            (now - oldest).max(0) as f64 / 1e9
+        });
+        let watermark = self.published_watermark_ns.load(Ordering::Relaxed);
+        if watermark != UNSET {
+            self.event_time_lag.set((now - watermark) as f64 / 1e9);
+        }
+        let mut out = Vec::new();
+        TextEncoder::new()
+            .encode(&self.registry.gather(), &mut out)
+            .expect("text encoding does not fail");
+        String::from_utf8(out).expect("the text format is UTF-8")
+    }
+}

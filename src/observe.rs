@@ -1,0 +1,165 @@
+//! Observable events: each is one value that both writes its log line (tracing) and
+//! moves its metrics, so what the logs say and what the metrics count cannot disagree.
+
+use std::collections::BTreeMap;
+
+use crate::decode::RejectReason;
+use crate::metrics::Metrics;
+use crate::pipeline::BatchSummary;
+use crate::publish::{CycleReport, ListDrift};
+use crate::signal::Signal;
+
+/// One delivered list, for the cycle's metrics.
+#[derive(Debug, Clone, Copy)]
+pub struct DeliveredList {
+    /// Which signal.
+    pub signal: Signal,
+    /// Whether it was a tombstone.
+    pub tombstone: bool,
+    /// Drift from the list it replaced.
+    pub drift: Option<ListDrift>,
+}
+
+/// Something worth a log line and a metric.
+pub enum Observation<'a> {
+    /// A micro-batch was committed.
+    BatchCommitted {
+        /// Messages or records it held.
+        messages: usize,
+        /// What the engine did.
+        summary: &'a BatchSummary,
+        /// Refused records by reason.
+        rejects: &'a BTreeMap<RejectReason, u64>,
+        /// Apply and commit time.
+        seconds: f64,
+    },
+    /// Dead letters were acknowledged by the broker.
+    DeadLettersDelivered {
+        /// By reason.
+        by_reason: &'a BTreeMap<RejectReason, u64>,
+    },
+    /// Records were not acknowledged; they are retried.
+    DeliveryFailed {
+        /// What was being delivered (`lists`, `dead letters`).
+        what: &'static str,
+        /// How many.
+        count: usize,
+        /// The first reason the client gave.
+        first_reason: &'a str,
+    },
+    /// A store write failed; it is retried.
+    StoreWriteFailed {
+        /// The error, without event content.
+        error: &'a str,
+    },
+    /// A publication cycle completed.
+    CycleCompleted {
+        /// Counts of the cycle.
+        report: &'a CycleReport,
+        /// Lists delivered.
+        delivered: &'a [DeliveredList],
+        /// Deliveries left for the next cycle.
+        undelivered: u64,
+        /// Duration.
+        seconds: f64,
+    },
+}
+
+impl Observation<'_> {
+    /// Logs the event and moves its metrics.
+    pub fn emit(&self, m: &Metrics) {
+        match self {
+            Observation::BatchCommitted {
+                messages,
+                summary,
+                rejects,
+                seconds,
+            } => {
+                tracing::debug!(
+                    messages,
+                    pair_updates = summary.pair_updates,
+                    recenterings = summary.recenterings,
+                    rejected = rejects.values().sum::<u64>(),
+                    seconds,
+                    "batch committed"
+                );
+                for (&(kind, outcome), &n) in &summary.outcomes {
+                    m.events
+                        .with_label_values(&[kind.as_str(), outcome.as_str()])
+                        .inc_by(n);
+                }
+                for (reason, &n) in rejects.iter() {
+                    m.rejected.with_label_values(&[reason.code()]).inc_by(n);
+                }
+                m.batches.inc();
+                m.batch_seconds.observe(*seconds);
+                m.pair_updates.inc_by(summary.pair_updates);
+                m.recenterings.inc_by(summary.recenterings);
+                m.center_gap_max.set(summary.max_center_gap);
+                for &gap in &summary.center_gaps {
+                    m.center_gap.observe(gap);
+                }
+            }
+            Observation::DeadLettersDelivered { by_reason } => {
+                for (reason, &n) in by_reason.iter() {
+                    tracing::info!(
+                        reason = reason.code(),
+                        count = n,
+                        "refused events sent to the dead-letter topic"
+                    );
+                    m.dead_letters.with_label_values(&[reason.code()]).inc_by(n);
+                }
+            }
+            Observation::DeliveryFailed {
+                what,
+                count,
+                first_reason,
+            } => {
+                tracing::warn!(
+                    what,
+                    count,
+                    first_reason,
+                    "not acknowledged by the broker; retrying"
+                );
+                if *what == "lists" {
+                    m.delivery_failures.inc_by(*count as u64);
+                }
+            }
+            Observation::StoreWriteFailed { error } => {
+                tracing::error!(error, "store write failed; consumption paused, retrying");
+                m.store_write_failures.inc();
+            }
+            Observation::CycleCompleted {
+                report,
+                delivered,
+                undelivered,
+                seconds,
+            } => {
+                tracing::debug!(
+                    rescored = report.rescored,
+                    changed = report.changed,
+                    delivered = delivered.len(),
+                    undelivered,
+                    seconds,
+                    "publication cycle"
+                );
+                m.cycles.inc();
+                m.cycle_seconds.observe(*seconds);
+                for d in delivered.iter() {
+                    let signal = d.signal.as_str();
+                    m.lists_published.with_label_values(&[signal]).inc();
+                    if d.tombstone {
+                        m.tombstones.with_label_values(&[signal]).inc();
+                    }
+                    if let Some(drift) = d.drift {
+                        m.list_drift
+                            .with_label_values(&[signal])
+                            .observe(drift.changed_share);
+                        m.list_rbo.with_label_values(&[signal]).observe(drift.rbo);
+                    }
+                }
+                m.last_publish.set(crate::timefmt::now_nanos() as f64 / 1e9);
+            }
+        }
+    }
+}

@@ -1,0 +1,222 @@
+//! What the on-call engineer sees of a running service: `/metrics` (checked by Debian's
+//! `promtool check metrics`), staleness and event-time lag moving as defined, list drift
+//! with values computed by hand, the lookups, the token on state-changing endpoints, and
+//! secrets kept out of every output. On librdkafka's mock cluster with `simtide run` as
+//! a separate process.
+
+mod common;
+
+use std::io::Write;
+use std::process::{Command, Stdio};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
+
+use common::live::{
+    caught_up, http_request, produce, rating, sample, unrating, wait_for, write_config, LiveSettings,
+    Service, DEAD_LETTER, INPUT, OUTPUT, PURCHASE_OUTPUT,
+};
+use rdkafka::mocking::MockCluster;
+
+const CLIENT_SECRET: &str = "pw-ZX81-never-printed";
+const ADMIN_TOKEN: &str = "tok-QL42-admin";
+
+fn metrics_of(service: &Service) -> String {
+    service.get("/metrics").expect("/metrics answers").1
+}
+
+fn publish_now(service: &Service) {
+    let auth = format!("Bearer {ADMIN_TOKEN}");
+    let (status, _) = http_request(
+        service.port,
+        "POST",
+        "/v1/admin/publish",
+        &[("Authorization", &auth)],
+    )
+    .unwrap();
+    assert_eq!(status, 202);
+}
+
+fn cycles(service: &Service) -> f64 {
+    sample(&metrics_of(service), "simtide_publish_cycles_total").unwrap()
+}
+
+#[test]
+fn metrics_move_as_defined_and_secrets_stay_out() {
+    let work = tempfile::tempdir().unwrap();
+    let mock = MockCluster::new(1).unwrap();
+    mock.create_topic(INPUT, 3, 1).unwrap();
+    for t in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
+        mock.create_topic(t, 1, 1).unwrap();
+    }
+    let brokers = mock.bootstrap_servers();
+    let store = work.path().join("store");
+    let (config, port) = write_config(
+        work.path(),
+        &brokers,
+        &store,
+        &LiveSettings {
+            publish_interval: "1h",
+            ..LiveSettings::default()
+        },
+    );
+    let text = std::fs::read_to_string(&config)
+        .unwrap()
+        .replace(
+            "[kafka.client]\n",
+            &format!("[kafka.client]\n\"sasl.password\" = \"{CLIENT_SECRET}\"\n"),
+        )
+        .replace("[http]\n", &format!("[http]\nadmin_token = \"{ADMIN_TOKEN}\"\n"));
+    std::fs::write(&config, text).unwrap();
+    let now = SystemTime::now().duration_since(UNIX_EPOCH).unwrap().as_secs();
+
+    // Two users rate rake, hoe and spade alike and trowel apart: rake's list is
+    // [hoe, spade] (adjusted cosine 1 each, ties by name), hoe's [rake, spade],
+    // spade's [hoe, rake].
+    let phase_one = [
+        rating("ana", "rake", 5, now),
+        rating("ana", "hoe", 5, now),
+        rating("ana", "spade", 5, now),
+        rating("ana", "trowel", 1, now),
+        rating("ben", "rake", 4, now),
+        rating("ben", "hoe", 4, now),
+        rating("ben", "spade", 4, now),
+        rating("ben", "trowel", 1, now),
+    ];
+    produce(&brokers, INPUT, &phase_one);
+    let service = Service::start(&config, port, &[]);
+    wait_for("phase one consumed", Duration::from_secs(60), || {
+        caught_up(&brokers, 3)
+    });
+
+    // Held back (interval 1 h): staleness grows with the age of the oldest change.
+    let first = sample(&metrics_of(&service), "simtide_staleness_seconds").unwrap();
+    std::thread::sleep(Duration::from_millis(1500));
+    let second = sample(&metrics_of(&service), "simtide_staleness_seconds").unwrap();
+    assert!(
+        first > 0.0 && second >= first + 1.0,
+        "staleness {first} then {second}"
+    );
+
+    // State-changing endpoints refuse a missing or wrong token.
+    for headers in [vec![], vec![("Authorization", "Bearer not-the-token")]] {
+        let (status, _) = http_request(port, "POST", "/v1/admin/publish", &headers).unwrap();
+        assert_eq!(status, 401, "{headers:?}");
+    }
+    assert_eq!(cycles(&service), 0.0, "a refused request published nothing");
+    publish_now(&service);
+    wait_for("the first cycle", Duration::from_secs(30), || {
+        cycles(&service) >= 1.0
+    });
+    let m = metrics_of(&service);
+    let staleness = sample(&m, "simtide_staleness_seconds").unwrap();
+    assert!(staleness < 0.5, "staleness after publication {staleness}");
+    // Events are stamped with the current second, so the lag is about the time since.
+    let lag = sample(&m, "simtide_event_time_lag_seconds").unwrap();
+    assert!((0.0..30.0).contains(&lag), "event-time lag {lag}");
+    assert_eq!(
+        sample(&m, r#"simtide_events_total{kind="rating",outcome="applied"}"#),
+        Some(8.0)
+    );
+
+    // Phase two: spade is withdrawn and shears take its place. By hand, per list:
+    //   rake  [hoe, spade] → [hoe, shears]: 1 − 1/2 = 0.5; RBO_ext (p = 0.9, X1 = X2 = 1)
+    //         = (1−p)/p·(p + p²/2) + p²/2 = 0.145 + 0.405 = 0.55
+    //   hoe   [rake, spade] → [rake, shears]: 0.5 and 0.55 likewise
+    //   spade [hoe, rake] → [] (tombstone): drift 1, RBO 0
+    //   shears: a first list, no drift
+    let phase_two = [
+        unrating("ana", "spade", now + 1),
+        unrating("ben", "spade", now + 1),
+        rating("ana", "shears", 5, now + 1),
+        rating("ben", "shears", 4, now + 1),
+    ];
+    produce(&brokers, INPUT, &phase_two);
+    wait_for("phase two consumed", Duration::from_secs(60), || {
+        caught_up(&brokers, 3)
+    });
+    publish_now(&service);
+    wait_for("the second cycle", Duration::from_secs(30), || {
+        cycles(&service) >= 2.0
+    });
+    let m = metrics_of(&service);
+    let series = |name: &str| sample(&m, name).unwrap_or(f64::NAN);
+    assert_eq!(
+        series(r#"simtide_list_drift_ratio_count{signal="rating"}"#),
+        3.0,
+        "{m}"
+    );
+    assert!((series(r#"simtide_list_drift_ratio_sum{signal="rating"}"#) - 2.0).abs() < 1e-12);
+    assert_eq!(
+        series(r#"simtide_list_drift_ratio_bucket{signal="rating",le="0.5"}"#),
+        2.0
+    );
+    assert!((series(r#"simtide_list_rank_biased_overlap_ratio_sum{signal="rating"}"#) - 1.1).abs() < 1e-9);
+    assert_eq!(
+        series(r#"simtide_tombstones_published_total{signal="rating"}"#),
+        1.0
+    );
+
+    // promtool (Debian's prometheus package) finds nothing to complain about.
+    let mut promtool = Command::new("promtool")
+        .args(["check", "metrics"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("promtool is installed by scripts/setup.sh");
+    promtool.stdin.take().unwrap().write_all(m.as_bytes()).unwrap();
+    let checked = promtool.wait_with_output().unwrap();
+    let complaints =
+        String::from_utf8_lossy(&checked.stdout).into_owned() + &String::from_utf8_lossy(&checked.stderr);
+    assert!(
+        checked.status.success() && complaints.trim().is_empty(),
+        "promtool: {complaints}"
+    );
+
+    // Lookups.
+    let (status, body) = service.get("/v1/items/rake/neighbors").unwrap();
+    assert_eq!(status, 200);
+    let records: serde_json::Value = serde_json::from_str(&body).unwrap();
+    let names: Vec<&str> = records[0]["neighbors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|n| n["item"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["hoe", "shears"]);
+    let (status, body) = service.get("/v1/pairs/rake/hoe").unwrap();
+    assert!(
+        status == 200 && body.contains("rake") && body.contains("hoe"),
+        "{body}"
+    );
+    assert_eq!(service.get("/v1/items/no-such-item/neighbors").unwrap().0, 404);
+
+    // Secrets: not in /metrics, the log, check-config, nor a failing command's error.
+    let log_path = service.log.clone();
+    let (status, _) = service.terminate(Duration::from_secs(30));
+    assert!(status.success());
+    let check = Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .arg("check-config")
+        .arg(&config)
+        .output()
+        .unwrap();
+    let refused = Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["run", "--config"])
+        .arg(&config)
+        .args(["--start-offsets", "0:0"])
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
+    let outputs = [
+        m,
+        std::fs::read_to_string(log_path).unwrap(),
+        String::from_utf8_lossy(&check.stdout).into_owned(),
+        String::from_utf8_lossy(&check.stderr).into_owned(),
+        String::from_utf8_lossy(&refused.stderr).into_owned(),
+    ];
+    for (i, text) in outputs.iter().enumerate() {
+        for secret in [CLIENT_SECRET, ADMIN_TOKEN] {
+            assert!(!text.contains(secret), "output {i} shows a secret:\n{text}");
+        }
+    }
+    assert!(outputs[2].contains("admin_token = \"****\""), "{}", outputs[2]);
+}
