@@ -12,6 +12,8 @@ use prometheus::{
     IntGaugeVec, Opts, Registry, TextEncoder,
 };
 
+use crate::decode::RejectReason;
+use crate::signal::Signal;
 use crate::timefmt::now_nanos;
 
 /// "Not known yet" for the instants kept as atomics.
@@ -68,7 +70,7 @@ pub struct Metrics {
     pub broker_up: IntGauge,
     /// 1 while every readiness check passes.
     pub ready: IntGauge,
-    /// Unix time of the last completed publication cycle.
+    /// Unix time of the last completed publication cycle (process start before the first).
     pub last_publish: Gauge,
     staleness: Gauge,
     event_time_lag: Gauge,
@@ -257,6 +259,20 @@ impl Metrics {
         for c in collectors {
             m.registry.register(c).expect("metric names are unique");
         }
+        // Every label value exists from the start, so a rate over a quiet counter is 0,
+        // not an absent series that alert rules and dashboards cannot tell from a gap.
+        for reason in RejectReason::ALL {
+            m.rejected.with_label_values(&[reason.code()]);
+            m.dead_letters.with_label_values(&[reason.code()]);
+        }
+        for signal in Signal::ALL {
+            let s = signal.as_str();
+            m.lists_published.with_label_values(&[s]);
+            m.tombstones.with_label_values(&[s]);
+            m.list_drift.with_label_values(&[s]);
+            m.list_rbo.with_label_values(&[s]);
+        }
+        m.last_publish.set(now_nanos() as f64 / 1e9);
         m
     }
 
