@@ -28,6 +28,7 @@ pub mod report;
 pub mod score;
 pub mod signal;
 pub mod source;
+pub mod status;
 pub mod store;
 pub mod timefmt;
 pub mod topic_backfill;

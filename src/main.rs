@@ -21,6 +21,7 @@ use simtide::record::NeighborRecord;
 use simtide::report::write_report;
 use simtide::score::ListSettings;
 use simtide::signal::Signal;
+use simtide::status::show_status;
 use simtide::store::Store;
 use simtide::topic_backfill::run_topic_backfill;
 
@@ -81,6 +82,16 @@ enum Command {
         /// (PARTITION:OFFSET,…; unlisted partitions start at their beginning).
         #[arg(long, value_name = "LIST")]
         start_offsets: Option<String>,
+    },
+    /// One screen on a running service: readiness, freshness, lag, throughput, dead
+    /// letters, drift, store.
+    Status {
+        /// The service's HTTP address.
+        #[arg(long, default_value = "http://127.0.0.1:9464")]
+        url: String,
+        /// Time between the two scrapes that rates are taken over (e.g. 2s).
+        #[arg(long, default_value = "2s", value_parser = parse_duration)]
+        window: std::time::Duration,
     },
     /// Validate a configuration and print the effective settings, secrets masked.
     CheckConfig {
@@ -180,6 +191,10 @@ enum Command {
     },
 }
 
+fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
+    simtide::config::duration_text::parse(text)
+}
+
 fn parse_signal(text: &str) -> Result<Signal, String> {
     Signal::parse(text).ok_or_else(|| format!("unknown signal {text:?}: expected rating or purchase"))
 }
@@ -264,6 +279,7 @@ fn run(cli: Cli) -> Result<()> {
             )?;
             writeln!(stdout, "{report}")?;
         }
+        Command::Status { url, window } => show_status(&url, window, stdout)?,
         Command::CheckConfig { file } => {
             let config = Config::load(file.as_deref())?;
             writeln!(

@@ -190,6 +190,35 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
     );
     assert_eq!(service.get("/v1/items/no-such-item/neighbors").unwrap().0, 404);
 
+    // The one-screen status against the running service (not a terminal: no colour).
+    let status = Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args([
+            "status",
+            "--window",
+            "1s",
+            "--url",
+            &format!("http://127.0.0.1:{port}"),
+        ])
+        .output()
+        .unwrap();
+    let screen = String::from_utf8_lossy(&status.stdout);
+    assert!(
+        status.status.success(),
+        "{screen}{}",
+        String::from_utf8_lossy(&status.stderr)
+    );
+    for part in [
+        ": READY",
+        "staleness",
+        "lag ",
+        "events/s applied",
+        "dead letters 0 in the last 1 s",
+        "drift        rating: 0.667",
+    ] {
+        assert!(screen.contains(part), "{part:?} missing from:\n{screen}");
+    }
+    assert!(!screen.contains('\x1b'), "no colour outside a terminal");
+
     // Secrets: not in /metrics, the log, check-config, nor a failing command's error.
     let log_path = service.log.clone();
     let (status, _) = service.terminate(Duration::from_secs(30));

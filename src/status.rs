@@ -1,0 +1,288 @@
+//! `simtide status`: one screen an on-call engineer reads in five seconds. Two scrapes of
+//! a running service's `/metrics`, a window apart, plus its `/readyz`: readiness first,
+//! then freshness, lag per partition, throughput, dead letters in the window, drift and
+//! store health. Colour only on a terminal that wants it.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+use std::io::{IsTerminal, Read, Write};
+use std::net::TcpStream;
+use std::time::Duration;
+
+use anyhow::{bail, Context, Result};
+
+/// One scrape: series (name with labels, as exposed) → value.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Scrape(BTreeMap<String, f64>);
+
+impl Scrape {
+    /// Parses the Prometheus text format (comments and blank lines skipped).
+    pub fn parse(text: &str) -> Scrape {
+        Scrape(
+            text.lines()
+                .filter(|l| !l.starts_with('#') && !l.trim().is_empty())
+                .filter_map(|l| {
+                    let (series, value) = l.rsplit_once(' ')?;
+                    Some((series.to_string(), value.parse().ok()?))
+                })
+                .collect(),
+        )
+    }
+
+    /// Every series of a metric, with its label text (`partition="0"`) and value.
+    pub fn series<'a>(&'a self, name: &'a str) -> impl Iterator<Item = (&'a str, f64)> + 'a {
+        self.0.iter().filter_map(move |(s, v)| {
+            let labels = s.strip_prefix(name)?;
+            match labels.strip_prefix('{') {
+                Some(rest) => Some((rest.trim_end_matches('}'), *v)),
+                None if labels.is_empty() => Some(("", *v)),
+                None => None,
+            }
+        })
+    }
+
+    /// Sum over a metric's series whose labels contain `filter` (empty: all).
+    pub fn sum(&self, name: &str, filter: &str) -> f64 {
+        self.series(name)
+            .filter(|(l, _)| l.contains(filter))
+            .map(|(_, v)| v)
+            .sum()
+    }
+}
+
+/// `(status, body)` of an HTTP/1.0 GET on `http://host:port`.
+fn get(base: &str, path: &str) -> Result<(u16, String)> {
+    let address = base
+        .strip_prefix("http://")
+        .with_context(|| format!("--url {base:?}: expected http://HOST:PORT"))?
+        .trim_end_matches('/');
+    let mut stream =
+        TcpStream::connect(address).with_context(|| format!("cannot reach simtide at {base}"))?;
+    stream.set_read_timeout(Some(Duration::from_secs(10)))?;
+    write!(stream, "GET {path} HTTP/1.0\r\nHost: {address}\r\n\r\n")?;
+    let mut text = String::new();
+    stream.read_to_string(&mut text)?;
+    let status: u16 = text
+        .split_whitespace()
+        .nth(1)
+        .and_then(|s| s.parse().ok())
+        .with_context(|| format!("{base}{path}: not an HTTP answer"))?;
+    let body = text.split_once("\r\n\r\n").map_or("", |(_, b)| b).to_string();
+    Ok((status, body))
+}
+
+/// Whether to colour: a terminal, `NO_COLOR` unset, `TERM` not `dumb`.
+fn colour_wanted() -> bool {
+    std::io::stdout().is_terminal()
+        && std::env::var_os("NO_COLOR").is_none()
+        && std::env::var("TERM").map_or(true, |t| t != "dumb")
+}
+
+fn paint(text: &str, good: bool, colour: bool) -> String {
+    match (colour, good) {
+        (false, _) => text.to_string(),
+        (true, true) => format!("\x1b[32m{text}\x1b[0m"),
+        (true, false) => format!("\x1b[1;31m{text}\x1b[0m"),
+    }
+}
+
+fn bytes(n: f64) -> String {
+    let units = ["B", "KB", "MB", "GB", "TB"];
+    let mut v = n;
+    let mut u = 0;
+    while v >= 1000.0 && u + 1 < units.len() {
+        v /= 1000.0;
+        u += 1;
+    }
+    format!("{v:.1} {}", units[u])
+}
+
+/// Renders the screen from a readiness answer and two scrapes `window` apart.
+pub fn render(
+    base: &str,
+    readiness: &serde_json::Value,
+    before: &Scrape,
+    after: &Scrape,
+    window: Duration,
+    colour: bool,
+) -> String {
+    let secs = window.as_secs_f64().max(1e-9);
+    let mut out = String::new();
+    let ready = readiness["ready"].as_bool().unwrap_or(false);
+    let failing: Vec<String> = readiness["checks"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .filter(|c| c["ok"] == false)
+        .map(|c| {
+            format!(
+                "{}: {}",
+                c["name"].as_str().unwrap_or("?"),
+                c["detail"].as_str().unwrap_or("")
+            )
+        })
+        .collect();
+    let verdict = if ready {
+        paint("READY", true, colour)
+    } else {
+        paint("NOT READY", false, colour)
+    };
+    let _ = writeln!(out, "simtide at {base}: {verdict}");
+    for f in &failing {
+        let _ = writeln!(out, "  ! {f}");
+    }
+    let staleness = after.sum("simtide_staleness_seconds", "");
+    let since_publish = after.sum("simtide_last_publish_timestamp_seconds", "");
+    let now = crate::timefmt::now_nanos() as f64 / 1e9;
+    let _ = writeln!(
+        out,
+        "  freshness    staleness {}  ·  event-time lag {:.1} s  ·  last publication {:.1} s ago",
+        paint(&format!("{staleness:.1} s"), staleness < 60.0, colour),
+        after.sum("simtide_event_time_lag_seconds", ""),
+        (now - since_publish).max(0.0)
+    );
+    let lags: Vec<String> = after
+        .series("simtide_consumer_lag_messages")
+        .map(|(labels, v)| format!("{} {v:.0}", labels.replace("partition=", "p").replace('"', "")))
+        .collect();
+    let lag_now = after.sum("simtide_consumer_lag_messages", "");
+    let lag_rate = (lag_now - before.sum("simtide_consumer_lag_messages", "")) / secs;
+    let _ = writeln!(
+        out,
+        "  lag          {}  (total {lag_now:.0}, {lag_rate:+.0}/s)",
+        if lags.is_empty() {
+            "-".to_string()
+        } else {
+            lags.join(" · ")
+        }
+    );
+    let rate = |outcome: &str| {
+        let f = format!("outcome=\"{outcome}\"");
+        (after.sum("simtide_events_total", &f) - before.sum("simtide_events_total", &f)) / secs
+    };
+    let _ = writeln!(
+        out,
+        "  throughput   {:.0} events/s applied  ·  {:.0} stale/s  ·  {:.0} duplicate/s",
+        rate("applied"),
+        rate("stale"),
+        rate("duplicate")
+    );
+    let mut letters: Vec<String> = Vec::new();
+    let mut total = 0.0;
+    for (labels, v) in after.series("simtide_dead_letters_total") {
+        let previous = before
+            .series("simtide_dead_letters_total")
+            .find(|(l, _)| *l == labels)
+            .map_or(0.0, |(_, p)| p);
+        if v - previous > 0.0 {
+            total += v - previous;
+            letters.push(format!(
+                "{} {:.0}",
+                labels.trim_start_matches("reason=").replace('"', ""),
+                v - previous
+            ));
+        }
+    }
+    let _ = writeln!(
+        out,
+        "  dead letters {} in the last {:.0} s{}",
+        paint(&format!("{total:.0}"), total == 0.0, colour),
+        secs,
+        if letters.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", letters.join(", "))
+        }
+    );
+    for signal in ["rating", "purchase"] {
+        let f = format!("signal=\"{signal}\"");
+        let count = after.sum("simtide_list_drift_ratio_count", &f);
+        if count > 0.0 {
+            let _ = writeln!(
+                out,
+                "  drift        {signal}: {:.3} of neighbors replaced per changed list, RBO {:.3}, over {count:.0} changes",
+                after.sum("simtide_list_drift_ratio_sum", &f) / count,
+                after.sum("simtide_list_rank_biased_overlap_ratio_sum", &f) / count
+            );
+        }
+    }
+    let size = after.sum("simtide_store_size_bytes", "");
+    let free = after.sum("simtide_store_disk_available_bytes", "");
+    let free_share = if size + free > 0.0 {
+        free / (size + free)
+    } else {
+        1.0
+    };
+    let _ = writeln!(
+        out,
+        "  store        {}  ·  compaction debt {}  ·  disk free {}  ·  center gap max {:.3}",
+        bytes(size),
+        bytes(after.sum("simtide_store_pending_compaction_bytes", "")),
+        paint(&format!("{:.0}%", free_share * 100.0), free_share > 0.1, colour),
+        after.sum("simtide_center_gap_max", "")
+    );
+    out
+}
+
+/// Fetches and prints the screen.
+pub fn show_status(base: &str, window: Duration, out: &mut dyn Write) -> Result<()> {
+    let (_, ready_body) = get(base, "/readyz")?;
+    let readiness: serde_json::Value =
+        serde_json::from_str(&ready_body).with_context(|| format!("{base}/readyz did not answer JSON"))?;
+    let (status, first) = get(base, "/metrics")?;
+    if status != 200 {
+        bail!("{base}/metrics answered {status}");
+    }
+    std::thread::sleep(window);
+    let (_, second) = get(base, "/metrics")?;
+    write!(
+        out,
+        "{}",
+        render(
+            base,
+            &readiness,
+            &Scrape::parse(&first),
+            &Scrape::parse(&second),
+            window,
+            colour_wanted()
+        )
+    )?;
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn screen_reports_rates_over_the_window_and_failing_checks() {
+        let before = Scrape::parse(
+            "# HELP x\nsimtide_events_total{kind=\"rating\",outcome=\"applied\"} 100\nsimtide_dead_letters_total{reason=\"bad_json\"} 1\nsimtide_consumer_lag_messages{partition=\"0\"} 10\n",
+        );
+        let after = Scrape::parse(
+            "simtide_events_total{kind=\"rating\",outcome=\"applied\"} 300\nsimtide_dead_letters_total{reason=\"bad_json\"} 4\nsimtide_consumer_lag_messages{partition=\"0\"} 30\nsimtide_staleness_seconds 2.5\n",
+        );
+        let readiness: serde_json::Value = serde_json::from_str(
+            r#"{"ready":false,"checks":[{"name":"broker","ok":false,"detail":"no broker answered"}]}"#,
+        )
+        .unwrap();
+        let screen = render(
+            "http://x:1",
+            &readiness,
+            &before,
+            &after,
+            Duration::from_secs(2),
+            false,
+        );
+        assert!(screen.contains("NOT READY"), "{screen}");
+        assert!(screen.contains("! broker: no broker answered"), "{screen}");
+        assert!(screen.contains("100 events/s applied"), "{screen}");
+        assert!(
+            screen.contains("dead letters 3 in the last 2 s (bad_json 3)"),
+            "{screen}"
+        );
+        assert!(screen.contains("p0 30") && screen.contains("+10/s"), "{screen}");
+        assert!(screen.contains("staleness 2.5 s"), "{screen}");
+        assert!(!screen.contains('\x1b'), "no colour when not asked");
+    }
+}
