@@ -23,12 +23,16 @@ if [ ${#need_apt[@]} -gt 0 ]; then
 fi
 [ "$mode" = build ] && exit 0
 
-# promtool (Debian's prometheus package) checks the metrics exposition in the tests.
-if ! command -v promtool >/dev/null 2>&1; then
-  echo "setup: installing prometheus (for promtool)"
+# Debian's prometheus (the server and promtool) for the dashboard and alert tests, and
+# docker-compose to validate docker-compose.yml (nothing is run in containers here).
+need_test=()
+command -v promtool >/dev/null 2>&1 || need_test+=(prometheus)
+command -v docker-compose >/dev/null 2>&1 || need_test+=(docker-compose)
+if [ ${#need_test[@]} -gt 0 ]; then
+  echo "setup: installing ${need_test[*]}"
   export DEBIAN_FRONTEND=noninteractive
   apt-get update -qq
-  apt-get install -y -qq prometheus >/dev/null
+  apt-get install -y -qq "${need_test[@]}" >/dev/null
 fi
 
 mkdir -p "$CACHE" "$DATA"
