@@ -9,6 +9,7 @@ use std::fmt;
 use std::fs::{File, OpenOptions};
 use std::io::{Seek, SeekFrom, Write};
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::time::Instant;
 
 use anyhow::{Context, Result};
@@ -18,6 +19,8 @@ use crate::config::Config;
 use crate::decode::{Limits, RejectReason};
 use crate::engine::EngineSettings;
 use crate::meter::Meter;
+use crate::metrics::Metrics;
+use crate::observe::Observation;
 use crate::pipeline::{apply_and_commit, BatchSummary};
 use crate::publish::{publish_dirty, CycleReport};
 use crate::score::ListSettings;
@@ -36,6 +39,8 @@ pub struct BackfillRequest {
     pub config: Config,
     /// Show a progress display on stderr.
     pub show_progress: bool,
+    /// Metrics to move as batches commit (served by `--metrics-listen`).
+    pub metrics: Option<Arc<Metrics>>,
 }
 
 /// The outcome of one backfill run.
@@ -78,7 +83,7 @@ impl BackfillSummary {
         self.apply_seconds + self.publish_seconds
     }
 
-    pub(crate) fn absorb(&mut self, batch: &BatchSummary) {
+    fn absorb(&mut self, batch: &BatchSummary) {
         for (&(kind, outcome), &n) in &batch.outcomes {
             *self
                 .events
@@ -262,6 +267,7 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
             let rejects_len = rejects_file.metadata()?.len();
             let next_record = reader.ordinal();
             let canonical = input.canonical.clone();
+            let commit_started = Instant::now();
             let batch = apply_and_commit(&mut store, &settings, &events, &rejects, |p| {
                 p.files.insert(
                     canonical,
@@ -272,10 +278,8 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
                 );
                 p.rejects_file_len = rejects_len;
             })?;
-            summary.absorb(&batch);
-            for (reason, n) in rejects {
-                *summary.rejects.entry(reason).or_default() += n;
-            }
+            let records = events.len() + rejects.values().sum::<u64>() as usize;
+            record_batch(request, &mut summary, &batch, rejects, records, commit_started);
             let elapsed = started.elapsed().as_secs_f64().max(1e-9);
             meter.update(
                 bytes_before + reader.bytes_read(),
@@ -291,6 +295,30 @@ pub fn run_backfill(request: &BackfillRequest) -> Result<BackfillSummary> {
     summary.apply_seconds = started.elapsed().as_secs_f64();
     publish_at_end(&store, request, &mut summary)?;
     Ok(summary)
+}
+
+/// Adds a committed batch to the summary and, when metrics are served, to the metrics.
+pub(crate) fn record_batch(
+    request: &BackfillRequest,
+    summary: &mut BackfillSummary,
+    batch: &BatchSummary,
+    rejects: BTreeMap<RejectReason, u64>,
+    records: usize,
+    commit_started: Instant,
+) {
+    summary.absorb(batch);
+    if let Some(m) = &request.metrics {
+        Observation::BatchCommitted {
+            messages: records,
+            summary: batch,
+            rejects: &rejects,
+            seconds: commit_started.elapsed().as_secs_f64(),
+        }
+        .emit(m);
+    }
+    for (reason, n) in rejects {
+        *summary.rejects.entry(reason).or_default() += n;
+    }
 }
 
 /// The publication that ends every backfill: every dirty list rescored and stored, with a

@@ -195,6 +195,49 @@ async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: 
     (StatusCode::ACCEPTED, format!("{action} requested\n")).into_response()
 }
 
+/// Serves `/metrics` alone on `listen` from a thread of its own, for the commands that
+/// run without the service's listener (backfill). The address is bound before returning,
+/// so a taken or invalid one fails the command at once.
+pub fn serve_metrics_in_background(listen: &str, metrics: Arc<Metrics>) -> Result<()> {
+    let listener = std::net::TcpListener::bind(listen)
+        .with_context(|| format!("--metrics-listen: cannot listen on {listen}"))?;
+    listener.set_nonblocking(true)?;
+    std::thread::Builder::new()
+        .name("simtide-metrics".into())
+        .spawn(move || {
+            let runtime = match tokio::runtime::Builder::new_current_thread().enable_all().build() {
+                Ok(r) => r,
+                Err(e) => {
+                    tracing::error!(error = %e, "metrics listener not started");
+                    return;
+                }
+            };
+            runtime.block_on(async move {
+                let router = Router::new().route(
+                    "/metrics",
+                    get(move || {
+                        let metrics = metrics.clone();
+                        async move {
+                            (
+                                [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
+                                metrics.render(),
+                            )
+                        }
+                    }),
+                );
+                match TcpListener::from_std(listener) {
+                    Ok(l) => {
+                        if let Err(e) = axum::serve(l, router).await {
+                            tracing::error!(error = %e, "metrics listener stopped");
+                        }
+                    }
+                    Err(e) => tracing::error!(error = %e, "metrics listener not started"),
+                }
+            });
+        })?;
+    Ok(())
+}
+
 /// Serves until the task is dropped.
 pub async fn serve(listener: TcpListener, state: HttpState) {
     if let Err(e) = axum::serve(listener, router(state)).await {

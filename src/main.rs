@@ -62,6 +62,9 @@ enum Command {
         /// Records per batch (overrides backfill.batch_events).
         #[arg(long, value_name = "N")]
         batch_events: Option<u64>,
+        /// Serve the run's metrics on this address (GET /metrics) while it works.
+        #[arg(long, value_name = "ADDR")]
+        metrics_listen: Option<String>,
         /// Do not draw a progress display.
         #[arg(long)]
         quiet: bool,
@@ -234,9 +237,18 @@ fn run(cli: Cli) -> Result<()> {
             from_topic,
             config,
             batch_events,
+            metrics_listen,
             quiet,
         } => {
             let mut config = Config::load(config.as_deref())?;
+            let metrics = match metrics_listen {
+                Some(listen) => {
+                    let metrics = std::sync::Arc::new(simtide::metrics::Metrics::new());
+                    simtide::http::serve_metrics_in_background(&listen, metrics.clone())?;
+                    Some(metrics)
+                }
+                None => None,
+            };
             if let Some(n) = batch_events {
                 config.backfill.batch_events = n;
                 config.validate()?;
@@ -246,6 +258,7 @@ fn run(cli: Cli) -> Result<()> {
                 inputs: input,
                 config,
                 show_progress: !quiet,
+                metrics,
             };
             let summary = if from_topic {
                 run_topic_backfill(&request)?

@@ -92,6 +92,12 @@ fn histogram(name: &str, help: &str, buckets: Vec<f64>) -> Histogram {
     Histogram::with_opts(HistogramOpts::new(name, help).buckets(buckets)).expect("valid metric")
 }
 
+impl std::fmt::Debug for Metrics {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Metrics").finish_non_exhaustive()
+    }
+}
+
 impl Default for Metrics {
     fn default() -> Self {
         Metrics::new()

@@ -12,7 +12,7 @@ use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::{Offset, TopicPartitionList};
 use serde_json::json;
 
-use crate::backfill::{open_rejects, publish_at_end, BackfillRequest, BackfillSummary};
+use crate::backfill::{open_rejects, publish_at_end, record_batch, BackfillRequest, BackfillSummary};
 use crate::config::secrets::Scrubber;
 use crate::decode::Limits;
 use crate::engine::EngineSettings;
@@ -143,15 +143,20 @@ pub fn run_topic_backfill(request: &BackfillRequest) -> Result<BackfillSummary> 
             rejects_file.flush()?;
             let rejects_len = rejects_file.metadata()?.len();
             let rejects = batch.reject_counts();
+            let commit_started = Instant::now();
             let committed = apply_and_commit(&mut store, &settings, &batch.events, &rejects, |p| {
                 let stored = p.offsets.entry(topic.to_string()).or_default();
                 stored.extend(batch.next_offsets.iter().map(|(&k, &v)| (k, v)));
                 p.rejects_file_len = rejects_len;
             })?;
-            summary.absorb(&committed);
-            for (reason, n) in rejects {
-                *summary.rejects.entry(reason).or_default() += n;
-            }
+            record_batch(
+                request,
+                &mut summary,
+                &committed,
+                rejects,
+                batch.messages,
+                commit_started,
+            );
             let elapsed = started.elapsed().as_secs_f64().max(1e-9);
             meter.update(consumed, &format!("{:.0} events/s", consumed as f64 / elapsed));
         }

@@ -69,6 +69,7 @@ pub fn backfill(store: &Path, inputs: &[&Path], config: &Config) -> BackfillSumm
         inputs: inputs.iter().map(|p| p.to_path_buf()).collect(),
         config: config.clone(),
         show_progress: false,
+        metrics: None,
     })
     .expect("backfill succeeds")
 }
