@@ -9,7 +9,7 @@ use clap::{Parser, Subcommand};
 
 use simtide::backfill::{run_backfill, BackfillRequest};
 use simtide::config::secrets::{masked, Scrubber};
-use simtide::config::Config;
+use simtide::config::{Config, LogFormat};
 use simtide::demo::run_demo;
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
 use simtide::export::export_lists;
@@ -458,19 +458,24 @@ fn main() -> ExitCode {
     } else {
         "info"
     };
-    tracing_subscriber::fmt()
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_env("SIMTIDE_LOG")
-                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default_level)),
-        )
-        .with_writer(std::io::stderr)
-        .init();
+    // The log format comes from the configuration (or SIMTIDE_LOG__FORMAT); a file that
+    // does not load is reported by the command itself, after logging is set up.
     let config_path = match &cli.command {
         Command::Run { config, .. } => Some(config.clone()),
         Command::CheckConfig { file } => file.clone(),
         Command::Backfill { config, .. } => config.clone(),
         _ => None,
     };
+    let format = Config::load(config_path.as_deref()).map_or(LogFormat::Text, |c| c.log.format);
+    let filter = tracing_subscriber::EnvFilter::try_from_env("SIMTIDE_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default_level));
+    let logs = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    match format {
+        LogFormat::Json => logs.json().init(),
+        LogFormat::Text => logs.init(),
+    }
     match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {

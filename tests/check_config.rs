@@ -89,3 +89,48 @@ fn bad_values_are_refused_by_key() {
         assert!(!ok && err.contains(key), "{text:?} → {err}");
     }
 }
+
+#[test]
+fn logs_are_json_lines_when_configured() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
+    let file = dir.path().join("json-logs.toml");
+    std::fs::write(
+        &file,
+        format!(
+            "[log]\nformat = \"json\"\n[store]\ndir = \"{}\"\n[kafka]\nbrokers = \"127.0.0.1:1\"\n[http]\nlisten = \"127.0.0.1:{port}\"\n",
+            dir.path().join("store").display()
+        ),
+    )
+    .unwrap();
+    // A start position cannot be resolved without a broker: the run logs, then fails.
+    let (ok, _, err) = simtide(
+        &[
+            "run",
+            "--config",
+            file.to_str().unwrap(),
+            "--start-offsets",
+            "0:0",
+        ],
+        &[
+            ("SIMTIDE_LOG", "info"),
+            ("SIMTIDE_KAFKA__CLIENT__SOCKET_TIMEOUT_MS", "2000"),
+        ],
+    );
+    assert!(!ok);
+    let logged: Vec<serde_json::Value> = err
+        .lines()
+        .filter(|l| l.starts_with('{'))
+        .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("not JSON ({e}): {l}")))
+        .collect();
+    assert!(
+        logged.iter().any(|v| v["fields"]["message"]
+            .as_str()
+            .is_some_and(|m| m.contains("HTTP listener up"))),
+        "{err}"
+    );
+}

@@ -14,7 +14,9 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 
-pub use service::{HttpConfig, KafkaConfig, LiveConfig, PublishConfig, StartPosition, StoreConfig};
+pub use service::{
+    HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, StartPosition, StoreConfig,
+};
 
 /// Prefix of the environment variables that override configuration keys.
 pub const ENV_PREFIX: &str = "SIMTIDE_";
@@ -41,6 +43,8 @@ pub struct Config {
     pub publish: PublishConfig,
     /// The HTTP listener.
     pub http: HttpConfig,
+    /// Log line format.
+    pub log: LogConfig,
 }
 
 /// Which purchase-signal score ranks co-bought items.

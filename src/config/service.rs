@@ -148,3 +148,22 @@ impl Default for HttpConfig {
         }
     }
 }
+
+/// How log lines are written.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum LogFormat {
+    /// One human-readable line per event.
+    #[default]
+    Text,
+    /// One JSON object per line, for log shippers.
+    Json,
+}
+
+/// `[log]`: the format of log lines on stderr (the level is `SIMTIDE_LOG`, e.g. `info`).
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct LogConfig {
+    /// `text` or `json`.
+    pub format: LogFormat,
+}
