@@ -16,25 +16,15 @@ mod common;
 
 use std::time::{Duration, Instant};
 
-use common::broker::Broker;
 use common::live::{
-    caught_up, csv_events, produce, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, GROUP, INPUT,
-    OUTPUT, PURCHASE_OUTPUT,
+    broker_with_topics, caught_up, csv_events, produce, wait_for, write_config, LiveSettings, Service, GROUP,
+    INPUT,
 };
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
 use rdkafka::{ClientConfig, Offset, TopicPartitionList};
 
 const PARTITIONS: i32 = 3;
-
-fn fresh_broker() -> Broker {
-    let broker = Broker::start();
-    broker.create_topic(INPUT, PARTITIONS, false);
-    broker.create_topic(OUTPUT, 1, true);
-    broker.create_topic(PURCHASE_OUTPUT, 1, true);
-    broker.create_topic(DEAD_LETTER, 1, false);
-    broker
-}
 
 /// Reads the service group's consumer lag: Σ over partitions of (high watermark − the
 /// group's committed offset).
@@ -89,7 +79,7 @@ fn defaults() -> LiveSettings {
 
 fn saturation(events: &[(String, String, Option<i64>)]) {
     let work = tempfile::tempdir().unwrap();
-    let broker = fresh_broker();
+    let broker = broker_with_topics();
     let t = Instant::now();
     produce(&broker.bootstrap(), INPUT, events);
     let produce_s = t.elapsed().as_secs_f64();
@@ -117,7 +107,7 @@ fn saturation(events: &[(String, String, Option<i64>)]) {
 
 fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
     let work = tempfile::tempdir().unwrap();
-    let broker = fresh_broker();
+    let broker = broker_with_topics();
     let (config, port) = write_config(
         work.path(),
         &broker.bootstrap(),

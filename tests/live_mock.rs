@@ -8,19 +8,9 @@ mod common;
 use std::time::Duration;
 
 use common::live::{
-    produce, rating, read_all, unrating, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, INPUT,
-    OUTPUT, PURCHASE_OUTPUT,
+    mock_with_topics, produce, rating, read_all, unrating, wait_for, write_config, LiveSettings, Service,
+    INPUT, OUTPUT,
 };
-use rdkafka::mocking::MockCluster;
-
-fn mock_with_topics() -> MockCluster<'static, rdkafka::producer::DefaultProducerContext> {
-    let mock = MockCluster::new(1).expect("mock cluster");
-    mock.create_topic(INPUT, 3, 1).unwrap();
-    for t in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
-        mock.create_topic(t, 1, 1).unwrap();
-    }
-    mock
-}
 
 /// The list of `item` on the output topic, in order of appearance: `Some(first neighbor)`
 /// for a list, `None` for a tombstone.

@@ -22,8 +22,9 @@ use std::time::Duration;
 
 use common::broker::Broker;
 use common::live::{
-    caught_up, committed_total, csv_events, csv_slice, last_lists_as_export, produce, read_all, wait_for,
-    write_config, LiveSettings, ReadRecord, Service, DEAD_LETTER, INPUT, OUTPUT, PURCHASE_OUTPUT,
+    broker_with_topics, caught_up, committed_total, csv_events, csv_slice, last_lists_as_export, produce,
+    read_all, wait_for, write_config, LiveSettings, ReadRecord, Service, DEAD_LETTER, INPUT, OUTPUT,
+    PURCHASE_OUTPUT,
 };
 use simtide::signal::Signal;
 use simtide::store::Store;
@@ -48,11 +49,7 @@ impl Scenario {
     /// The first `rows` ratings by time (all of them with 100,000).
     fn new(rows: usize) -> Scenario {
         let work = tempfile::tempdir().unwrap();
-        let broker = Broker::start();
-        broker.create_topic(INPUT, 3, false);
-        broker.create_topic(OUTPUT, 1, true);
-        broker.create_topic(PURCHASE_OUTPUT, 1, true);
-        broker.create_topic(DEAD_LETTER, 1, false);
+        let broker = broker_with_topics();
         let slice = work.path().join("slice.csv");
         csv_slice(&common::movielens_csv(), rows, &slice);
         let store = work.path().join("store");

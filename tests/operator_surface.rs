@@ -11,10 +11,9 @@ use std::process::{Command, Stdio};
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use common::live::{
-    caught_up, http_request, produce, rating, sample, unrating, wait_for, write_config, LiveSettings,
-    Service, DEAD_LETTER, INPUT, OUTPUT, PURCHASE_OUTPUT,
+    caught_up, http_request, mock_with_topics, produce, rating, sample, unrating, wait_for, write_config,
+    LiveSettings, Service, INPUT,
 };
-use rdkafka::mocking::MockCluster;
 
 const CLIENT_SECRET: &str = "pw-ZX81-never-printed";
 const ADMIN_TOKEN: &str = "tok-QL42-admin";
@@ -42,11 +41,7 @@ fn cycles(service: &Service) -> f64 {
 #[test]
 fn metrics_move_as_defined_and_secrets_stay_out() {
     let work = tempfile::tempdir().unwrap();
-    let mock = MockCluster::new(1).unwrap();
-    mock.create_topic(INPUT, 3, 1).unwrap();
-    for t in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
-        mock.create_topic(t, 1, 1).unwrap();
-    }
+    let mock = mock_with_topics();
     let brokers = mock.bootstrap_servers();
     let store = work.path().join("store");
     let (config, port) = write_config(

@@ -14,10 +14,9 @@ use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use common::broker::free_port;
 use common::live::{
-    caught_up, http_get, produce, rating, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, INPUT,
-    OUTPUT, PURCHASE_OUTPUT,
+    caught_up, http_get, mock_with_topics, produce, rating, wait_for, write_config, LiveSettings, Service,
+    INPUT,
 };
-use rdkafka::mocking::MockCluster;
 
 fn dashboards() -> &'static Path {
     Path::new(concat!(env!("CARGO_MANIFEST_DIR"), "/dashboards"))
@@ -141,11 +140,7 @@ fn query(prom: &Prometheus, expr: &str) -> serde_json::Value {
 #[test]
 fn every_dashboard_and_alert_expression_returns_series_from_a_running_service() {
     let work = tempfile::tempdir().unwrap();
-    let mock = MockCluster::new(1).unwrap();
-    mock.create_topic(INPUT, 3, 1).unwrap();
-    for t in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
-        mock.create_topic(t, 1, 1).unwrap();
-    }
+    let mock = mock_with_topics();
     let brokers = mock.bootstrap_servers();
     let (config, port) = write_config(
         work.path(),

@@ -16,15 +16,6 @@ use crate::config::KafkaConfig;
 /// How long each admin request may take.
 const ADMIN_TIMEOUT: Duration = Duration::from_secs(5);
 
-/// What start-up found and did.
-#[derive(Debug, Default, Clone, PartialEq, Eq)]
-pub struct TopicCheck {
-    /// Topics created now.
-    pub created: Vec<String>,
-    /// Problems an operator should know of (each also logged as a warning).
-    pub warnings: Vec<String>,
-}
-
 /// Topics the service produces to, with whether each must be compacted.
 fn written_topics(kafka: &KafkaConfig) -> [(&str, bool); 3] {
     [
@@ -35,7 +26,7 @@ fn written_topics(kafka: &KafkaConfig) -> [(&str, bool); 3] {
 }
 
 /// Creates missing written topics (when `kafka.create_topics`) and checks compaction.
-pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<TopicCheck> {
+pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<()> {
     let admin: AdminClient<BusContext> = base_config(kafka)
         .create_with_context(bus.clone())
         .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka admin client", &e))?;
@@ -54,11 +45,7 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<Topi
     .await?
     .map_err(|e| describe_error(bus.scrubber(), "cannot read topic metadata", &e))?;
 
-    let mut check = TopicCheck::default();
-    let mut warn = |text: String| {
-        tracing::warn!("{text}");
-        check.warnings.push(text);
-    };
+    let warn = |text: String| tracing::warn!("{text}");
     if !existing.contains(&kafka_owned.input_topic) {
         warn(format!(
             "input topic {} does not exist yet; the service waits for it",
@@ -125,6 +112,5 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<Topi
             None => warn(format!("cannot tell whether topic {topic} is compacted")),
         }
     }
-    check.created = created;
-    Ok(check)
+    Ok(())
 }

@@ -13,7 +13,10 @@ use rdkafka::message::Headers;
 use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
 use rdkafka::{ClientConfig, Message, Offset, TopicPartitionList};
 
-use super::broker::free_port;
+use rdkafka::mocking::MockCluster;
+use rdkafka::producer::DefaultProducerContext as MockContext;
+
+use super::broker::{free_port, Broker};
 
 /// The topic names every live test uses.
 pub const INPUT: &str = "ratings-in";
@@ -441,4 +444,24 @@ pub fn unrating(user: &str, item: &str, at: u64) -> (String, String, Option<i64>
         format!(r#"{{"kind":"unrating","user":"{user}","item":"{item}","at":{at}}}"#),
         None,
     )
+}
+
+/// A real broker with the four topics of the live tests (input in 3 partitions).
+pub fn broker_with_topics() -> Broker {
+    let broker = Broker::start();
+    broker.create_topic(INPUT, 3, false);
+    broker.create_topic(OUTPUT, 1, true);
+    broker.create_topic(PURCHASE_OUTPUT, 1, true);
+    broker.create_topic(DEAD_LETTER, 1, false);
+    broker
+}
+
+/// librdkafka's in-process mock cluster with the same four topics.
+pub fn mock_with_topics() -> MockCluster<'static, MockContext> {
+    let mock = MockCluster::new(1).expect("mock cluster");
+    mock.create_topic(INPUT, 3, 1).unwrap();
+    for t in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
+        mock.create_topic(t, 1, 1).unwrap();
+    }
+    mock
 }
