@@ -307,6 +307,13 @@ impl Metrics {
         }
     }
 
+    /// Records a change at `at_ns` that no list reflects yet; the oldest one is kept.
+    pub fn note_unpublished_change(&self, at_ns: i64) {
+        let _ = self
+            .oldest_dirty_ns
+            .compare_exchange(UNSET, at_ns, Ordering::Relaxed, Ordering::Relaxed);
+    }
+
     /// Records the newest event time reflected in published lists.
     pub fn set_published_watermark(&self, watermark_ns: Option<i64>) {
         if let Some(w) = watermark_ns {

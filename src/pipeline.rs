@@ -32,6 +32,8 @@ pub struct BatchSummary {
     pub max_center_gap: f64,
     /// |mean − center| of each touched user with ratings after the batch.
     pub center_gaps: Vec<f64>,
+    /// Whether the batch marked any list dirty.
+    pub marked_dirty: bool,
 }
 
 /// Dense ids of one kind of name (users or items) within a batch: known ones, and the
@@ -208,5 +210,6 @@ pub fn apply_and_commit(
         recenterings: effects.recenterings,
         max_center_gap: effects.max_center_gap,
         center_gaps: effects.center_gaps.clone(),
+        marked_dirty: !effects.dirty_rating.is_empty() || !effects.dirty_purchase.is_empty(),
     })
 }

@@ -257,7 +257,12 @@ impl Core {
         }
         .emit(&self.metrics);
         self.metrics.set_positions(&offsets);
-        self.refresh_store_gauges();
+        // The cheap gauges only: scanning the dirty marks and RocksDB's properties waits
+        // for the next publication cycle, off the per-batch path.
+        if summary.marked_dirty {
+            self.metrics.note_unpublished_change(now_nanos());
+        }
+        self.refresh_counts();
         Flushed::Committed(offsets)
     }
 
@@ -411,8 +416,20 @@ impl Core {
         Ok(report)
     }
 
-    /// Brings the store-derived gauges up to date: pending changes, sizes, counts.
-    pub fn refresh_store_gauges(&self) {
+    /// Items and users, from memory.
+    fn refresh_counts(&self) {
+        let m = &self.metrics;
+        m.entities
+            .with_label_values(&["items"])
+            .set(self.store.item_count() as i64);
+        m.entities
+            .with_label_values(&["users"])
+            .set(i64::from(self.store.progress().next_user));
+    }
+
+    /// Brings the store-derived gauges up to date: pending changes (a scan of the dirty
+    /// marks), sizes and counts. At start-up and after each publication cycle.
+    fn refresh_store_gauges(&self) {
         let m = &self.metrics;
         match self.store.oldest_dirty_since() {
             Ok(oldest) => m.set_oldest_dirty(oldest),
