@@ -9,7 +9,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::Result;
 
-use super::batch::PendingBatch;
+use super::batch::{InMessage, PendingBatch};
 use super::latency::LatencyRecorder;
 use crate::config::Config;
 use crate::decode::Limits;
@@ -136,9 +136,9 @@ impl Core {
         self.refresh_store_gauges();
     }
 
-    /// Decoding limits for incoming messages.
-    pub fn limits(&self) -> &Limits {
-        &self.limits
+    /// Decodes a consumed message into the pending batch.
+    pub fn take(&mut self, message: InMessage) {
+        self.pending.take(message, &self.limits);
     }
 
     /// The store's next offsets for the input topic.
@@ -151,8 +151,17 @@ impl Core {
             .unwrap_or_default()
     }
 
+    /// Commits the pending batch if it is full or old enough ([`Core::flush`]).
+    pub fn flush_if_due(&mut self) -> Flushed {
+        if self.batch_due() {
+            self.flush(None)
+        } else {
+            Flushed::Nothing
+        }
+    }
+
     /// Whether the pending batch should be committed now.
-    pub fn batch_due(&self) -> bool {
+    fn batch_due(&self) -> bool {
         self.pending.messages >= self.config.live.batch_events
             || self
                 .pending

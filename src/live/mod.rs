@@ -248,21 +248,13 @@ pub async fn run_service(
                 }
             }
             received = tokio::time::timeout_at(wake.into(), consumer.recv()) => match received {
-                Ok(Ok(message)) => {
-                    let copied = consumer::copy_message(&message);
-                    let mut c = core.lock().expect("core lock");
-                    let limits = *c.limits();
-                    c.pending.take(copied, &limits);
-                }
+                Ok(Ok(message)) => core.lock().expect("core lock").take(consumer::copy_message(&message)),
                 Ok(Err(e)) => tracing::warn!(error = %bus.scrubber().scrub(&e.to_string()), "consume error"),
                 Err(_) => {}
             },
         }
-        let due = core.lock().expect("core lock").batch_due();
-        if due {
-            let flushed = core.lock().expect("core lock").flush(None);
-            commit_group_offsets(&consumer, &config.kafka.input_topic, flushed);
-        }
+        let flushed = core.lock().expect("core lock").flush_if_due();
+        commit_group_offsets(&consumer, &config.kafka.input_topic, flushed);
         if admin.compact.swap(false, Ordering::Relaxed) {
             tracing::info!("compacting the store on request");
             core.lock().expect("core lock").store.compact();
