@@ -44,9 +44,11 @@ const MALFORMED: [&str; 2] = [
 const REPLAY_SECONDS: f64 = 12.0;
 
 /// The demo's topics.
-const INPUT: &str = "fernwick-events";
+const INPUT: &str = "fernwick.events";
 const INPUT_PARTITIONS: i32 = 3;
-const OUTPUT: &str = "fernwick-neighbors";
+const OUTPUT: &str = "fernwick.item-lists.rating";
+const PURCHASE_OUTPUT: &str = "fernwick.item-lists.purchase";
+const DEAD_LETTER: &str = "fernwick.events.dead-letter";
 
 fn demo_config(brokers: &str, store_dir: &std::path::Path) -> Result<Config> {
     let toml = format!(
@@ -55,11 +57,11 @@ fn demo_config(brokers: &str, store_dir: &std::path::Path) -> Result<Config> {
 dir = "{store}"
 [kafka]
 brokers = "{brokers}"
-group = "fernwick-simtide"
+group = "fernwick.simtide"
 input_topic = "{INPUT}"
 output_topic = "{OUTPUT}"
-purchase_output_topic = "fernwick-bought-together"
-dead_letter_topic = "fernwick-events-dead-letter"
+purchase_output_topic = "{PURCHASE_OUTPUT}"
+dead_letter_topic = "{DEAD_LETTER}"
 create_topics = false
 [live]
 batch_wait = "100ms"
@@ -121,7 +123,7 @@ fn replay(brokers: &str, messages: Vec<(String, String)>) -> Result<usize> {
 fn follow_output(brokers: &str, lines: mpsc::Sender<String>, stop: mpsc::Receiver<()>) -> Result<()> {
     let consumer: BaseConsumer = ClientConfig::new()
         .set("bootstrap.servers", brokers)
-        .set("group.id", "fernwick-reader")
+        .set("group.id", "fernwick.reader")
         .create()?;
     let mut tpl = TopicPartitionList::new();
     tpl.add_partition_offset(OUTPUT, 0, Offset::Beginning)?;
@@ -202,7 +204,7 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
     let mock = MockCluster::new(1).context("cannot start the in-process Kafka mock cluster")?;
     let brokers = mock.bootstrap_servers();
     mock.create_topic(INPUT, INPUT_PARTITIONS, 1)?;
-    for topic in [OUTPUT, "fernwick-bought-together", "fernwick-events-dead-letter"] {
+    for topic in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
         mock.create_topic(topic, 1, 1)?;
     }
     let config = demo_config(&brokers, &store_dir)?;

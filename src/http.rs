@@ -1,6 +1,7 @@
 //! The service's HTTP listener: `/healthz` (the process answers), `/readyz` (every
 //! readiness check, as JSON, 503 when one fails), `/metrics` (Prometheus text format),
-//! read-only lookups `/v1/items/{id}/neighbors` and `/v1/pairs/{a}/{b}`, and the actions
+//! read-only lookups `/v1/lists/{item}` (`?signal=purchase` for the purchase list) and
+//! `/v1/pairs/{a}/{b}`, and the actions
 //! that change state (`POST /v1/admin/publish|republish|compact`), which need the bearer
 //! token of `http.admin_token` and are off without one.
 
@@ -9,7 +10,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
 use anyhow::{Context, Result};
-use axum::extract::{Path, State};
+use axum::extract::{Path, Query, State};
 use axum::http::{header, HeaderMap, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -65,7 +66,7 @@ pub fn router(state: HttpState) -> Router {
         .route("/healthz", get(|| async { "alive\n" }))
         .route("/readyz", get(readyz))
         .route("/metrics", get(metrics))
-        .route("/v1/items/{id}/neighbors", get(neighbors))
+        .route("/v1/lists/{item}", get(list))
         .route("/v1/pairs/{a}/{b}", get(pair))
         .route("/v1/admin/{action}", post(admin))
         .with_state(state)
@@ -103,26 +104,39 @@ async fn with_store<T: Send + 'static>(
     outcome.map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, format!("{e:#}\n")).into_response())
 }
 
-async fn neighbors(State(s): State<HttpState>, Path(id): Path<String>) -> Response {
-    let wanted = id.clone();
+/// The query of a list lookup: which signal's list (rating when absent).
+#[derive(Debug, serde::Deserialize)]
+struct ListQuery {
+    signal: Option<String>,
+}
+
+async fn list(State(s): State<HttpState>, Path(item): Path<String>, Query(q): Query<ListQuery>) -> Response {
+    let signal = match q.signal.as_deref().map(Signal::parse) {
+        None => Signal::Rating,
+        Some(Some(signal)) => signal,
+        Some(None) => {
+            return (
+                StatusCode::BAD_REQUEST,
+                "signal: expected \"rating\" or \"purchase\"\n",
+            )
+                .into_response()
+        }
+    };
+    let wanted = item.clone();
     let found = with_store(&s, move |store| {
-        let Some(item) = store.item_id(&wanted) else {
+        let Some(id) = store.item_id(&wanted) else {
             return Ok(None);
         };
-        let mut records = Vec::new();
-        for signal in Signal::ALL {
-            if let Some(list) = store.published(signal, item)? {
-                records.push(NeighborRecord::from_stored(store, signal, item, &list));
-            }
-        }
-        Ok(Some(records))
+        Ok(store
+            .published(signal, id)?
+            .map(|list| NeighborRecord::from_stored(store, signal, id, &list)))
     })
     .await;
     match found {
-        Ok(Some(records)) => Json(records).into_response(),
+        Ok(Some(record)) => Json(record).into_response(),
         Ok(None) => (
             StatusCode::NOT_FOUND,
-            format!("item {id:?} is not in the store\n"),
+            format!("item {item:?} has no published {} list\n", signal.as_str()),
         )
             .into_response(),
         Err(response) => response,

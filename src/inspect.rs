@@ -7,7 +7,7 @@ use anyhow::{bail, Result};
 
 use crate::config::PurchaseScore;
 use crate::score::{
-    purchase_list_score, purchase_raw_score, rating_list_score, shrink, ListSettings, RatingSums,
+    damp, purchase_list_score, purchase_raw_score, rating_list_score, ListSettings, RatingSums,
 };
 use crate::signal::Signal;
 use crate::store::Store;
@@ -44,7 +44,7 @@ pub fn neighbors_table(store: &Store, item_name: &str, only: Option<Signal>) -> 
         if list.neighbors.is_empty() {
             writeln!(
                 out,
-                "  (empty: no neighbor passes min_support and min_score, or the item is unavailable)"
+                "  (empty: no neighbor passes min_common_users and min_score, or the item is unavailable)"
             )?;
             continue;
         }
@@ -123,15 +123,15 @@ pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSe
                         s.norm_b.sqrt(),
                         raw
                     )?;
-                    if settings.shrinkage > 0.0 {
+                    if settings.damping > 0.0 {
                         writeln!(
                             out,
-                            "  shrinkage λ = {}: {raw:.6} × {}/({} + {}) = {:.6}",
-                            settings.shrinkage,
+                            "  damping λ = {}: {raw:.6} × {}/({} + {}) = {:.6}",
+                            settings.damping,
                             s.n,
                             s.n,
-                            settings.shrinkage,
-                            shrink(raw, s.n as u64, settings.shrinkage)
+                            settings.damping,
+                            damp(raw, s.n as u64, settings.damping)
                         )?;
                     }
                 }
@@ -139,8 +139,8 @@ pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSe
             let verdict = match rating_list_score(&stats, settings) {
                 Some(score) => format!("publishable with score {score:.6}"),
                 None => format!(
-                    "not publishable (needs n ≥ min_support {}, a score, and score > min_score {})",
-                    settings.min_support, settings.min_score
+                    "not publishable (needs n ≥ min_common_users {}, a score, and score > min_score {})",
+                    settings.min_common_users, settings.min_score
                 ),
             };
             writeln!(
@@ -171,20 +171,20 @@ pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSe
         let formula = match settings.purchase_score {
             PurchaseScore::Cosine => "co / √(n_a·n_b)",
             PurchaseScore::Jaccard => "co / (n_a + n_b − co)",
-            PurchaseScore::Llr => "G² of the table [[co, n_a−co], [n_b−co, N−n_a−n_b+co]]",
+            PurchaseScore::LogLikelihood => "G² of the table [[co, n_a−co], [n_b−co, N−n_a−n_b+co]]",
         };
         match purchase_raw_score(settings.purchase_score, co, na, nb, total) {
             Some(raw) => writeln!(out, "  score = {formula} = {raw:.6}")?,
             None => writeln!(
                 out,
-                "  no score ({formula} undefined, or bought together less than chance)"
+                "  no score ({formula} undefined, or purchased by the same users less often than chance)"
             )?,
         }
         let verdict = match purchase_list_score(co, na, nb, total, settings) {
             Some(score) => format!("publishable with score {score:.6}"),
             None => format!(
-                "not publishable (needs co ≥ min_support {} and score > min_score {})",
-                settings.min_support, settings.min_score
+                "not publishable (needs co ≥ min_common_users {} and score > min_score {})",
+                settings.min_common_users, settings.min_score
             ),
         };
         writeln!(
@@ -200,6 +200,6 @@ fn purchase_name(kind: PurchaseScore) -> &'static str {
     match kind {
         PurchaseScore::Cosine => "cosine of buyer sets",
         PurchaseScore::Jaccard => "Jaccard of buyer sets",
-        PurchaseScore::Llr => "log-likelihood ratio",
+        PurchaseScore::LogLikelihood => "log-likelihood ratio",
     }
 }

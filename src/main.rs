@@ -130,7 +130,7 @@ enum Command {
         item_a: String,
         /// Second item id.
         item_b: String,
-        /// Configuration whose list settings (min_support, shrinkage…) to apply.
+        /// Configuration whose list settings (min_common_users, damping…) to apply.
         #[arg(long, value_name = "FILE")]
         config: Option<PathBuf>,
     },

@@ -1,4 +1,4 @@
-//! Scores from stored sums (DESIGN §4): adjusted cosine with optional shrinkage for
+//! Scores from stored sums (docs/design.md, "Scores"): adjusted cosine with optional damping for
 //! ratings; cosine, Jaccard or log-likelihood ratio for purchases; and the rule that
 //! decides whether a scored pair may be published.
 
@@ -15,9 +15,9 @@ pub struct ListSettings {
     /// Top-k length.
     pub neighbors: usize,
     /// Minimum co-raters / co-buyers.
-    pub min_support: u64,
+    pub min_common_users: u64,
     /// λ of sim·n/(n+λ).
-    pub shrinkage: f64,
+    pub damping: f64,
     /// Only scores strictly above this are published.
     pub min_score: f64,
     /// Purchase score in use.
@@ -30,8 +30,8 @@ impl ListSettings {
         let s = &config.similarity;
         ListSettings {
             neighbors: s.neighbors,
-            min_support: s.min_support,
-            shrinkage: s.shrinkage,
+            min_common_users: s.min_common_users,
+            damping: s.damping,
             min_score: s.min_score,
             purchase_score: s.purchase_score,
         }
@@ -71,8 +71,8 @@ impl RatingSums {
     }
 }
 
-/// Shrinks a score toward 0 for small support: sim·n/(n+λ).
-pub fn shrink(score: f64, support: u64, lambda: f64) -> f64 {
+/// Damps a score toward 0 for small support: sim·n/(n+λ).
+pub fn damp(score: f64, support: u64, lambda: f64) -> f64 {
     if lambda == 0.0 {
         score
     } else {
@@ -82,11 +82,11 @@ pub fn shrink(score: f64, support: u64, lambda: f64) -> f64 {
 
 /// The published score of a rating pair, or `None` when it must not be published.
 pub fn rating_list_score(stats: &RatingPairStats, settings: &ListSettings) -> Option<f64> {
-    if stats.n < 1 || (stats.n as u64) < settings.min_support {
+    if stats.n < 1 || (stats.n as u64) < settings.min_common_users {
         return None;
     }
     let raw = RatingSums::from_stats(stats).adjusted_cosine()?;
-    let score = shrink(raw, stats.n as u64, settings.shrinkage);
+    let score = damp(raw, stats.n as u64, settings.damping);
     (score > settings.min_score).then_some(score)
 }
 
@@ -110,8 +110,8 @@ pub fn log_likelihood_ratio(k11: f64, k12: f64, k21: f64, k22: f64) -> f64 {
 }
 
 /// Raw purchase score of items a and b with `co` common buyers, `n_a` and `n_b` buyers and
-/// `total` buyers overall. The log-likelihood ratio is only given for pairs bought
-/// together more often than independence predicts (co·N > n_a·n_b): it is large for
+/// `total` buyers overall. The log-likelihood ratio is only given for pairs purchased
+/// by the same users more often than independence predicts (co·N > n_a·n_b): it is large for
 /// strong avoidance too, which is no reason to recommend (common practice).
 pub fn purchase_raw_score(kind: PurchaseScore, co: i64, n_a: i64, n_b: i64, total: i64) -> Option<f64> {
     if co <= 0 || n_a <= 0 || n_b <= 0 {
@@ -121,7 +121,7 @@ pub fn purchase_raw_score(kind: PurchaseScore, co: i64, n_a: i64, n_b: i64, tota
     match kind {
         PurchaseScore::Cosine => Some(co / (na * nb).sqrt()),
         PurchaseScore::Jaccard => Some(co / (na + nb - co)),
-        PurchaseScore::Llr => {
+        PurchaseScore::LogLikelihood => {
             if co * n <= na * nb {
                 return None;
             }
@@ -132,11 +132,11 @@ pub fn purchase_raw_score(kind: PurchaseScore, co: i64, n_a: i64, n_b: i64, tota
 
 /// The published score of a purchase pair, or `None` when it must not be published.
 pub fn purchase_list_score(co: i64, n_a: i64, n_b: i64, total: i64, settings: &ListSettings) -> Option<f64> {
-    if co < 1 || (co as u64) < settings.min_support {
+    if co < 1 || (co as u64) < settings.min_common_users {
         return None;
     }
     let raw = purchase_raw_score(settings.purchase_score, co, n_a, n_b, total)?;
-    let score = shrink(raw, co as u64, settings.shrinkage);
+    let score = damp(raw, co as u64, settings.damping);
     (score > settings.min_score).then_some(score)
 }
 
@@ -173,18 +173,18 @@ mod tests {
     }
 
     #[test]
-    fn support_and_shrinkage_rules() {
+    fn support_and_damping_rules() {
         let st = stats(&[(1.0, 1.0), (2.0, 2.0)]);
         let mut ls = ListSettings {
             neighbors: 5,
-            min_support: 3,
-            shrinkage: 0.0,
+            min_common_users: 3,
+            damping: 0.0,
             min_score: 0.0,
             purchase_score: PurchaseScore::Cosine,
         };
-        assert_eq!(rating_list_score(&st, &ls), None, "n = 2 < min_support 3");
-        ls.min_support = 2;
-        ls.shrinkage = 2.0;
+        assert_eq!(rating_list_score(&st, &ls), None, "n = 2 < min_common_users 3");
+        ls.min_common_users = 2;
+        ls.damping = 2.0;
         assert!(
             (rating_list_score(&st, &ls).unwrap() - 0.5).abs() < 1e-12,
             "1·2/(2+2)"
@@ -192,7 +192,7 @@ mod tests {
     }
 
     #[test]
-    fn llr_matches_independent_table() {
+    fn log_likelihood_ratio_matches_independent_table() {
         // An independent table (rows and columns proportional) has G² = 0.
         assert!(log_likelihood_ratio(10.0, 20.0, 30.0, 60.0).abs() < 1e-9);
         // Symmetric in swapping rows with columns.

@@ -27,7 +27,7 @@ fn effective_configuration_is_printed_with_secrets_masked() {
 brokers = "kafka-1:9093"
 [kafka.client]
 "security.protocol" = "SASL_SSL"
-"sasl.username" = "fernwick-simtide"
+"sasl.username" = "fernwick.simtide"
 "sasl.password" = "file-secret-7731"
 "#,
     )
@@ -48,7 +48,7 @@ brokers = "kafka-1:9093"
     }
     assert!(out.contains(r#""sasl.password" = "****""#), "{out}");
     assert!(out.contains(r#""ssl.key.password" = "****""#), "{out}");
-    assert!(out.contains(r#""sasl.username" = "fernwick-simtide""#), "{out}");
+    assert!(out.contains(r#""sasl.username" = "fernwick.simtide""#), "{out}");
     assert!(
         out.contains(r#"interval = "2s""#),
         "environment override shown: {out}"

@@ -168,10 +168,11 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
     );
 
     // Lookups.
-    let (status, body) = service.get("/v1/items/rake/neighbors").unwrap();
+    let (status, body) = service.get("/v1/lists/rake").unwrap();
     assert_eq!(status, 200);
-    let records: serde_json::Value = serde_json::from_str(&body).unwrap();
-    let names: Vec<&str> = records[0]["neighbors"]
+    let record: serde_json::Value = serde_json::from_str(&body).unwrap();
+    assert_eq!(record["signal"], "rating");
+    let names: Vec<&str> = record["neighbors"]
         .as_array()
         .unwrap()
         .iter()
@@ -183,7 +184,13 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         status == 200 && body.contains("rake") && body.contains("hoe"),
         "{body}"
     );
-    assert_eq!(service.get("/v1/items/no-such-item/neighbors").unwrap().0, 404);
+    assert_eq!(service.get("/v1/lists/no-such-item").unwrap().0, 404);
+    assert_eq!(
+        service.get("/v1/lists/rake?signal=purchase").unwrap().0,
+        404,
+        "rake has no purchase list"
+    );
+    assert_eq!(service.get("/v1/lists/rake?signal=bogus").unwrap().0, 400);
 
     // The one-screen status against the running service (not a terminal: no colour).
     let status = Command::new(env!("CARGO_BIN_EXE_simtide"))
@@ -264,7 +271,7 @@ fn backfill_serves_the_same_metrics_when_asked() {
             seen = sample(&body, "simtide_batches_total").unwrap_or(0.0).max(seen);
             let applied =
                 sample(&body, r#"simtide_events_total{kind="rating",outcome="applied"}"#).unwrap_or(0.0);
-            assert!(applied <= 100_000.0);
+            assert!(applied <= common::MOVIELENS_RATINGS as f64);
         }
         std::thread::sleep(Duration::from_millis(50));
     }

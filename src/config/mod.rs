@@ -6,6 +6,7 @@
 //! silently falls back to a default.
 
 pub mod duration_text;
+mod renamed;
 pub mod secrets;
 pub mod service;
 
@@ -47,33 +48,35 @@ pub struct Config {
     pub log: LogConfig,
 }
 
-/// Which purchase-signal score ranks co-bought items.
+/// Which purchase-signal score ranks items purchased by the same users.
 #[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
-#[serde(rename_all = "lowercase")]
+#[serde(rename_all = "snake_case")]
 pub enum PurchaseScore {
     /// Cosine of the binary buyer vectors: co / sqrt(n_a · n_b).
     #[default]
     Cosine,
     /// Jaccard index of the buyer sets: co / (n_a + n_b − co).
     Jaccard,
-    /// Log-likelihood ratio of the 2×2 co-occurrence table (Dunning 1993).
-    Llr,
+    /// Log-likelihood ratio G² of the 2×2 co-occurrence table (Dunning 1993), written
+    /// `log_likelihood`.
+    LogLikelihood,
 }
 
-/// `[similarity]`: the maths of DESIGN §4 and the shape of published lists (§6).
+/// `[similarity]`: the maths (docs/design.md, "Adjusted cosine over co-raters") and the shape of
+/// published lists ("Publication").
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct SimilarityConfig {
     /// Length of each published list (top-k).
     pub neighbors: usize,
     /// Pairs with fewer co-raters (or co-buyers) than this are not published.
-    pub min_support: u64,
+    pub min_common_users: u64,
     /// Largest allowed |mean − applied center| of a user after a batch; 0 means exact.
     pub recenter_tolerance: f64,
     /// How many of a user's most recent items take part in pairs; 0 means no cut.
     pub max_items_per_user: usize,
-    /// Shrinkage λ of sim·n/(n+λ); 0 turns it off.
-    pub shrinkage: f64,
+    /// Damping λ of sim·n/(n+λ); 0 turns it off.
+    pub damping: f64,
     /// Lowest valid rating value.
     pub rating_min: f64,
     /// Highest valid rating value.
@@ -88,10 +91,10 @@ impl Default for SimilarityConfig {
     fn default() -> Self {
         SimilarityConfig {
             neighbors: 50,
-            min_support: 3,
+            min_common_users: 3,
             recenter_tolerance: 0.05,
             max_items_per_user: 500,
-            shrinkage: 0.0,
+            damping: 0.0,
             rating_min: 1.0,
             rating_max: 5.0,
             min_score: 0.0,
@@ -221,6 +224,7 @@ impl Config {
             }
             target.insert(key, parsed);
         }
+        renamed::refuse_old_names(&table, origin)?;
         // The path of the offending key goes into the message: toml's own error loses it
         // once environment overrides have been merged into the table.
         let config: Config = serde_path_to_error::deserialize(toml::Value::Table(table)).map_err(
@@ -254,10 +258,10 @@ impl Config {
                 s.recenter_tolerance
             );
         }
-        if !(s.shrinkage.is_finite() && s.shrinkage >= 0.0) {
+        if !(s.damping.is_finite() && s.damping >= 0.0) {
             bail!(
-                "similarity.shrinkage must be a finite number ≥ 0, got {}",
-                s.shrinkage
+                "similarity.damping must be a finite number ≥ 0, got {}",
+                s.damping
             );
         }
         if !s.min_score.is_finite() {
@@ -358,7 +362,7 @@ mod tests {
     fn empty_file_gives_documented_defaults() {
         let c = Config::from_toml_and_env("", "t", env(&[])).unwrap();
         assert_eq!(c.similarity.neighbors, 50);
-        assert_eq!(c.similarity.min_support, 3);
+        assert_eq!(c.similarity.min_common_users, 3);
         assert_eq!(c.similarity.recenter_tolerance, 0.05);
         assert_eq!(c.similarity.max_items_per_user, 500);
         assert_eq!(c.input.max_id_bytes, 256);
@@ -371,13 +375,24 @@ mod tests {
             "t",
             env(&[
                 ("SIMTIDE_SIMILARITY__NEIGHBORS", "20"),
-                ("SIMTIDE_SIMILARITY__PURCHASE_SCORE", "llr"),
+                ("SIMTIDE_SIMILARITY__PURCHASE_SCORE", "log_likelihood"),
                 ("OTHER_VAR", "x"),
             ]),
         )
         .unwrap();
         assert_eq!(c.similarity.neighbors, 20);
-        assert_eq!(c.similarity.purchase_score, PurchaseScore::Llr);
+        assert_eq!(c.similarity.purchase_score, PurchaseScore::LogLikelihood);
+    }
+
+    #[test]
+    fn an_old_key_from_the_environment_names_its_replacement() {
+        let err = Config::from_toml_and_env("", "t", env(&[("SIMTIDE_SIMILARITY__SHRINKAGE", "4")]))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            err.contains("similarity.shrinkage was renamed: write similarity.damping"),
+            "{err}"
+        );
     }
 
     #[test]
@@ -394,13 +409,13 @@ mod tests {
             "[kafka.client]\n\"security.protocol\" = \"SASL_SSL\"\n",
             "t",
             env(&[
-                ("SIMTIDE_KAFKA__CLIENT__SASL_PASSWORD", "hunter2"),
+                ("SIMTIDE_KAFKA__CLIENT__SASL_PASSWORD", "quillwort-7-harrow"),
                 ("SIMTIDE_PUBLISH__INTERVAL", "2s"),
             ]),
         )
         .unwrap();
         assert_eq!(c.kafka.client["security.protocol"], "SASL_SSL");
-        assert_eq!(c.kafka.client["sasl.password"], "hunter2");
+        assert_eq!(c.kafka.client["sasl.password"], "quillwort-7-harrow");
         assert_eq!(c.publish.interval, std::time::Duration::from_secs(2));
     }
 

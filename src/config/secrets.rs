@@ -106,7 +106,7 @@ mod tests {
         let mut c = Config::default();
         c.kafka
             .client
-            .insert("sasl.password".into(), "s3cr3t-pass".into());
+            .insert("sasl.password".into(), "marsh-fennel-42".into());
         c.kafka
             .client
             .insert("sasl.oauthbearer.token.endpoint.url".into(), "https://t".into());
@@ -118,7 +118,7 @@ mod tests {
         assert_eq!(shown.kafka.client["security.protocol"], "SASL_SSL");
         let s = Scrubber::of(&c);
         assert_eq!(
-            s.scrub("login failed with s3cr3t-pass for user"),
+            s.scrub("login failed with marsh-fennel-42 for user"),
             "login failed with **** for user"
         );
     }
