@@ -1,4 +1,4 @@
-//! The Prometheus metrics of simtide (DESIGN §7), in one registry of our own. Names carry
+//! The Prometheus metrics of simtide (docs/design.md, "Observability"), in one registry of our own. Names carry
 //! the `simtide_` prefix and follow Prometheus conventions: base units, `_total` for
 //! counters, `_seconds` for durations. Values that depend on "now" (staleness, event-time
 //! lag) are computed when scraped from the instants the service records.

@@ -1,4 +1,4 @@
-//! Publication (DESIGN §6): rescoring the rows of dirty items into top-k lists with
+//! Publication (docs/design.md, "Publication"): rescoring the rows of dirty items into top-k lists with
 //! deterministic ties, and storing each list that changed with a new version.
 
 use std::cmp::Ordering;

@@ -1,4 +1,4 @@
-//! Decoding and validation of events (DESIGN §3) from JSON lines and CSV records.
+//! Decoding and validation of events (docs/design.md, "Events") from JSON lines and CSV records.
 //!
 //! Both formats feed the same [`build_event`], so a rule (id length, scale, time format)
 //! is written once and a rejection names the same field whatever the format.

@@ -7,8 +7,9 @@
 //! described by the two states with their changed items flagged: a pair is part of the
 //! difference when at least one of its items is flagged. That is O(|X|·|A|) pairs for an
 //! ordinary event and O(|A|²) when the center moves and every deviation changes — the
-//! same arithmetic as DESIGN §4's per-event and re-centering formulas (for a shift δ,
-//! (d_a−δ)(d_b−δ) − d_a·d_b = −δ(d_a+d_b) + δ²), written once for every kind of change.
+//! same arithmetic as the per-event and re-centering formulas of docs/design.md (for a
+//! shift δ, (d_a−δ)(d_b−δ) − d_a·d_b = −δ(d_a+d_b) + δ²), written once for every kind of
+//! change.
 
 /// One side of a user's difference: its items (sorted), their values, which of them
 /// changed, and whether the side is added (+1) or retracted (−1).

@@ -1,4 +1,4 @@
-//! The RocksDB store: the only module that touches the database (DESIGN §5).
+//! The RocksDB store: the only module that touches the database (docs/design.md, "Storage").
 //!
 //! Column families:
 //! - `ids`: `u`/`i` + name → dense id, `U`/`I` + id → name (users, items).
