@@ -17,6 +17,8 @@ pub mod http;
 pub mod inspect;
 pub mod kafka;
 pub mod live;
+pub mod log_limit;
+pub mod lookup;
 pub mod meter;
 pub mod metrics;
 pub mod observe;

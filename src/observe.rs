@@ -1,9 +1,13 @@
 //! Observable events: each is one value that both writes its log line (tracing) and
 //! moves its metrics, so what the logs say and what the metrics count cannot disagree.
+//! Events that repeat while something stays broken (a broker away, a topic missing, a
+//! full disk) write at most one line per kind every [`log_limit::REPEAT_EVERY`], carrying
+//! the number of lines held back; their metrics count every occurrence.
 
 use std::collections::BTreeMap;
 
 use crate::decode::RejectReason;
+use crate::log_limit;
 use crate::metrics::Metrics;
 use crate::pipeline::BatchSummary;
 use crate::publish::{CycleReport, ListDrift};
@@ -50,6 +54,32 @@ pub enum Observation<'a> {
     /// A store write failed; it is retried.
     StoreWriteFailed {
         /// The error, without event content.
+        error: &'a str,
+    },
+    /// Reading from the input topic failed; librdkafka keeps retrying.
+    ConsumeFailed {
+        /// The client's error, scrubbed of secrets.
+        error: &'a str,
+    },
+    /// A topic the service writes is missing or misconfigured, or could not be checked.
+    TopicProblem {
+        /// The topic.
+        topic: &'a str,
+        /// What is wrong and what to do.
+        problem: &'a str,
+    },
+    /// Delivering every stored list stopped part way; it is tried again later.
+    RepublishIncomplete {
+        /// Lists not acknowledged.
+        undelivered: usize,
+        /// The first reason the client gave.
+        first_reason: &'a str,
+    },
+    /// A state-changing HTTP request came without the right token.
+    AdminRefused,
+    /// The dirty marks could not be read for the staleness gauge.
+    PendingChangesUnreadable {
+        /// The store's error.
         error: &'a str,
     },
     /// A publication cycle completed.
@@ -115,19 +145,62 @@ impl Observation<'_> {
                 count,
                 first_reason,
             } => {
-                tracing::warn!(
-                    what,
-                    count,
-                    first_reason,
-                    "not acknowledged by the broker; retrying"
-                );
+                if let Some(suppressed) = log_limit::admit(&format!("delivery/{what}")) {
+                    tracing::warn!(
+                        what,
+                        count,
+                        first_reason,
+                        suppressed,
+                        "not acknowledged by the broker; retrying"
+                    );
+                }
                 if *what == "lists" {
                     m.delivery_failures.inc_by(*count as u64);
                 }
             }
             Observation::StoreWriteFailed { error } => {
-                tracing::error!(error, "store write failed; consumption paused, retrying");
+                if let Some(suppressed) = log_limit::admit("store_write") {
+                    tracing::error!(
+                        error,
+                        suppressed,
+                        "store write failed; consumption paused, retrying"
+                    );
+                }
                 m.store_write_failures.inc();
+            }
+            Observation::ConsumeFailed { error } => {
+                if let Some(suppressed) = log_limit::admit("consume") {
+                    tracing::warn!(error, suppressed, "consume error; librdkafka keeps retrying");
+                }
+            }
+            Observation::TopicProblem { topic, problem } => {
+                if let Some(suppressed) = log_limit::admit(&format!("topic/{topic}")) {
+                    tracing::warn!(topic, suppressed, "{problem}");
+                }
+            }
+            Observation::RepublishIncomplete {
+                undelivered,
+                first_reason,
+            } => {
+                if let Some(suppressed) = log_limit::admit("republish") {
+                    tracing::warn!(
+                        undelivered,
+                        first_reason,
+                        suppressed,
+                        "republication incomplete; retrying later"
+                    );
+                }
+                m.delivery_failures.inc_by(*undelivered as u64);
+            }
+            Observation::AdminRefused => {
+                if let Some(suppressed) = log_limit::admit("admin_refused") {
+                    tracing::warn!(suppressed, "admin request refused: missing or wrong bearer token");
+                }
+            }
+            Observation::PendingChangesUnreadable { error } => {
+                if let Some(suppressed) = log_limit::admit("pending_changes") {
+                    tracing::warn!(error, suppressed, "cannot read pending changes");
+                }
             }
             Observation::CycleCompleted {
                 report,

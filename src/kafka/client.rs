@@ -2,10 +2,8 @@
 //! and one client context that routes librdkafka's logs and errors into tracing at a
 //! bounded rate, scrubbed of secrets, while tracking whether the brokers are reachable.
 
-use std::collections::HashMap;
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant};
+use std::sync::Arc;
 
 use rdkafka::config::RDKafkaLogLevel;
 use rdkafka::consumer::ConsumerContext;
@@ -14,9 +12,7 @@ use rdkafka::{ClientConfig, ClientContext};
 
 use crate::config::secrets::Scrubber;
 use crate::config::KafkaConfig;
-
-/// Shortest time between two log lines of the same kind from librdkafka.
-const LOG_EVERY: Duration = Duration::from_secs(10);
+use crate::log_limit;
 
 /// Whether the brokers answered recently: cleared by librdkafka's "all brokers down"
 /// and transport errors, set again by a successful metadata request.
@@ -52,51 +48,17 @@ impl BrokerState {
     }
 }
 
-/// Lets one line per kind through every [`LOG_EVERY`], counting the ones held back.
-#[derive(Debug, Default)]
-struct LogLimiter {
-    last: HashMap<String, (Instant, u64)>,
-}
-
-impl LogLimiter {
-    /// `Some(suppressed since the last line)` when a line of this kind may be written now.
-    fn admit(&mut self, kind: &str) -> Option<u64> {
-        let now = Instant::now();
-        match self.last.get_mut(kind) {
-            Some((at, held)) if now.duration_since(*at) < LOG_EVERY => {
-                *held += 1;
-                None
-            }
-            Some((at, held)) => {
-                let n = *held;
-                *at = now;
-                *held = 0;
-                Some(n)
-            }
-            None => {
-                self.last.insert(kind.to_string(), (now, 0));
-                Some(0)
-            }
-        }
-    }
-}
-
 /// The client context every simtide Kafka client uses.
 #[derive(Clone)]
 pub struct BusContext {
     brokers: Arc<BrokerState>,
     scrubber: Arc<Scrubber>,
-    limiter: Arc<Mutex<LogLimiter>>,
 }
 
 impl BusContext {
     /// A context reporting into `brokers`, masking the secrets `scrubber` knows.
     pub fn new(brokers: Arc<BrokerState>, scrubber: Arc<Scrubber>) -> BusContext {
-        BusContext {
-            brokers,
-            scrubber,
-            limiter: Arc::default(),
-        }
+        BusContext { brokers, scrubber }
     }
 
     /// The shared broker reachability.
@@ -109,8 +71,9 @@ impl BusContext {
         &self.scrubber
     }
 
+    /// `Some(held back)` when a librdkafka line of `kind` may be written now.
     fn admit(&self, kind: &str) -> Option<u64> {
-        self.limiter.lock().expect("log limiter lock").admit(kind)
+        log_limit::admit(&format!("librdkafka/{kind}"))
     }
 }
 
@@ -181,20 +144,4 @@ pub fn base_config(kafka: &KafkaConfig) -> ClientConfig {
 /// value when a property is invalid.
 pub fn describe_error(scrubber: &Scrubber, what: &str, error: &KafkaError) -> anyhow::Error {
     anyhow::anyhow!("{what}: {}", scrubber.scrub(&error.to_string()))
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn limiter_admits_one_line_per_kind_and_counts_the_rest() {
-        let mut l = LogLimiter::default();
-        assert_eq!(l.admit("FAIL"), Some(0));
-        assert_eq!(l.admit("FAIL"), None);
-        assert_eq!(l.admit("FAIL"), None);
-        assert_eq!(l.admit("REQTMOUT"), Some(0));
-        l.last.get_mut("FAIL").unwrap().0 -= LOG_EVERY;
-        assert_eq!(l.admit("FAIL"), Some(2));
-    }
 }
