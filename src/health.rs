@@ -1,20 +1,42 @@
 //! Liveness and readiness of the service: the facts `/readyz` reports, each check with the
-//! reason it fails, so the on-call engineer reads why, not only that.
+//! reason it fails, so the on-call engineer reads why, not only that. Readiness means
+//! "the lists on the output topics can be relied on": the broker answers, the store takes
+//! writes, partitions are assigned, every written topic exists and takes records, and the
+//! lists are fresh (consumer lag and staleness within `[readiness]`).
 
+use std::collections::BTreeMap;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
 
 use serde::Serialize;
 
+use crate::config::ReadinessConfig;
 use crate::kafka::client::BrokerState;
 
-/// Shared health facts, updated by the service loop and the broker probe.
+/// Shared health facts, updated by the service loop, the topic checker and the broker
+/// probe.
 #[derive(Debug)]
 pub struct Health {
     brokers: Arc<BrokerState>,
+    limits: ReadinessConfig,
     store_error: Mutex<Option<String>>,
     consuming: AtomicBool,
     stopping: AtomicBool,
+    /// One sentence per written topic that is missing or could not be checked.
+    topic_problems: Mutex<Vec<String>>,
+    /// Topic → (first failure of the current run of failed deliveries, last reason).
+    failing_deliveries: Mutex<BTreeMap<String, (Instant, String)>>,
+}
+
+/// How fresh the published lists are, read from the metrics when readiness is asked.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Freshness {
+    /// Messages waiting in the input topic, all partitions (`None` before the first
+    /// watermark reading).
+    pub consumer_lag: Option<i64>,
+    /// Age in seconds of the oldest change not yet in a published list.
+    pub staleness_seconds: f64,
 }
 
 /// One readiness check.
@@ -28,6 +50,16 @@ pub struct Check {
     pub detail: String,
 }
 
+impl Check {
+    fn new(name: &'static str, problem: Option<String>) -> Check {
+        Check {
+            name,
+            ok: problem.is_none(),
+            detail: problem.unwrap_or_default(),
+        }
+    }
+}
+
 /// The `/readyz` answer.
 #[derive(Debug, Clone, Serialize, PartialEq, Eq)]
 pub struct Readiness {
@@ -38,13 +70,16 @@ pub struct Readiness {
 }
 
 impl Health {
-    /// Health tied to the shared broker state.
-    pub fn new(brokers: Arc<BrokerState>) -> Health {
+    /// Health tied to the shared broker state, judged by `limits`.
+    pub fn new(brokers: Arc<BrokerState>, limits: ReadinessConfig) -> Health {
         Health {
             brokers,
+            limits,
             store_error: Mutex::new(None),
             consuming: AtomicBool::new(false),
             stopping: AtomicBool::new(false),
+            topic_problems: Mutex::new(vec!["the written topics have not been checked yet".to_string()]),
+            failing_deliveries: Mutex::new(BTreeMap::new()),
         }
     }
 
@@ -63,35 +98,172 @@ impl Health {
         self.stopping.store(true, Ordering::Relaxed);
     }
 
-    /// The current checks.
-    pub fn readiness(&self) -> Readiness {
-        let store_error = self.store_error.lock().expect("health lock").clone();
-        let check = |name, ok: bool, detail: &str| Check {
-            name,
-            ok,
-            detail: if ok { String::new() } else { detail.to_string() },
-        };
+    /// Replaces the written-topic problems with the latest check's (empty: all fine).
+    pub fn set_topic_problems(&self, problems: Vec<String>) {
+        *self.topic_problems.lock().expect("health lock") = problems;
+    }
+
+    /// Records the outcome of one delivery attempt to `topic`: a failure starts (or
+    /// continues) the topic's run of failures, a success ends it.
+    pub fn note_delivery(&self, topic: &str, failure: Option<&str>) {
+        let mut failing = self.failing_deliveries.lock().expect("health lock");
+        match failure {
+            None => {
+                failing.remove(topic);
+            }
+            Some(reason) => {
+                let entry = failing
+                    .entry(topic.to_string())
+                    .or_insert_with(|| (Instant::now(), String::new()));
+                entry.1 = reason.to_string();
+            }
+        }
+    }
+
+    /// The current checks, with freshness judged against the configured limits.
+    pub fn readiness(&self, freshness: &Freshness) -> Readiness {
         let checks = vec![
-            Check {
-                name: "store",
-                ok: store_error.is_none(),
-                detail: store_error.unwrap_or_default(),
-            },
-            check(
+            Check::new("store", self.store_error.lock().expect("health lock").clone()),
+            Check::new(
                 "broker",
-                self.brokers.reachable(),
-                "no broker answered recently; librdkafka keeps retrying",
+                (!self.brokers.reachable())
+                    .then(|| "no broker answered recently; librdkafka keeps retrying".to_string()),
             ),
-            check(
+            Check::new(
                 "consuming",
-                self.consuming.load(Ordering::Relaxed),
-                "no partitions of the input topic are assigned yet",
+                (!self.consuming.load(Ordering::Relaxed))
+                    .then(|| "no partitions of the input topic are assigned yet".to_string()),
             ),
-            check("running", !self.stopping.load(Ordering::Relaxed), "shutting down"),
+            Check::new("topics", self.topics_problem()),
+            Check::new("deliveries", self.delivery_problem(Instant::now())),
+            Check::new("lag", self.lag_problem(freshness)),
+            Check::new("staleness", self.staleness_problem(freshness)),
+            Check::new(
+                "running",
+                self.stopping
+                    .load(Ordering::Relaxed)
+                    .then(|| "shutting down".to_string()),
+            ),
         ];
         Readiness {
             ready: checks.iter().all(|c| c.ok),
             checks,
         }
+    }
+
+    fn topics_problem(&self) -> Option<String> {
+        let problems = self.topic_problems.lock().expect("health lock");
+        (!problems.is_empty()).then(|| problems.join("; "))
+    }
+
+    fn delivery_problem(&self, now: Instant) -> Option<String> {
+        let failing = self.failing_deliveries.lock().expect("health lock");
+        let limit = self.limits.max_delivery_failure;
+        let stuck: Vec<String> = failing
+            .iter()
+            .filter(|(_, (since, _))| now.duration_since(*since) >= limit)
+            .map(|(topic, (since, reason))| {
+                format!(
+                    "deliveries to topic {topic} have failed for {}s: {reason}",
+                    now.duration_since(*since).as_secs()
+                )
+            })
+            .collect();
+        (!stuck.is_empty()).then(|| stuck.join("; "))
+    }
+
+    fn lag_problem(&self, f: &Freshness) -> Option<String> {
+        let limit = self.limits.max_consumer_lag;
+        match f.consumer_lag {
+            Some(lag) if limit > 0 && lag > limit as i64 => Some(format!(
+                "{lag} messages wait in the input topic, more than readiness.max_consumer_lag = {limit}"
+            )),
+            _ => None,
+        }
+    }
+
+    fn staleness_problem(&self, f: &Freshness) -> Option<String> {
+        let limit = self.limits.max_staleness;
+        (limit > Duration::ZERO && f.staleness_seconds > limit.as_secs_f64()).then(|| {
+            format!(
+                "the oldest unpublished change is {:.0}s old, more than readiness.max_staleness = {}s",
+                f.staleness_seconds,
+                limit.as_secs()
+            )
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn health(limits: ReadinessConfig) -> Health {
+        let h = Health::new(Arc::new(BrokerState::default()), limits);
+        h.set_consuming(true);
+        h.set_topic_problems(Vec::new());
+        h
+    }
+
+    fn fresh() -> Freshness {
+        Freshness {
+            consumer_lag: Some(0),
+            staleness_seconds: 0.0,
+        }
+    }
+
+    fn failing(r: &Readiness) -> Vec<&str> {
+        r.checks.iter().filter(|c| !c.ok).map(|c| c.name).collect()
+    }
+
+    #[test]
+    fn a_healthy_service_is_ready_and_topics_start_unchecked() {
+        assert!(health(ReadinessConfig::default()).readiness(&fresh()).ready);
+        let new = Health::new(Arc::new(BrokerState::default()), ReadinessConfig::default());
+        new.set_consuming(true);
+        assert_eq!(failing(&new.readiness(&fresh())), ["topics"]);
+    }
+
+    #[test]
+    fn lag_and_staleness_limits_name_the_setting() {
+        let h = health(ReadinessConfig::default());
+        let r = h.readiness(&Freshness {
+            consumer_lag: Some(100_001),
+            staleness_seconds: 121.0,
+        });
+        assert_eq!(failing(&r), ["lag", "staleness"]);
+        assert!(r.checks[5].detail.contains("readiness.max_consumer_lag = 100000"));
+        assert!(r.checks[6].detail.contains("readiness.max_staleness = 120s"));
+        let off = health(ReadinessConfig {
+            max_consumer_lag: 0,
+            max_staleness: Duration::ZERO,
+            ..ReadinessConfig::default()
+        });
+        assert!(
+            off.readiness(&Freshness {
+                consumer_lag: Some(i64::MAX),
+                staleness_seconds: 1e9,
+            })
+            .ready
+        );
+    }
+
+    #[test]
+    fn deliveries_fail_readiness_only_after_the_limit_and_recover_on_success() {
+        let h = health(ReadinessConfig {
+            max_delivery_failure: Duration::from_secs(30),
+            ..ReadinessConfig::default()
+        });
+        h.note_delivery("dead", Some("Broker: Unknown topic or partition"));
+        assert!(h.readiness(&fresh()).ready, "a fresh failure is retried first");
+        let later = Instant::now() + Duration::from_secs(31);
+        let problem = h.delivery_problem(later).unwrap();
+        assert!(
+            problem.starts_with("deliveries to topic dead have failed for 3")
+                && problem.contains("Unknown topic"),
+            "{problem}"
+        );
+        h.note_delivery("dead", None);
+        assert_eq!(h.delivery_problem(later), None);
     }
 }

@@ -13,6 +13,7 @@ use prometheus::{
 };
 
 use crate::decode::RejectReason;
+use crate::health::Freshness;
 use crate::signal::Signal;
 use crate::timefmt::now_nanos;
 
@@ -74,6 +75,9 @@ pub struct Metrics {
     pub last_publish: Gauge,
     staleness: Gauge,
     event_time_lag: Gauge,
+    batch_stalled: Gauge,
+    batch_stalled_since_ns: AtomicI64,
+    lag_total: AtomicI64,
     oldest_dirty_ns: AtomicI64,
     published_watermark_ns: AtomicI64,
     positions: Mutex<BTreeMap<i32, i64>>,
@@ -83,6 +87,15 @@ pub struct Metrics {
 const CENTER_GAP_BUCKETS: [f64; 9] = [0.001, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0];
 /// Buckets for drift and overlap ratios in [0, 1].
 const RATIO_BUCKETS: [f64; 10] = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.7, 0.9, 1.0];
+
+/// Seconds from an instant kept as an atomic to `now`; 0 when it is unset.
+fn seconds_since(at_ns: i64, now_ns: i64) -> f64 {
+    if at_ns == UNSET {
+        0.0
+    } else {
+        (now_ns - at_ns).max(0) as f64 / 1e9
+    }
+}
 
 fn counter_vec(name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
     IntCounterVec::new(Opts::new(name, help), labels).expect("valid metric")
@@ -221,6 +234,13 @@ impl Metrics {
                 "Now minus the newest event time reflected in the published lists.",
             )
             .expect("valid"),
+            batch_stalled: Gauge::new(
+                "simtide_batch_stalled_seconds",
+                "How long the batch in hand has been failing to commit (dead letters not acknowledged, or the store write failing); 0 when none is.",
+            )
+            .expect("valid"),
+            batch_stalled_since_ns: AtomicI64::new(UNSET),
+            lag_total: AtomicI64::new(UNSET),
             oldest_dirty_ns: AtomicI64::new(UNSET),
             published_watermark_ns: AtomicI64::new(UNSET),
             positions: Mutex::new(BTreeMap::new()),
@@ -261,6 +281,7 @@ impl Metrics {
             Box::new(m.last_publish.clone()),
             Box::new(m.staleness.clone()),
             Box::new(m.event_time_lag.clone()),
+            Box::new(m.batch_stalled.clone()),
         ];
         for c in collectors {
             m.registry.register(c).expect("metric names are unique");
@@ -299,11 +320,38 @@ impl Metrics {
     /// Sets each partition's lag from its high watermark and the stored position.
     pub fn set_lag_from_watermarks(&self, high: &BTreeMap<i32, i64>) {
         let positions = self.positions.lock().expect("positions lock");
+        let mut total = 0;
         for (&p, &h) in high {
             let at = positions.get(&p).copied().unwrap_or(0);
-            self.consumer_lag
-                .with_label_values(&[&p.to_string()])
-                .set((h - at).max(0));
+            let lag = (h - at).max(0);
+            total += lag;
+            self.consumer_lag.with_label_values(&[&p.to_string()]).set(lag);
+        }
+        self.lag_total.store(total, Ordering::Relaxed);
+    }
+
+    /// Records that the batch in hand failed to commit; the first failure of a run of
+    /// failures starts the stall clock.
+    pub fn note_batch_stalled(&self) {
+        let _ = self.batch_stalled_since_ns.compare_exchange(
+            UNSET,
+            now_nanos(),
+            Ordering::Relaxed,
+            Ordering::Relaxed,
+        );
+    }
+
+    /// Records that the batch in hand was committed (or dropped): nothing is stalled.
+    pub fn clear_batch_stalled(&self) {
+        self.batch_stalled_since_ns.store(UNSET, Ordering::Relaxed);
+    }
+
+    /// Consumer lag and staleness now, for readiness.
+    pub fn freshness(&self) -> Freshness {
+        let lag = self.lag_total.load(Ordering::Relaxed);
+        Freshness {
+            consumer_lag: (lag != UNSET).then_some(lag),
+            staleness_seconds: seconds_since(self.oldest_dirty_ns.load(Ordering::Relaxed), now_nanos()),
         }
     }
 
@@ -324,12 +372,12 @@ impl Metrics {
     /// The text exposition of every metric, with the time-dependent gauges brought to now.
     pub fn render(&self) -> String {
         let now = now_nanos();
-        let oldest = self.oldest_dirty_ns.load(Ordering::Relaxed);
-        self.staleness.set(if oldest == UNSET {
-            0.0
-        } else {
-            (now - oldest).max(0) as f64 / 1e9
-        });
+        self.staleness
+            .set(seconds_since(self.oldest_dirty_ns.load(Ordering::Relaxed), now));
+        self.batch_stalled.set(seconds_since(
+            self.batch_stalled_since_ns.load(Ordering::Relaxed),
+            now,
+        ));
         let watermark = self.published_watermark_ns.load(Ordering::Relaxed);
         if watermark != UNSET {
             self.event_time_lag.set((now - watermark) as f64 / 1e9);

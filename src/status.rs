@@ -141,6 +141,18 @@ pub fn render(
         after.sum("simtide_event_time_lag_seconds", ""),
         (now - since_publish).max(0.0)
     );
+    let stalled = after.sum("simtide_batch_stalled_seconds", "");
+    if stalled > 0.0 {
+        let _ = writeln!(
+            out,
+            "  {}",
+            paint(
+                &format!("batch stalled for {stalled:.0} s: it cannot be committed (see the failing checks); consumption waits"),
+                false,
+                colour
+            )
+        );
+    }
     let lags: Vec<String> = after
         .series("simtide_consumer_lag_messages")
         .map(|(labels, v)| format!("{} {v:.0}", labels.replace("partition=", "p").replace('"', "")))
@@ -260,7 +272,7 @@ mod tests {
             "# HELP x\nsimtide_events_total{kind=\"rating\",outcome=\"applied\"} 100\nsimtide_dead_letters_total{reason=\"bad_json\"} 1\nsimtide_consumer_lag_messages{partition=\"0\"} 10\n",
         );
         let after = Scrape::parse(
-            "simtide_events_total{kind=\"rating\",outcome=\"applied\"} 300\nsimtide_dead_letters_total{reason=\"bad_json\"} 4\nsimtide_consumer_lag_messages{partition=\"0\"} 30\nsimtide_staleness_seconds 2.5\n",
+            "simtide_events_total{kind=\"rating\",outcome=\"applied\"} 300\nsimtide_dead_letters_total{reason=\"bad_json\"} 4\nsimtide_consumer_lag_messages{partition=\"0\"} 30\nsimtide_staleness_seconds 2.5\nsimtide_batch_stalled_seconds 42\n",
         );
         let readiness: serde_json::Value = serde_json::from_str(
             r#"{"ready":false,"checks":[{"name":"broker","ok":false,"detail":"no broker answered"}]}"#,
@@ -283,6 +295,7 @@ mod tests {
         );
         assert!(screen.contains("p0 30") && screen.contains("+10/s"), "{screen}");
         assert!(screen.contains("staleness 2.5 s"), "{screen}");
+        assert!(screen.contains("batch stalled for 42 s"), "{screen}");
         assert!(!screen.contains('\x1b'), "no colour when not asked");
     }
 }

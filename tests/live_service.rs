@@ -46,10 +46,15 @@ struct Scenario {
 }
 
 impl Scenario {
-    /// The first `rows` ratings by time (all of them with `common::MOVIELENS_RATINGS`).
+    /// The first `rows` ratings by time (all of them with `common::MOVIELENS_RATINGS`),
+    /// on a fresh broker holding the four topics.
     fn new(rows: usize) -> Scenario {
+        Scenario::on(broker_with_topics(), rows)
+    }
+
+    /// The first `rows` ratings by time, on `broker` as it is.
+    fn on(broker: Broker, rows: usize) -> Scenario {
         let work = tempfile::tempdir().unwrap();
-        let broker = broker_with_topics();
         let slice = work.path().join("slice.csv");
         common::movielens_slice(rows, &slice);
         let store = work.path().join("store");
@@ -194,6 +199,112 @@ fn movielens_slice_through_a_real_broker_matches_scipy_exactly() {
     );
     sc.assert_exact();
     assert!(sc.counters().1.is_empty(), "no rejects expected");
+}
+
+/// Two records that fail validation, for the dead-letter tests: (reason, message).
+const TWO_FAULTS: [(&str, &str); 2] = [
+    ("bad_json", r#"{"kind":"rating","user":"u1""#),
+    (
+        "missing_field",
+        r#"{"kind":"rating","user":"u1","value":3,"at":880000000}"#,
+    ),
+];
+
+/// The slice with the two faults in its middle.
+fn with_two_faults(sc: &Scenario) -> Vec<(String, String, Option<i64>)> {
+    let mut stream = sc.unstamped();
+    let middle = stream.len() / 2;
+    for (_, fault) in TWO_FAULTS {
+        stream.insert(middle, ("u1".to_string(), fault.to_string(), None));
+    }
+    stream
+}
+
+/// The usual order under docker-compose or Kubernetes: the service starts a few seconds
+/// before its broker, and finds none of its topics. It must create the written topics
+/// once the broker answers, drain the input and publish the exact result; until then it
+/// reports not ready.
+#[test]
+fn a_service_started_before_its_broker_creates_its_topics_and_drains_the_input() {
+    let mut sc = Scenario::on(Broker::reserved(), 10_000);
+    let (config, port) = sc.config(&LiveSettings::default());
+    let text = std::fs::read_to_string(&config)
+        .unwrap()
+        .replace("create_topics = false", "create_topics = true");
+    std::fs::write(&config, text).unwrap();
+    let service = Service::start(&config, port, &[]);
+    std::thread::sleep(Duration::from_secs(5));
+    let (status, body) = service
+        .get("/readyz")
+        .expect("the service answers without a broker");
+    assert_eq!(status, 503, "{body}");
+    assert!(body.contains(r#""name":"topics","ok":false"#), "{body}");
+
+    sc.broker.resume();
+    sc.broker.create_topic(INPUT, 3, false);
+    sc.produce(&with_two_faults(&sc));
+    let report = sc.finish(service);
+    eprintln!("{report}");
+    let letters = read_all(&sc.brokers(), DEAD_LETTER);
+    let reasons: Vec<&str> = letters
+        .iter()
+        .map(|l| l.headers["simtide-reject-reason"].as_str())
+        .collect();
+    assert_eq!(reasons.len(), 2, "{reasons:?}");
+    for (reason, _) in TWO_FAULTS {
+        assert!(reasons.contains(&reason), "{reasons:?}");
+    }
+    sc.assert_exact();
+}
+
+/// While the dead-letter topic cannot be written (missing, creation off), the batch that
+/// holds a refused record cannot commit: readiness names the topic, the stalled-batch
+/// metric counts up, and nothing is lost. Creating the topic by hand unblocks it.
+#[test]
+fn readiness_names_a_dead_letter_topic_that_cannot_be_written() {
+    let broker = Broker::start();
+    broker.create_topic(INPUT, 3, false);
+    broker.create_topic(OUTPUT, 1, true);
+    broker.create_topic(PURCHASE_OUTPUT, 1, true);
+    let sc = Scenario::on(broker, 10_000);
+    let (config, port) = sc.config(&LiveSettings::default());
+    let text = std::fs::read_to_string(&config).unwrap() + "[readiness]\nmax_delivery_failure = \"2s\"\n";
+    std::fs::write(&config, text).unwrap();
+    sc.produce(&with_two_faults(&sc));
+    let service = Service::start(&config, port, &[]);
+    wait_for(
+        "readiness to name the dead-letter topic in both checks",
+        Duration::from_secs(120),
+        || {
+            service.get("/readyz").is_some_and(|(s, b)| {
+                s == 503
+                    && b.contains(r#""name":"topics","ok":false"#)
+                    && b.contains(r#""name":"deliveries","ok":false"#)
+                    && b.matches(DEAD_LETTER).count() >= 2
+            })
+        },
+    );
+    wait_for(
+        "the stalled-batch gauge to count",
+        Duration::from_secs(30),
+        || {
+            service
+                .get("/metrics")
+                .and_then(|(_, m)| common::live::sample(&m, "simtide_batch_stalled_seconds"))
+                .is_some_and(|v| v >= 2.0)
+        },
+    );
+    assert!(
+        !caught_up(&sc.brokers(), 3),
+        "the stalled batch must not advance the positions"
+    );
+    sc.broker.create_topic(DEAD_LETTER, 1, false);
+    wait_for("ready once the topic exists", CATCH_UP, || {
+        service.get("/readyz").is_some_and(|(s, _)| s == 200)
+    });
+    sc.finish(service);
+    assert_eq!(read_all(&sc.brokers(), DEAD_LETTER).len(), 2);
+    sc.assert_exact();
 }
 
 #[test]

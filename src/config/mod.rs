@@ -16,7 +16,8 @@ use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 
 pub use service::{
-    HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, StartPosition, StoreConfig,
+    HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, ReadinessConfig, StartPosition,
+    StoreConfig,
 };
 
 /// Prefix of the environment variables that override configuration keys.
@@ -44,6 +45,8 @@ pub struct Config {
     pub publish: PublishConfig,
     /// The HTTP listener.
     pub http: HttpConfig,
+    /// What `/readyz` requires.
+    pub readiness: ReadinessConfig,
     /// Log line format.
     pub log: LogConfig,
 }
@@ -318,10 +321,18 @@ impl Config {
         if self.live.batch_events == 0 {
             bail!("live.batch_events must be at least 1");
         }
+        if self.http.max_concurrent_lookups == 0 {
+            bail!("http.max_concurrent_lookups must be at least 1");
+        }
         for (key, d) in [
             ("publish.interval", self.publish.interval),
             ("live.shutdown_timeout", self.live.shutdown_timeout),
             ("live.delivery_timeout", self.live.delivery_timeout),
+            ("http.request_timeout", self.http.request_timeout),
+            (
+                "readiness.max_delivery_failure",
+                self.readiness.max_delivery_failure,
+            ),
         ] {
             if d.is_zero() {
                 bail!("{key} must be longer than 0");

@@ -138,6 +138,12 @@ pub struct HttpConfig {
     /// Bearer token for the endpoints that change state (republish, compact); empty
     /// turns them off. Best set through SIMTIDE_HTTP__ADMIN_TOKEN.
     pub admin_token: String,
+    /// Store lookups served at once; further requests wait for a place until their
+    /// timeout. Bounds the memory and threads lookups can take from the service.
+    pub max_concurrent_lookups: usize,
+    /// Longest time a request may take, waiting for a place included.
+    #[serde(with = "duration_text")]
+    pub request_timeout: Duration,
 }
 
 impl Default for HttpConfig {
@@ -145,6 +151,36 @@ impl Default for HttpConfig {
         HttpConfig {
             listen: "127.0.0.1:9464".to_string(),
             admin_token: String::new(),
+            max_concurrent_lookups: 16,
+            request_timeout: Duration::from_secs(2),
+        }
+    }
+}
+
+/// `[readiness]`: when `/readyz` says the service cannot be relied on. Beyond the broker,
+/// the store and the assignment, readiness covers what the platform team depends on:
+/// fresh lists and working outputs.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+#[serde(default, deny_unknown_fields)]
+pub struct ReadinessConfig {
+    /// Not ready while more messages than this wait in the input topic (all partitions);
+    /// 0 turns the check off.
+    pub max_consumer_lag: u64,
+    /// Not ready while the oldest change not yet in a published list is older than this;
+    /// "0s" turns the check off.
+    #[serde(with = "duration_text")]
+    pub max_staleness: Duration,
+    /// Not ready once deliveries to a written topic have kept failing for this long.
+    #[serde(with = "duration_text")]
+    pub max_delivery_failure: Duration,
+}
+
+impl Default for ReadinessConfig {
+    fn default() -> Self {
+        ReadinessConfig {
+            max_consumer_lag: 100_000,
+            max_staleness: Duration::from_secs(120),
+            max_delivery_failure: Duration::from_secs(30),
         }
     }
 }

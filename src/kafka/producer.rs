@@ -10,7 +10,7 @@ use std::time::{Duration, Instant};
 use anyhow::Result;
 use rdkafka::error::{KafkaError, RDKafkaErrorCode};
 use rdkafka::message::{DeliveryResult, Header, OwnedHeaders};
-use rdkafka::producer::{BaseRecord, Producer, ProducerContext, ThreadedProducer};
+use rdkafka::producer::{BaseRecord, Producer, ProducerContext, PurgeConfig, ThreadedProducer};
 use rdkafka::ClientContext;
 
 use super::client::{base_config, describe_error, BusContext};
@@ -131,8 +131,9 @@ impl RecordProducer {
     }
 
     /// Produces every record and waits up to `timeout` for the broker's answers. Records
-    /// not acknowledged by then are reported failed (they may still arrive later; every
-    /// record simtide produces is safe to see twice).
+    /// not acknowledged by then are reported failed; those not yet sent are withdrawn, the
+    /// ones already in flight may still arrive (every record simtide produces is safe to
+    /// see twice).
     pub fn deliver(&self, records: &[OutRecord], timeout: Duration) -> DeliveryReport {
         let _one_call_at_a_time = self.serial.lock().expect("producer call lock");
         let generation = self.acks.generation.fetch_add(1, Ordering::AcqRel) + 1;
@@ -173,8 +174,13 @@ impl RecordProducer {
             }
         }
         let left = deadline.saturating_duration_since(Instant::now());
-        // A flush that times out leaves the unanswered records to be reported below.
-        let _ = self.producer.flush(left);
+        // A flush that times out leaves the unanswered records to be reported below. The
+        // ones librdkafka still holds unsent (a missing topic keeps them queued) are
+        // purged: the caller sends them again, and a queued copy delivered later as well
+        // would make a duplicate of every retry.
+        if self.producer.flush(left).is_err() {
+            self.producer.purge(PurgeConfig::default().queue());
+        }
         let state = self.acks.state.lock().expect("ack lock");
         for (index, answer) in state.answered.iter().enumerate() {
             if not_sent[index] {

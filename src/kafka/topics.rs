@@ -1,7 +1,7 @@
-//! The topics the service writes: created at start-up when missing (the neighbor topics
-//! compacted, so the serving layer can rebuild every list from the topic alone), and
-//! checked for compaction when they already exist. A broker that refuses either gets a
-//! clear warning, not a stopped service.
+//! The topics the service writes: created when missing (the list topics compacted, so the
+//! serving layer can rebuild every list from the topic alone), and checked for compaction
+//! when they already exist. The check reports what it found; the caller decides what is a
+//! readiness problem and logs the rest.
 
 use std::time::Duration;
 
@@ -25,11 +25,34 @@ fn written_topics(kafka: &KafkaConfig) -> [(&str, bool); 3] {
     ]
 }
 
-/// Creates missing written topics (when `kafka.create_topics`) and checks compaction.
-pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<()> {
-    let admin: AdminClient<BusContext> = base_config(kafka)
+/// What one check of the topics found, one sentence per finding, each with its topic.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct TopicCheck {
+    /// Written topics that are missing and were not created: nothing can be delivered
+    /// to them.
+    pub missing: Vec<(String, String)>,
+    /// Findings that do not stop delivery (the input topic not there yet).
+    pub warnings: Vec<(String, String)>,
+    /// Written topics this check created.
+    pub created: Vec<String>,
+}
+
+fn admin_client(kafka: &KafkaConfig, bus: &BusContext) -> Result<AdminClient<BusContext>> {
+    base_config(kafka)
         .create_with_context(bus.clone())
-        .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka admin client", &e))?;
+        .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka admin client", &e))
+}
+
+fn admin_options() -> AdminOptions {
+    AdminOptions::new()
+        .operation_timeout(Some(ADMIN_TIMEOUT))
+        .request_timeout(Some(ADMIN_TIMEOUT))
+}
+
+/// Creates missing written topics (when `kafka.create_topics`) and reports the ones still
+/// missing. An error means the topics could not be listed at all (no broker answered).
+pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<TopicCheck> {
+    let admin = admin_client(kafka, bus)?;
     let probe: BaseConsumer<BusContext> = base_config(kafka)
         .create_with_context(bus.clone())
         .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka metadata client", &e))?;
@@ -45,28 +68,31 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<()> 
     .await?
     .map_err(|e| describe_error(bus.scrubber(), "cannot read topic metadata", &e))?;
 
-    let warn = |text: String| tracing::warn!("{text}");
+    let mut found = TopicCheck::default();
     if !existing.contains(&kafka_owned.input_topic) {
-        warn(format!(
-            "input topic {} does not exist yet; the service waits for it",
-            kafka_owned.input_topic
+        found.warnings.push((
+            kafka_owned.input_topic.clone(),
+            format!(
+                "input topic {} does not exist yet; the service waits for it",
+                kafka_owned.input_topic
+            ),
         ));
     }
-    let options = AdminOptions::new().operation_timeout(Some(ADMIN_TIMEOUT));
-    let mut created = Vec::new();
+    let options = admin_options();
     for (topic, compacted) in written_topics(&kafka_owned) {
         if existing.iter().any(|t| t == topic) {
             continue;
         }
+        let missing = |why: String| (topic.to_string(), why);
         if !kafka_owned.create_topics {
-            warn(format!(
+            found.missing.push(missing(format!(
                 "topic {topic} does not exist and kafka.create_topics is off: create it{}",
                 if compacted {
                     " with cleanup.policy=compact"
                 } else {
                     ""
                 }
-            ));
+            )));
             continue;
         }
         let mut new = NewTopic::new(
@@ -81,19 +107,36 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<()> 
         match outcome.map(|mut results| results.pop()) {
             Ok(Some(Ok(_))) => {
                 tracing::info!(topic, compacted, "created topic");
-                created.push(topic.to_string());
+                found.created.push(topic.to_string());
             }
             Ok(Some(Err((_, RDKafkaErrorCode::TopicAlreadyExists)))) => {}
-            Ok(Some(Err((_, code)))) => warn(format!(
-                "the broker refused to create topic {topic} ({code}); create it{} or grant the right",
+            Ok(Some(Err((_, code)))) => found.missing.push(missing(format!(
+                "topic {topic} is missing and the broker refused to create it ({code}); create it{} or grant the right",
                 if compacted { " compacted" } else { "" }
-            )),
-            Ok(None) => warn(format!("the broker gave no answer creating topic {topic}")),
-            Err(e) => warn(format!("cannot create topic {topic}: {e}")),
+            ))),
+            Ok(None) => found.missing.push(missing(format!(
+                "topic {topic} is missing and the broker gave no answer creating it"
+            ))),
+            Err(e) => found
+                .missing
+                .push(missing(format!("topic {topic} is missing and cannot be created: {e}"))),
         }
     }
-    for (topic, compacted) in written_topics(&kafka_owned) {
-        if !compacted || created.iter().any(|t| t == topic) {
+    Ok(found)
+}
+
+/// Warnings for the existing list topics (other than `skip`) that are not compacted, or
+/// whose setting cannot be read: a serving layer could not rebuild every list from them.
+pub async fn compaction_warnings(
+    kafka: &KafkaConfig,
+    bus: &BusContext,
+    skip: &[String],
+) -> Result<Vec<(String, String)>> {
+    let admin = admin_client(kafka, bus)?;
+    let options = admin_options();
+    let mut warnings = Vec::new();
+    for (topic, compacted) in written_topics(kafka) {
+        if !compacted || skip.iter().any(|t| t == topic) {
             continue;
         }
         let described = admin
@@ -106,11 +149,17 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<()> 
             .and_then(|r| r.get("cleanup.policy").and_then(|e| e.value.clone()));
         match policy {
             Some(p) if p.contains("compact") => {}
-            Some(p) => warn(format!(
-                "topic {topic} has cleanup.policy={p}: readers cannot rebuild every list from it; set cleanup.policy=compact"
+            Some(p) => warnings.push((
+                topic.to_string(),
+                format!(
+                    "topic {topic} has cleanup.policy={p}: readers cannot rebuild every list from it; set cleanup.policy=compact"
+                ),
             )),
-            None => warn(format!("cannot tell whether topic {topic} is compacted")),
+            None => warnings.push((
+                topic.to_string(),
+                format!("cannot tell whether topic {topic} is compacted"),
+            )),
         }
     }
-    Ok(())
+    Ok(warnings)
 }

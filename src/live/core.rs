@@ -15,7 +15,7 @@ use crate::config::Config;
 use crate::decode::Limits;
 use crate::engine::EngineSettings;
 use crate::health::Health;
-use crate::kafka::producer::{OutRecord, RecordProducer};
+use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::metrics::Metrics;
 use crate::observe::{DeliveredList, Observation};
 use crate::pipeline::{apply_and_commit, event_counter_key};
@@ -190,7 +190,7 @@ impl Core {
             .collect();
         let mut delay = Duration::from_millis(200);
         while !letters.is_empty() {
-            let report = self.producer.deliver(&letters, self.config.live.delivery_timeout);
+            let report = self.deliver(&letters);
             if report.all_delivered() {
                 break;
             }
@@ -200,6 +200,7 @@ impl Core {
                 first_reason: &report.failed[0].1,
             }
             .emit(&self.metrics);
+            self.metrics.note_batch_stalled();
             let failed: Vec<usize> = report.failed.iter().map(|(i, _)| *i).collect();
             letters = failed.into_iter().map(|i| letters[i].clone()).collect();
             if !back_off(&mut delay, deadline, &self.stopping) {
@@ -232,6 +233,7 @@ impl Core {
                 Err(e) => {
                     let text = format!("store write failed: {e:#}");
                     Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
+                    self.metrics.note_batch_stalled();
                     self.health.set_store_error(Some(text));
                     if !back_off(&mut delay, deadline, &self.stopping) {
                         return self.abandon();
@@ -240,6 +242,7 @@ impl Core {
             }
         };
         self.health.set_store_error(None);
+        self.metrics.clear_batch_stalled();
         let batch = std::mem::take(&mut self.pending);
         self.counters.messages += batch.messages as u64;
         self.counters.batches += 1;
@@ -275,7 +278,22 @@ impl Core {
         Flushed::Committed(offsets)
     }
 
+    /// Produces `records` and tells readiness, per topic, whether the broker took them.
+    fn deliver(&self, records: &[OutRecord]) -> DeliveryReport {
+        let report = self.producer.deliver(records, self.config.live.delivery_timeout);
+        let mut outcome: BTreeMap<&str, Option<&str>> =
+            records.iter().map(|r| (r.topic.as_str(), None)).collect();
+        for (i, reason) in &report.failed {
+            outcome.insert(records[*i].topic.as_str(), Some(reason.as_str()));
+        }
+        for (topic, failure) in outcome {
+            self.health.note_delivery(topic, failure);
+        }
+        report
+    }
+
     fn abandon(&mut self) -> Flushed {
+        self.metrics.clear_batch_stalled();
         tracing::warn!(
             messages = self.pending.messages,
             "batch dropped before commit; it will be consumed again from the stored positions"
@@ -327,13 +345,13 @@ impl Core {
                 .iter()
                 .map(|(signal, item, list)| self.list_record(*signal, *item, list))
                 .collect();
-            let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
+            let report = self.deliver(&records);
             if !report.all_delivered() {
-                tracing::warn!(
-                    undelivered = report.failed.len(),
-                    first_reason = %report.failed[0].1,
-                    "republication incomplete; retrying later"
-                );
+                Observation::RepublishIncomplete {
+                    undelivered: report.failed.len(),
+                    first_reason: &report.failed[0].1,
+                }
+                .emit(&self.metrics);
                 return Ok(false);
             }
             self.counters.lists_delivered += records.len() as u64;
@@ -372,7 +390,7 @@ impl Core {
                     )
                 })
                 .collect();
-            let report = self.producer.deliver(&records, self.config.live.delivery_timeout);
+            let report = self.deliver(&records);
             let mut failed = vec![false; changed.len()];
             for (k, _) in &report.failed {
                 failed[*k] = true;
@@ -442,7 +460,10 @@ impl Core {
         let m = &self.metrics;
         match self.store.oldest_dirty_since() {
             Ok(oldest) => m.set_oldest_dirty(oldest),
-            Err(e) => tracing::warn!(error = %e, "cannot read pending changes"),
+            Err(e) => Observation::PendingChangesUnreadable {
+                error: &format!("{e:#}"),
+            }
+            .emit(m),
         }
         if let Ok(stats) = self.store.stats() {
             m.store_bytes.set(stats.sst_bytes as i64);

@@ -19,7 +19,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::Result;
 use rdkafka::consumer::{CommitMode, Consumer};
-use tokio::sync::watch;
+use tokio::sync::{watch, Semaphore};
 
 use self::core::{Core, Flushed, RunCounters};
 use crate::config::secrets::Scrubber;
@@ -28,8 +28,10 @@ use crate::health::Health;
 use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
 use crate::kafka::producer::RecordProducer;
-use crate::kafka::topics::ensure_topics;
+use crate::kafka::topics::{compaction_warnings, ensure_topics};
+use crate::lookup::LookupStore;
 use crate::metrics::Metrics;
+use crate::observe::Observation;
 use crate::score::ListSettings;
 use crate::store::Store;
 use handover::StartRequest;
@@ -133,6 +135,72 @@ fn spawn_broker_probe(
     Ok(())
 }
 
+/// First wait between two topic checks that found a problem; doubled up to
+/// [`TOPIC_CHECK_MAX_WAIT`].
+const TOPIC_CHECK_FIRST_WAIT: Duration = Duration::from_secs(1);
+
+/// Longest wait between two topic checks that found a problem, and the period of the
+/// checks once every topic exists (a topic deleted under a running service is noticed).
+const TOPIC_CHECK_MAX_WAIT: Duration = Duration::from_secs(30);
+
+/// Checks (and where allowed creates) the written topics until all exist, then again every
+/// [`TOPIC_CHECK_MAX_WAIT`], keeping the readiness check current; once they all exist,
+/// checks once that the list topics are compacted. Ends at shutdown.
+async fn keep_topics_checked(
+    kafka: crate::config::KafkaConfig,
+    bus: BusContext,
+    health: Arc<Health>,
+    metrics: Arc<Metrics>,
+    mut stop: watch::Receiver<bool>,
+) {
+    let mut backoff = TOPIC_CHECK_FIRST_WAIT;
+    let mut compaction_checked = false;
+    while !*stop.borrow() {
+        let checked = tokio::time::timeout(TOPIC_CHECK_MAX_WAIT, ensure_topics(&kafka, &bus))
+            .await
+            .unwrap_or_else(|_| Err(anyhow::anyhow!("no answer within {TOPIC_CHECK_MAX_WAIT:?}")));
+        let (problems, created) = match checked {
+            Ok(found) => {
+                for (topic, problem) in found.missing.iter().chain(&found.warnings) {
+                    Observation::TopicProblem { topic, problem }.emit(&metrics);
+                }
+                let problems: Vec<String> = found.missing.into_iter().map(|(_, p)| p).collect();
+                (problems, found.created)
+            }
+            Err(e) => {
+                let problem = format!("the written topics could not be checked: {e:#}");
+                Observation::TopicProblem {
+                    topic: "*",
+                    problem: &problem,
+                }
+                .emit(&metrics);
+                (vec![problem], Vec::new())
+            }
+        };
+        let all_exist = problems.is_empty();
+        health.set_topic_problems(problems);
+        if all_exist && !compaction_checked {
+            compaction_checked = true;
+            if let Ok(warnings) = compaction_warnings(&kafka, &bus, &created).await {
+                for (topic, problem) in &warnings {
+                    Observation::TopicProblem { topic, problem }.emit(&metrics);
+                }
+            }
+        }
+        let pause = if all_exist {
+            backoff = TOPIC_CHECK_FIRST_WAIT;
+            TOPIC_CHECK_MAX_WAIT
+        } else {
+            let pause = backoff;
+            backoff = (backoff * 2).min(TOPIC_CHECK_MAX_WAIT);
+            pause
+        };
+        if let Ok(Err(_)) = tokio::time::timeout(pause, stop.changed()).await {
+            break; // the service is gone
+        }
+    }
+}
+
 /// Exits the process if shutdown overruns its bound. The store needs no cleanup: every
 /// committed batch is in its write-ahead log, and an uncommitted one is consumed again.
 fn arm_shutdown_watchdog(limit: Duration) {
@@ -156,7 +224,7 @@ pub async fn run_service(
     let scrubber = Arc::new(Scrubber::of(config));
     let brokers = Arc::new(BrokerState::default());
     let bus = BusContext::new(brokers.clone(), scrubber);
-    let health = Arc::new(Health::new(brokers));
+    let health = Arc::new(Health::new(brokers, config.readiness.clone()));
     let metrics = Arc::new(Metrics::new());
     let admin = Arc::new(AdminRequests::default());
     let store_dir = options
@@ -170,7 +238,10 @@ pub async fn run_service(
         HttpState {
             health: health.clone(),
             metrics: metrics.clone(),
-            store_dir: store_dir.clone(),
+            lookups: Arc::new(LookupStore::new(store_dir.clone())),
+            lookup_places: Arc::new(Semaphore::new(config.http.max_concurrent_lookups)),
+            request_timeout: config.http.request_timeout,
+            max_id_bytes: config.input.max_id_bytes,
             lists: ListSettings::from_config(config),
             admin_token: config.http.admin_token.clone(),
             admin: admin.clone(),
@@ -183,16 +254,15 @@ pub async fn run_service(
         let offsets = tokio::task::spawn_blocking(move || handover::resolve(&kafka, &b, &r)).await??;
         handover::write_start(&mut store, config, offsets)?;
     }
-    // Topic checks only warn; they run beside consumption so a slow or partial admin API
-    // never delays start-up (deliveries to a missing topic are retried each cycle).
-    {
-        let (kafka, bus) = (config.kafka.clone(), bus.clone());
-        tokio::spawn(async move {
-            if let Err(e) = ensure_topics(&kafka, &bus).await {
-                tracing::warn!(error = %e, "cannot check or create the topics; producing to them anyway");
-            }
-        });
-    }
+    // Topic checks run beside consumption, so a broker that is away or slow never delays
+    // start-up; until every written topic exists, readiness names the missing ones.
+    tokio::spawn(keep_topics_checked(
+        config.kafka.clone(),
+        bus.clone(),
+        health.clone(),
+        metrics.clone(),
+        stop.clone(),
+    ));
     spawn_broker_probe(config, &bus, metrics.clone(), stop.clone())?;
 
     // Retry loops (store writes, deliveries) give up once shutdown begins.
@@ -250,7 +320,10 @@ pub async fn run_service(
             }
             received = tokio::time::timeout_at(wake.into(), consumer.recv()) => match received {
                 Ok(Ok(message)) => core.lock().expect("core lock").take(consumer::copy_message(&message)),
-                Ok(Err(e)) => tracing::warn!(error = %bus.scrubber().scrub(&e.to_string()), "consume error"),
+                Ok(Err(e)) => Observation::ConsumeFailed {
+                    error: &bus.scrubber().scrub(&e.to_string()),
+                }
+                .emit(&metrics),
                 Err(_) => {}
             },
         }

@@ -43,13 +43,19 @@ fn tansu_binary() -> PathBuf {
 impl Broker {
     /// Starts a broker with empty storage and waits until it accepts connections.
     pub fn start() -> Broker {
-        let mut broker = Broker {
+        let mut broker = Broker::reserved();
+        broker.resume();
+        broker
+    }
+
+    /// A broker whose port and storage are chosen but which is not running yet: a
+    /// client pointed at it finds nothing until [`Broker::resume`].
+    pub fn reserved() -> Broker {
+        Broker {
             child: None,
             port: free_port(),
             data: tempfile::tempdir().expect("broker data dir"),
-        };
-        broker.resume();
-        broker
+        }
     }
 
     /// `host:port` for bootstrap.servers.
