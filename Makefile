@@ -26,3 +26,4 @@ bench: setup-test
 	$(CARGO) build --release --locked
 	bash scripts/bench.sh
 	$(CARGO) bench --locked --bench live_throughput
+	$(CARGO) bench --locked --bench http_lookups

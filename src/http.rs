@@ -1,13 +1,17 @@
 //! The service's HTTP listener: `/healthz` (the process answers), `/readyz` (every
 //! readiness check, as JSON, 503 when one fails), `/metrics` (Prometheus text format),
 //! read-only lookups `/v1/lists/{item}` (`?signal=purchase` for the purchase list) and
-//! `/v1/pairs/{a}/{b}`, and the actions
-//! that change state (`POST /v1/admin/publish|republish|compact`), which need the bearer
-//! token of `http.admin_token` and are off without one.
+//! `/v1/pairs/{a}/{b}`, and the actions that change state (`POST
+//! /v1/admin/publish|republish|compact`), which need the bearer token of
+//! `http.admin_token` and are off without one.
+//!
+//! Lookups share one long-lived read-only view of the store ([`LookupStore`]), run off the
+//! async threads, at most `http.max_concurrent_lookups` at once, and each request ends
+//! within `http.request_timeout`. Every error is JSON: `{"error": code, "detail": text}`.
 
-use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
+use std::time::Duration;
 
 use anyhow::{Context, Result};
 use axum::extract::{Path, Query, State};
@@ -15,11 +19,15 @@ use axum::http::{header, HeaderMap, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
 use axum::{Json, Router};
+use serde::Serialize;
 use tokio::net::TcpListener;
+use tokio::sync::Semaphore;
 
 use crate::health::Health;
 use crate::inspect::explain_pair;
+use crate::lookup::LookupStore;
 use crate::metrics::Metrics;
+use crate::observe::Observation;
 use crate::record::NeighborRecord;
 use crate::score::ListSettings;
 use crate::signal::Signal;
@@ -43,14 +51,47 @@ pub struct HttpState {
     pub health: Arc<Health>,
     /// The metrics to expose.
     pub metrics: Arc<Metrics>,
-    /// The store directory, opened read-only per lookup.
-    pub store_dir: PathBuf,
+    /// The shared read-only view lookups read through.
+    pub lookups: Arc<LookupStore>,
+    /// Places for lookups running at once (`http.max_concurrent_lookups`).
+    pub lookup_places: Arc<Semaphore>,
+    /// Longest time a request may take (`http.request_timeout`).
+    pub request_timeout: Duration,
+    /// Longest accepted item id (`input.max_id_bytes`).
+    pub max_id_bytes: usize,
     /// List settings for the explain view.
     pub lists: ListSettings,
     /// The admin token; empty = admin endpoints off.
     pub admin_token: String,
     /// Where admin requests go.
     pub admin: Arc<AdminRequests>,
+}
+
+/// A refused or failed request, answered as JSON with a stable code and a sentence.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct ApiError {
+    #[serde(skip)]
+    status: StatusCode,
+    /// Stable, machine-readable reason.
+    error: &'static str,
+    /// What went wrong and, where it helps, what to do.
+    detail: String,
+}
+
+impl ApiError {
+    fn new(status: StatusCode, error: &'static str, detail: impl Into<String>) -> ApiError {
+        ApiError {
+            status,
+            error,
+            detail: detail.into(),
+        }
+    }
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        (self.status, Json(&self)).into_response()
+    }
 }
 
 /// Binds the listener now, so a taken or invalid address fails start-up with its name.
@@ -69,11 +110,18 @@ pub fn router(state: HttpState) -> Router {
         .route("/v1/lists/{item}", get(list))
         .route("/v1/pairs/{a}/{b}", get(pair))
         .route("/v1/admin/{action}", post(admin))
+        .fallback(|| async {
+            ApiError::new(
+                StatusCode::NOT_FOUND,
+                "no_such_route",
+                "routes: /healthz /readyz /metrics /v1/lists/{item} /v1/pairs/{a}/{b} /v1/admin/{action}",
+            )
+        })
         .with_state(state)
 }
 
 async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
-    let readiness = s.health.readiness();
+    let readiness = s.health.readiness(&s.metrics.freshness());
     s.metrics.ready.set(i64::from(readiness.ready));
     let status = if readiness.ready {
         StatusCode::OK
@@ -84,24 +132,78 @@ async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
 }
 
 async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
-    s.metrics.ready.set(i64::from(s.health.readiness().ready));
+    let ready = s.health.readiness(&s.metrics.freshness()).ready;
+    s.metrics.ready.set(i64::from(ready));
     (
         [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
         s.metrics.render(),
     )
 }
 
-/// Runs a read against a read-only view of the store, off the async threads.
+/// Refuses an id longer than the configured maximum without echoing it.
+fn check_id(s: &HttpState, what: &str, id: &str) -> Result<(), ApiError> {
+    if id.is_empty() || id.len() > s.max_id_bytes {
+        return Err(ApiError::new(
+            StatusCode::BAD_REQUEST,
+            "bad_id",
+            format!(
+                "{what}: an id has 1 to {} bytes (input.max_id_bytes), this one has {}",
+                s.max_id_bytes,
+                id.len()
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Runs a read against the shared view, off the async threads, within the request's
+/// time and the lookup places. A read that outlives the request keeps its place until
+/// it ends, so slow reads cannot pile up beyond the limit.
 async fn with_store<T: Send + 'static>(
     s: &HttpState,
-    read: impl FnOnce(&Store) -> Result<Option<T>> + Send + 'static,
-) -> Result<Option<T>, Response> {
-    let dir = s.store_dir.clone();
-    let outcome =
-        tokio::task::spawn_blocking(move || Store::open_read_only(&dir).and_then(|store| read(&store)))
-            .await
-            .map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, e.to_string()).into_response())?;
-    outcome.map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, format!("{e:#}\n")).into_response())
+    read: impl FnOnce(&Store) -> Result<T> + Send + 'static,
+) -> Result<T, ApiError> {
+    let deadline = tokio::time::Instant::now() + s.request_timeout;
+    let busy = || {
+        ApiError::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "busy",
+            format!(
+                "no lookup place became free within http.request_timeout ({} ms); try again",
+                s.request_timeout.as_millis()
+            ),
+        )
+    };
+    let place = tokio::time::timeout_at(deadline, s.lookup_places.clone().acquire_owned())
+        .await
+        .map_err(|_| busy())?
+        .map_err(|_| busy())?;
+    let lookups = s.lookups.clone();
+    let task = tokio::task::spawn_blocking(move || {
+        let _place = place;
+        lookups.read(read)
+    });
+    match tokio::time::timeout_at(deadline, task).await {
+        Err(_) => Err(ApiError::new(
+            StatusCode::GATEWAY_TIMEOUT,
+            "timeout",
+            format!(
+                "the lookup took longer than http.request_timeout ({} ms)",
+                s.request_timeout.as_millis()
+            ),
+        )),
+        Ok(Err(e)) => Err(ApiError::new(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "internal",
+            e.to_string(),
+        )),
+        Ok(Ok(Err(e))) => Err(ApiError::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "store",
+            format!("{e:#}"),
+        )),
+        Ok(Ok(Ok(value))) => Ok(value),
+    }
 }
 
 /// The query of a list lookup: which signal's list (rating when absent).
@@ -110,17 +212,21 @@ struct ListQuery {
     signal: Option<String>,
 }
 
-async fn list(State(s): State<HttpState>, Path(item): Path<String>, Query(q): Query<ListQuery>) -> Response {
-    let signal = match q.signal.as_deref().map(Signal::parse) {
+async fn list(
+    State(s): State<HttpState>,
+    Path(item): Path<String>,
+    Query(q): Query<ListQuery>,
+) -> Result<Json<NeighborRecord>, ApiError> {
+    check_id(&s, "item", &item)?;
+    let signal = match q.signal.as_deref() {
         None => Signal::Rating,
-        Some(Some(signal)) => signal,
-        Some(None) => {
-            return (
+        Some(name) => Signal::parse(name).ok_or_else(|| {
+            ApiError::new(
                 StatusCode::BAD_REQUEST,
-                "signal: expected \"rating\" or \"purchase\"\n",
+                "bad_signal",
+                "signal: expected \"rating\" or \"purchase\"",
             )
-                .into_response()
-        }
+        })?,
     };
     let wanted = item.clone();
     let found = with_store(&s, move |store| {
@@ -131,19 +237,19 @@ async fn list(State(s): State<HttpState>, Path(item): Path<String>, Query(q): Qu
             .published(signal, id)?
             .map(|list| NeighborRecord::from_stored(store, signal, id, &list)))
     })
-    .await;
-    match found {
-        Ok(Some(record)) => Json(record).into_response(),
-        Ok(None) => (
+    .await?;
+    found.map(Json).ok_or_else(|| {
+        ApiError::new(
             StatusCode::NOT_FOUND,
-            format!("item {item:?} has no published {} list\n", signal.as_str()),
+            "not_found",
+            format!("item {item:?} has no published {} list", signal.as_str()),
         )
-            .into_response(),
-        Err(response) => response,
-    }
+    })
 }
 
-async fn pair(State(s): State<HttpState>, Path((a, b)): Path<(String, String)>) -> Response {
+async fn pair(State(s): State<HttpState>, Path((a, b)): Path<(String, String)>) -> Result<String, ApiError> {
+    check_id(&s, "first item", &a)?;
+    check_id(&s, "second item", &b)?;
     let settings = s.lists;
     let (qa, qb) = (a.clone(), b.clone());
     let found = with_store(&s, move |store| {
@@ -152,16 +258,14 @@ async fn pair(State(s): State<HttpState>, Path((a, b)): Path<(String, String)>) 
         }
         explain_pair(store, &qa, &qb, &settings).map(Some)
     })
-    .await;
-    match found {
-        Ok(Some(text)) => text.into_response(),
-        Ok(None) => (
+    .await?;
+    found.ok_or_else(|| {
+        ApiError::new(
             StatusCode::NOT_FOUND,
-            format!("{a:?} or {b:?} is not in the store\n"),
+            "not_found",
+            format!("{a:?} or {b:?} is not in the store"),
         )
-            .into_response(),
-        Err(response) => response,
-    }
+    })
 }
 
 /// Whether the request carries the configured token (compared in constant time).
@@ -183,18 +287,22 @@ fn authorized(headers: &HeaderMap, token: &str) -> bool {
 
 async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: HeaderMap) -> Response {
     if s.admin_token.is_empty() {
-        return (
+        return ApiError::new(
             StatusCode::FORBIDDEN,
-            "state-changing endpoints are off: set http.admin_token (SIMTIDE_HTTP__ADMIN_TOKEN)\n",
+            "admin_off",
+            "state-changing endpoints are off: set http.admin_token (SIMTIDE_HTTP__ADMIN_TOKEN)",
         )
-            .into_response();
+        .into_response();
     }
     if !authorized(&headers, &s.admin_token) {
-        tracing::warn!(action, "admin request refused: missing or wrong bearer token");
+        Observation::AdminRefused.emit(&s.metrics);
         return (
-            StatusCode::UNAUTHORIZED,
             [(header::WWW_AUTHENTICATE, "Bearer")],
-            "a valid bearer token is required\n",
+            ApiError::new(
+                StatusCode::UNAUTHORIZED,
+                "unauthorized",
+                "a valid bearer token is required",
+            ),
         )
             .into_response();
     }
@@ -202,7 +310,14 @@ async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: 
         "publish" => &s.admin.publish,
         "republish" => &s.admin.republish,
         "compact" => &s.admin.compact,
-        _ => return (StatusCode::NOT_FOUND, "actions: publish, republish, compact\n").into_response(),
+        _ => {
+            return ApiError::new(
+                StatusCode::NOT_FOUND,
+                "no_such_action",
+                "actions: publish, republish, compact",
+            )
+            .into_response()
+        }
     };
     flag.store(true, Ordering::Relaxed);
     tracing::info!(action, "admin request accepted");

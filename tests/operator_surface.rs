@@ -184,13 +184,27 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         status == 200 && body.contains("rake") && body.contains("hoe"),
         "{body}"
     );
-    assert_eq!(service.get("/v1/lists/no-such-item").unwrap().0, 404);
+    // Errors are JSON with a stable code; an over-long id is refused without being echoed.
+    let error_of = |path: &str| {
+        let (status, body) = service.get(path).unwrap();
+        let e: serde_json::Value = serde_json::from_str(&body).unwrap_or_else(|_| panic!("{path}: {body}"));
+        (status, e["error"].as_str().unwrap_or("").to_string(), body)
+    };
+    assert_eq!(error_of("/v1/lists/no-such-item").0, 404);
+    assert_eq!(error_of("/v1/lists/no-such-item").1, "not_found");
+    let (status, code, _) = error_of("/v1/lists/rake?signal=purchase");
     assert_eq!(
-        service.get("/v1/lists/rake?signal=purchase").unwrap().0,
-        404,
+        (status, code.as_str()),
+        (404, "not_found"),
         "rake has no purchase list"
     );
-    assert_eq!(service.get("/v1/lists/rake?signal=bogus").unwrap().0, 400);
+    assert_eq!(error_of("/v1/lists/rake?signal=bogus").1, "bad_signal");
+    let long = "x".repeat(5000);
+    let (status, code, body) = error_of(&format!("/v1/lists/{long}"));
+    assert_eq!((status, code.as_str()), (400, "bad_id"), "{body}");
+    assert!(body.contains("256") && !body.contains(&long[..300]), "{body}");
+    assert_eq!(error_of(&format!("/v1/pairs/rake/{long}")).1, "bad_id");
+    assert_eq!(error_of("/v1/no-such-route").1, "no_such_route");
 
     // The one-screen status against the running service (not a terminal: no colour).
     let status = Command::new(env!("CARGO_BIN_EXE_simtide"))

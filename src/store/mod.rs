@@ -290,6 +290,40 @@ pub fn rejects_path(dir: &Path) -> PathBuf {
     dir.join("rejects.jsonl")
 }
 
+/// The progress state of the last committed batch (the default for a new store).
+fn read_progress(db: &DB) -> Result<Progress> {
+    let meta = db.cf_handle(CF_META).expect("meta family exists");
+    Ok(match db.get_cf(meta, META_PROGRESS)? {
+        Some(bytes) => serde_json::from_slice(&bytes).context("stored progress state is unreadable")?,
+        None => Progress::default(),
+    })
+}
+
+/// Appends to `items` the item names stored with ids from `items.names.len()` on (ids
+/// are dense, so what is already loaded never changes).
+fn load_items_from(db: &DB, items: &mut ItemDirectory) -> Result<()> {
+    let ids = db.cf_handle(CF_IDS).expect("ids family exists");
+    let first = u32::try_from(items.names.len()).context("item count")?;
+    let start = [&b"I"[..], &first.to_be_bytes()].concat();
+    for entry in db.iterator_cf(ids, IteratorMode::From(&start, Direction::Forward)) {
+        let (key, value) = entry?;
+        if key.first() != Some(&b'I') {
+            break;
+        }
+        let id = u32::from_be_bytes(key[1..5].try_into().context("item id key")?);
+        if id as usize != items.names.len() {
+            bail!(
+                "item ids are not dense: found {id} after {} names",
+                items.names.len()
+            );
+        }
+        let name = String::from_utf8(value.to_vec()).context("item name is not UTF-8")?;
+        items.ids.insert(name.clone(), id);
+        items.names.push(name);
+    }
+    Ok(())
+}
+
 impl Store {
     /// Opens (creating if needed) a store for writing. Refuses a store whose statistics
     /// were shaped by other settings, naming each differing setting.
@@ -363,29 +397,9 @@ impl Store {
         fingerprint: StatsFingerprint,
         secondary_dir: Option<PathBuf>,
     ) -> Result<Store> {
-        let meta = db.cf_handle(CF_META).expect("meta family exists");
-        let progress = match db.get_cf(meta, META_PROGRESS)? {
-            Some(bytes) => serde_json::from_slice(&bytes).context("stored progress state is unreadable")?,
-            None => Progress::default(),
-        };
+        let progress = read_progress(&db)?;
         let mut items = ItemDirectory::default();
-        let ids = db.cf_handle(CF_IDS).expect("ids family exists");
-        for entry in db.prefix_iterator_cf(ids, b"I") {
-            let (key, value) = entry?;
-            if key.first() != Some(&b'I') {
-                break;
-            }
-            let id = u32::from_be_bytes(key[1..5].try_into().context("item id key")?);
-            if id as usize != items.names.len() {
-                bail!(
-                    "item ids are not dense: found {id} after {} names",
-                    items.names.len()
-                );
-            }
-            let name = String::from_utf8(value.to_vec()).context("item name is not UTF-8")?;
-            items.ids.insert(name.clone(), id);
-            items.names.push(name);
-        }
+        load_items_from(&db, &mut items)?;
         Ok(Store {
             db,
             dir: dir.to_path_buf(),
@@ -394,6 +408,18 @@ impl Store {
             items,
             secondary_dir,
         })
+    }
+
+    /// Brings a read-only (secondary) store up to the primary's latest committed batch:
+    /// RocksDB's catch-up, then the positions and the items added since. Long-lived
+    /// readers (HTTP lookups) call it periodically instead of reopening the store.
+    pub fn catch_up(&mut self) -> Result<()> {
+        if self.secondary_dir.is_none() {
+            bail!("only a store opened for reading catches up with its writer");
+        }
+        self.db.try_catch_up_with_primary()?;
+        self.progress = read_progress(&self.db)?;
+        load_items_from(&self.db, &mut self.items)
     }
 
     fn cf(&self, name: &str) -> &ColumnFamily {

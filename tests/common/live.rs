@@ -165,6 +165,11 @@ impl Service {
         self.child.wait().unwrap();
     }
 
+    /// The process id.
+    pub fn pid(&self) -> u32 {
+        self.child.id()
+    }
+
     /// Whether the process is still running.
     pub fn running(&mut self) -> bool {
         self.child.try_wait().unwrap().is_none()

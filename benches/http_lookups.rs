@@ -1,0 +1,174 @@
+//! HTTP lookup benchmark: `GET /v1/lists/{item}` from 8 and then 64 concurrent clients
+//! while `simtide run` consumes the MovieLens snapshot from a real broker (tansu 0.6.0 on
+//! 127.0.0.1). Prints lookups/s, p50 and p99 latency per phase, and the service's resident
+//! memory and open files before and after, against the targets: ≥ 2,000 lookups/s at 8
+//! clients, p99 < 50 ms, RSS growth < 50 MB. Bounded: each phase runs a fixed time, only
+//! against 127.0.0.1.
+//!
+//! Run with `cargo bench --bench http_lookups` (part of `make bench`).
+
+#[path = "../tests/common/mod.rs"]
+mod common;
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use common::live::{
+    broker_with_topics, csv_events, http_get, produce, wait_for, write_config, LiveSettings, Service, INPUT,
+};
+
+/// How long each phase sends requests.
+const PHASE: Duration = Duration::from_secs(10);
+
+/// Resident memory (MiB) and open files of a process, from /proc.
+fn footprint(pid: u32) -> (f64, usize) {
+    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap_or_default();
+    let rss_kib: f64 = status
+        .lines()
+        .find_map(|l| l.strip_prefix("VmRSS:"))
+        .and_then(|v| v.split_whitespace().next())
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(0.0);
+    let files = std::fs::read_dir(format!("/proc/{pid}/fd")).map_or(0, |d| d.count());
+    (rss_kib / 1024.0, files)
+}
+
+/// Runs `clients` threads that each look up items in turn for [`PHASE`]; returns
+/// (lookups answered, failures, sorted latencies in ms).
+fn phase(port: u16, clients: usize, items: &Arc<Vec<String>>) -> (usize, usize, Vec<f64>) {
+    let stop = Arc::new(AtomicBool::new(false));
+    let handles: Vec<_> = (0..clients)
+        .map(|c| {
+            let (stop, items) = (stop.clone(), items.clone());
+            std::thread::spawn(move || {
+                let (mut latencies, mut failures, mut i) = (Vec::new(), 0usize, c * 7919);
+                while !stop.load(Ordering::Relaxed) {
+                    let item = &items[i % items.len()];
+                    i += 1;
+                    let t = Instant::now();
+                    match http_get(port, &format!("/v1/lists/{item}")) {
+                        Some((200 | 404, _)) => latencies.push(t.elapsed().as_secs_f64() * 1e3),
+                        _ => failures += 1,
+                    }
+                }
+                (latencies, failures)
+            })
+        })
+        .collect();
+    std::thread::sleep(PHASE);
+    stop.store(true, Ordering::Relaxed);
+    let (mut all, mut failures) = (Vec::new(), 0);
+    for h in handles {
+        let (l, f) = h.join().unwrap();
+        all.extend(l);
+        failures += f;
+    }
+    all.sort_by(f64::total_cmp);
+    (all.len(), failures, all)
+}
+
+fn quantile(sorted: &[f64], q: f64) -> f64 {
+    sorted
+        .get(((sorted.len() as f64 - 1.0) * q).round() as usize)
+        .copied()
+        .unwrap_or(f64::NAN)
+}
+
+/// One service consuming the snapshot from a fresh broker. With `clients`, each phase
+/// sends lookups from that many clients; without, the service is only watched for the
+/// same time (the control run: what consumption alone does to memory). Returns the RSS
+/// (MiB) and open files at the first lists and at the end.
+fn run(
+    events: &[(String, String, Option<i64>)],
+    items: &Arc<Vec<String>>,
+    clients: &[usize],
+) -> ((f64, usize), (f64, usize)) {
+    let work = tempfile::tempdir().unwrap();
+    let broker = broker_with_topics();
+    produce(&broker.bootstrap(), INPUT, events);
+    let (config, port) = write_config(
+        work.path(),
+        &broker.bootstrap(),
+        &work.path().join("store"),
+        &LiveSettings {
+            tolerance: 0.05,
+            min_common_users: 3,
+            max_items_per_user: 500,
+            publish_interval: "1s",
+            batch_events: 5000,
+        },
+    );
+    let service = Service::start(&config, port, &[]);
+    wait_for("the first lists", Duration::from_secs(120), || {
+        items
+            .iter()
+            .take(200)
+            .any(|i| http_get(port, &format!("/v1/lists/{i}")).is_some_and(|(s, _)| s == 200))
+    });
+    let start = footprint(service.pid());
+    if clients.is_empty() {
+        std::thread::sleep(PHASE * 2);
+    }
+    for &n in clients {
+        let (answered, failures, latencies) = phase(port, n, items);
+        let rate = answered as f64 / PHASE.as_secs_f64();
+        let (p50, p99) = (quantile(&latencies, 0.5), quantile(&latencies, 0.99));
+        println!(
+            "{n:>2} clients: {rate:.0} lookups/s (target ≥ 2000: {:.2}×), p50 {p50:.1} ms, p99 {p99:.1} ms (target < 50 ms: {:.2}×), {failures} failures",
+            rate / 2000.0,
+            p99 / 50.0
+        );
+    }
+    let end = footprint(service.pid());
+    let (status, _) = service.terminate(Duration::from_secs(60));
+    assert!(status.success());
+    (start, end)
+}
+
+fn main() {
+    let events: Vec<(String, String, Option<i64>)> =
+        csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
+            .into_iter()
+            .map(|(k, v, _)| (k, v, None))
+            .collect();
+    let mut items: Vec<String> = events
+        .iter()
+        .filter_map(|(_, v, _)| {
+            let e: serde_json::Value = serde_json::from_str(v).ok()?;
+            e["item"].as_str().map(str::to_string)
+        })
+        .collect();
+    items.sort();
+    items.dedup();
+    let items = Arc::new(items);
+    println!(
+        "simtide HTTP lookups while consuming the MovieLens snapshot ({} events, {} items), tansu 0.6.0 on 127.0.0.1",
+        events.len(),
+        items.len()
+    );
+    let (start, end) = run(&events, &items, &[8, 64]);
+    println!(
+        "with lookups: RSS {:.0} → {:.0} MiB ({:+.0}), open files {} → {}",
+        start.0,
+        end.0,
+        end.0 - start.0,
+        start.1,
+        end.1
+    );
+    let (c_start, c_end) = run(&events, &items, &[]);
+    println!(
+        "control run, same consumption without lookups: RSS {:.0} → {:.0} MiB ({:+.0}), open files {} → {}",
+        c_start.0,
+        c_end.0,
+        c_end.0 - c_start.0,
+        c_start.1,
+        c_end.1
+    );
+    let growth = (end.0 - start.0) - (c_end.0 - c_start.0);
+    println!(
+        "RSS growth due to lookups: {growth:+.0} MiB (target < 50 MB: {:.2}×); open files {:+}",
+        growth.max(0.0) * 1.048_576 / 50.0,
+        (end.1 as i64 - start.1 as i64) - (c_end.1 as i64 - c_start.1 as i64)
+    );
+}
