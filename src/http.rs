@@ -5,9 +5,9 @@
 //! /v1/admin/publish|republish|compact`), which need the bearer token of
 //! `http.admin_token` and are off without one.
 //!
-//! Lookups share one long-lived read-only view of the store ([`LookupStore`]), run off the
-//! async threads, at most `http.max_concurrent_lookups` at once, and each request ends
-//! within `http.request_timeout`. Every error is JSON: `{"error": code, "detail": text}`.
+//! Lookups share one long-lived read-only view of the service's open store
+//! ([`LookupStore`]), run off the async threads, at most `http.max_concurrent_lookups` at
+//! once, and each request ends within `http.request_timeout`. Every error is JSON: `{"error": code, "detail": text}`.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;

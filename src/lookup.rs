@@ -1,50 +1,55 @@
-//! The store as HTTP lookups see it: one long-lived read-only (secondary) view, opened on
-//! first use and caught up with the service's writes at most every [`REFRESH_EVERY`].
-//! Opening a RocksDB instance per request costs a temp directory, file handles and block
-//! cache each time; under concurrent lookups that grew the service by gigabytes. One view
-//! shared by every request keeps memory flat and a lookup down to a few reads.
+//! The store as HTTP lookups see it: one long-lived read-only view that shares the
+//! service's open database ([`Store::view`]), its positions and item names refreshed at
+//! most every [`REFRESH_EVERY`]. Opening a RocksDB instance per request cost a temp
+//! directory, file handles and caches each time, and a secondary instance replays the
+//! writer's write-ahead log into memtables of its own; a view of the open database reads
+//! what the service itself reads, with no copy.
 
-use std::path::PathBuf;
 use std::sync::{Mutex, RwLock};
 use std::time::{Duration, Instant};
 
-use anyhow::Result;
+use anyhow::{bail, Result};
 
 use crate::store::Store;
 
-/// Longest time a lookup's view may lag the last committed batch (plus the catch-up).
+/// Longest time a lookup's positions and item names may lag the last committed batch.
 pub const REFRESH_EVERY: Duration = Duration::from_secs(1);
 
-/// A shared read-only view of one store directory.
+/// The shared view, empty until the service has opened its store.
+#[derive(Default)]
 pub struct LookupStore {
-    dir: PathBuf,
     view: RwLock<Option<Store>>,
     refreshed: Mutex<Option<Instant>>,
 }
 
 impl LookupStore {
-    /// A view of the store in `dir`; nothing is opened until the first lookup.
-    pub fn new(dir: PathBuf) -> LookupStore {
-        LookupStore {
-            dir,
-            view: RwLock::new(None),
-            refreshed: Mutex::new(None),
-        }
+    /// A lookup store with nothing to read yet (the HTTP listener starts first).
+    pub fn new() -> LookupStore {
+        LookupStore::default()
     }
 
-    /// Runs `read` against the view, opening or catching it up first when due. Blocking:
-    /// call it off the async threads.
+    /// Serves lookups from `view` from now on.
+    pub fn attach(&self, view: Store) {
+        *self.view.write().unwrap_or_else(|e| e.into_inner()) = Some(view);
+        *self.refreshed.lock().unwrap_or_else(|e| e.into_inner()) = Some(Instant::now());
+    }
+
+    /// Runs `read` against the view, refreshing it first when due. Blocking: call it off
+    /// the async threads.
     pub fn read<T>(&self, read: impl FnOnce(&Store) -> Result<T>) -> Result<T> {
         self.refresh_if_due()?;
         let view = self.view.read().unwrap_or_else(|e| e.into_inner());
-        read(view.as_ref().expect("the view is open after a refresh"))
+        match view.as_ref() {
+            Some(store) => read(store),
+            None => bail!("the store is not open yet"),
+        }
     }
 
     fn due(&self) -> bool {
         self.refreshed
             .lock()
             .unwrap_or_else(|e| e.into_inner())
-            .is_none_or(|at| at.elapsed() >= REFRESH_EVERY)
+            .is_some_and(|at| at.elapsed() >= REFRESH_EVERY)
     }
 
     fn refresh_if_due(&self) -> Result<()> {
@@ -56,9 +61,8 @@ impl LookupStore {
         if !self.due() {
             return Ok(());
         }
-        match view.as_mut() {
-            Some(store) => store.catch_up()?,
-            None => *view = Some(Store::open_read_only(&self.dir)?),
+        if let Some(store) = view.as_mut() {
+            store.catch_up()?;
         }
         *self.refreshed.lock().unwrap_or_else(|e| e.into_inner()) = Some(Instant::now());
         Ok(())

@@ -231,6 +231,7 @@ pub async fn run_service(
         .store_dir
         .clone()
         .unwrap_or_else(|| PathBuf::from(&config.store.dir));
+    let lookups = Arc::new(LookupStore::new());
     let listener = crate::http::bind(&config.http.listen).await?;
     tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
     let http = tokio::spawn(crate::http::serve(
@@ -238,7 +239,7 @@ pub async fn run_service(
         HttpState {
             health: health.clone(),
             metrics: metrics.clone(),
-            lookups: Arc::new(LookupStore::new(store_dir.clone())),
+            lookups: lookups.clone(),
             lookup_places: Arc::new(Semaphore::new(config.http.max_concurrent_lookups)),
             request_timeout: config.http.request_timeout,
             max_id_bytes: config.input.max_id_bytes,
@@ -249,6 +250,7 @@ pub async fn run_service(
     ));
 
     let mut store = Store::open(&store_dir, config)?;
+    lookups.attach(store.view());
     if let Some(request) = &options.start {
         let (kafka, b, r) = (config.kafka.clone(), bus.clone(), request.clone());
         let offsets = tokio::task::spawn_blocking(move || handover::resolve(&kafka, &b, &r)).await??;

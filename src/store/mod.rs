@@ -18,6 +18,7 @@ pub mod merge;
 
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use anyhow::{bail, Context, Result};
 use rocksdb::{
@@ -181,7 +182,7 @@ pub struct StoreStats {
 
 /// Item names by dense id and back, kept in memory: publication needs names for every
 /// neighbor (ties are broken by name) and the catalogue is small next to the pair table.
-#[derive(Debug, Default)]
+#[derive(Debug, Default, Clone)]
 struct ItemDirectory {
     names: Vec<String>,
     ids: HashMap<String, u32>,
@@ -229,12 +230,24 @@ pub enum Delivery<'a> {
 
 /// An open store.
 pub struct Store {
-    db: DB,
+    db: Arc<DB>,
     dir: PathBuf,
     fingerprint: StatsFingerprint,
     progress: Progress,
     items: ItemDirectory,
-    secondary_dir: Option<PathBuf>,
+    access: Access,
+}
+
+/// How a handle holds the database.
+enum Access {
+    /// The one writer.
+    Primary,
+    /// A RocksDB secondary instance of a store another handle or process writes, with a
+    /// directory of its own (removed on drop).
+    Secondary(PathBuf),
+    /// A read-only view sharing the writer's open database in the same process: no copy
+    /// of its memtables or caches.
+    View,
 }
 
 fn db_options() -> Options {
@@ -358,7 +371,7 @@ impl Store {
                 asked
             }
         };
-        Store::finish_open(db, dir, fingerprint, None)
+        Store::finish_open(db, dir, fingerprint, Access::Primary)
     }
 
     /// Opens a store for reading while a writer may hold it open, as a RocksDB secondary
@@ -388,36 +401,47 @@ impl Store {
             Some(bytes) => serde_json::from_slice(&bytes).context("stored fingerprint is unreadable")?,
             None => bail!("store {} was never initialised", dir.display()),
         };
-        Store::finish_open(db, dir, fingerprint, Some(secondary))
+        Store::finish_open(db, dir, fingerprint, Access::Secondary(secondary))
     }
 
-    fn finish_open(
-        db: DB,
-        dir: &Path,
-        fingerprint: StatsFingerprint,
-        secondary_dir: Option<PathBuf>,
-    ) -> Result<Store> {
+    fn finish_open(db: DB, dir: &Path, fingerprint: StatsFingerprint, access: Access) -> Result<Store> {
         let progress = read_progress(&db)?;
         let mut items = ItemDirectory::default();
         load_items_from(&db, &mut items)?;
         Ok(Store {
-            db,
+            db: Arc::new(db),
             dir: dir.to_path_buf(),
             fingerprint,
             progress,
             items,
-            secondary_dir,
+            access,
         })
     }
 
-    /// Brings a read-only (secondary) store up to the primary's latest committed batch:
-    /// RocksDB's catch-up, then the positions and the items added since. Long-lived
-    /// readers (HTTP lookups) call it periodically instead of reopening the store.
-    pub fn catch_up(&mut self) -> Result<()> {
-        if self.secondary_dir.is_none() {
-            bail!("only a store opened for reading catches up with its writer");
+    /// A read-only view of this store for readers in the same process (HTTP lookups): it
+    /// shares the open database, so reads see every committed batch without a second
+    /// instance replaying the write-ahead log; [`Store::catch_up`] refreshes its positions
+    /// and item names. A view refuses writes.
+    pub fn view(&self) -> Store {
+        Store {
+            db: self.db.clone(),
+            dir: self.dir.clone(),
+            fingerprint: self.fingerprint,
+            progress: self.progress.clone(),
+            items: self.items.clone(),
+            access: Access::View,
         }
-        self.db.try_catch_up_with_primary()?;
+    }
+
+    /// Brings a reader up to the writer's latest committed batch: for a secondary
+    /// instance RocksDB's catch-up first, then the positions and the items added since.
+    /// Long-lived readers (HTTP lookups) call it periodically instead of reopening.
+    pub fn catch_up(&mut self) -> Result<()> {
+        match self.access {
+            Access::Primary => bail!("the writer is always current; only readers catch up"),
+            Access::Secondary(_) => self.db.try_catch_up_with_primary()?,
+            Access::View => {}
+        }
         self.progress = read_progress(&self.db)?;
         load_items_from(&self.db, &mut self.items)
     }
@@ -615,6 +639,9 @@ impl Store {
     }
 
     fn write(&self, wb: WriteBatch) -> Result<()> {
+        if !matches!(self.access, Access::Primary) {
+            bail!("store {} is open for reading only", self.dir.display());
+        }
         let mut opts = WriteOptions::default();
         opts.set_sync(false);
         self.db.write_opt(wb, &opts).context("store write failed")
@@ -896,13 +923,14 @@ fn check_schema(db: &DB) -> Result<()> {
 
 impl Drop for Store {
     fn drop(&mut self) {
-        match &self.secondary_dir {
-            Some(dir) => {
+        match &self.access {
+            Access::Secondary(dir) => {
                 let _ = std::fs::remove_dir_all(dir);
             }
             // Everything committed is in the WAL; there is no need to wait for a flush or
             // compaction in progress before closing.
-            None => self.db.cancel_all_background_work(false),
+            Access::Primary => self.db.cancel_all_background_work(false),
+            Access::View => {}
         }
     }
 }
