@@ -1,4 +1,5 @@
-//! The validated events of the input contract (docs/design.md, "Events"), independent of their wire format.
+//! The validated events of the input contract (docs/design.md, "Events"), independent of
+//! their wire format.
 
 /// Event time as nanoseconds since the Unix epoch (UTC).
 pub type UnixNanos = i64;

@@ -7,7 +7,8 @@
 //!
 //! Lookups share one long-lived read-only view of the service's open store
 //! ([`LookupStore`]), run off the async threads, at most `http.max_concurrent_lookups` at
-//! once, and each request ends within `http.request_timeout`. Every error is JSON: `{"error": code, "detail": text}`.
+//! once, and each request ends within `http.request_timeout`. Every error is JSON:
+//! `{"error": code, "detail": text}`.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;

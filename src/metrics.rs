@@ -1,7 +1,8 @@
-//! The Prometheus metrics of simtide (docs/design.md, "Observability"), in one registry of our own. Names carry
-//! the `simtide_` prefix and follow Prometheus conventions: base units, `_total` for
-//! counters, `_seconds` for durations. Values that depend on "now" (staleness, event-time
-//! lag) are computed when scraped from the instants the service records.
+//! The Prometheus metrics of simtide (docs/design.md, "Observability"), in one registry of
+//! our own. Names carry the `simtide_` prefix and follow Prometheus conventions: base
+//! units, `_total` for counters, `_seconds` for durations. Values that depend on "now"
+//! (staleness, event-time lag, stalled batch) are computed when scraped from the instants
+//! the service records.
 
 use std::collections::BTreeMap;
 use std::sync::atomic::{AtomicI64, Ordering};

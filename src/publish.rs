@@ -1,5 +1,5 @@
-//! Publication (docs/design.md, "Publication"): rescoring the rows of dirty items into top-k lists with
-//! deterministic ties, and storing each list that changed with a new version.
+//! Publication (docs/design.md, "Publication"): rescoring the rows of dirty items into top-k
+//! lists with deterministic ties, and storing each list that changed with a new version.
 
 use std::cmp::Ordering;
 use std::collections::BTreeMap;

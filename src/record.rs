@@ -1,4 +1,5 @@
-//! The JSON record of a neighbor list (docs/design.md, "Publication"), shared by `export` and the output topic.
+//! The JSON record of a neighbor list (docs/design.md, "Publication"), shared by `export`
+//! and the output topic.
 
 use serde::{Deserialize, Serialize};
 

@@ -1,6 +1,6 @@
-//! Scores from stored sums (docs/design.md, "Scores"): adjusted cosine with optional damping for
-//! ratings; cosine, Jaccard or log-likelihood ratio for purchases; and the rule that
-//! decides whether a scored pair may be published.
+//! Scores from stored sums (docs/design.md, "Scores"): adjusted cosine with optional
+//! damping for ratings; cosine, Jaccard or log-likelihood ratio for purchases; and the rule
+//! that decides whether a scored pair may be published.
 
 use crate::config::{Config, PurchaseScore};
 use crate::engine::fixed::to_f64;

@@ -1,6 +1,7 @@
 //! The similarity engine: applies a micro-batch of events to user histories and turns the
-//! change into additive pair deltas (docs/design.md, "Adjusted cosine over co-raters"). It knows nothing of RocksDB, Kafka or
-//! files: the caller loads the states a batch touches and persists what comes back.
+//! change into additive pair deltas (docs/design.md, "Adjusted cosine over co-raters"). It
+//! knows nothing of RocksDB, Kafka or files: the caller loads the states a batch touches
+//! and persists what comes back.
 
 pub mod aggregate;
 pub mod contrib;

@@ -1,9 +1,9 @@
 //! `simtide run`: the long-running service (docs/design.md: "Data flow", "Storage",
-//! "Publication", "Failure model"). One loop consumes
-//! micro-batches (bounded by count and age), commits each as one store write holding its
-//! next offsets, commits group offsets after it for external lag tools, and runs a
-//! publication cycle every `publish.interval`. SIGTERM/SIGINT end it cleanly: stop
-//! fetching, commit the batch in flight, publish what is pending, leave.
+//! "Publication", "Failure model"). One loop consumes micro-batches (bounded by count and
+//! age), commits each as one store write holding its next offsets, commits group offsets
+//! after it for external lag tools, and runs a publication cycle every `publish.interval`.
+//! SIGTERM/SIGINT end it cleanly: stop fetching, commit the batch in flight, publish what
+//! is pending, leave.
 
 pub mod batch;
 pub mod consumer;
