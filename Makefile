@@ -16,11 +16,11 @@ demo: setup-build
 	$(CARGO) run --release --locked --quiet -- demo
 
 test: setup-test
-	$(CARGO) test --release --locked
+	$(CARGO) test --release --locked --workspace
 
 lint: setup-build
 	$(CARGO) fmt --all -- --check
-	$(CARGO) clippy --release --locked --all-targets -- -D warnings
+	$(CARGO) clippy --release --locked --workspace --all-targets -- -D warnings
 
 bench: setup-test
 	$(CARGO) build --release --locked

@@ -11,15 +11,13 @@ use std::sync::mpsc;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
-use rdkafka::consumer::{BaseConsumer, Consumer};
-use rdkafka::mocking::MockCluster;
-use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
-use rdkafka::{ClientConfig, Message, Offset, TopicPartitionList};
 
 use crate::config::Config;
 use crate::inspect::neighbors_table;
-use crate::live::{run_service, RunOptions};
+use crate::kafka::in_process::{follow_topic, produce_paced, GroupWatcher, InProcessCluster};
+use crate::live::{run_service, RunOptions, SignalHandling};
 use crate::record::NeighborRecord;
+use crate::shutdown::Shutdown;
 use crate::signal::Signal;
 use crate::store::Store;
 
@@ -96,51 +94,14 @@ fn demo_messages() -> Result<Vec<(String, String)>> {
     Ok(out)
 }
 
-/// Replays the messages into the input topic at an even pace.
-fn replay(brokers: &str, messages: Vec<(String, String)>) -> Result<usize> {
-    let producer: ThreadedProducer<DefaultProducerContext> = ClientConfig::new()
-        .set("bootstrap.servers", brokers)
-        .set("enable.idempotence", "true")
-        .create()?;
-    let started = Instant::now();
-    let per_message = REPLAY_SECONDS / messages.len() as f64;
-    for (i, (key, value)) in messages.iter().enumerate() {
-        let due = Duration::from_secs_f64(per_message * i as f64);
-        if let Some(wait) = due.checked_sub(started.elapsed()) {
-            std::thread::sleep(wait);
-        }
-        let mut record = BaseRecord::to(INPUT).key(key.as_str()).payload(value.as_str());
-        while let Err((_, back)) = producer.send(record) {
-            record = back;
-            std::thread::sleep(Duration::from_millis(5));
-        }
-    }
-    producer.flush(Duration::from_secs(10))?;
-    Ok(messages.len())
-}
-
 /// Follows the output topic, sending a line whenever a showcase item's list changes.
 fn follow_output(brokers: &str, lines: mpsc::Sender<String>, stop: mpsc::Receiver<()>) -> Result<()> {
-    let consumer: BaseConsumer = ClientConfig::new()
-        .set("bootstrap.servers", brokers)
-        .set("group.id", "fernwick.reader")
-        .create()?;
-    let mut tpl = TopicPartitionList::new();
-    tpl.add_partition_offset(OUTPUT, 0, Offset::Beginning)?;
-    consumer.assign(&tpl)?;
     let started = Instant::now();
     let mut last: BTreeMap<String, Vec<String>> = BTreeMap::new();
-    while stop.try_recv().is_err() {
-        let Some(message) = consumer.poll(Duration::from_millis(200)) else {
-            continue;
-        };
-        let message = message?;
-        let Some(value) = message.payload() else {
-            continue;
-        };
+    follow_topic(brokers, OUTPUT, stop, |value| {
         let record: NeighborRecord = serde_json::from_slice(value)?;
         if !SHOWCASE.contains(&record.item.as_str()) {
-            continue;
+            return Ok(());
         }
         let top: Vec<String> = record
             .neighbors
@@ -158,55 +119,23 @@ fn follow_output(brokers: &str, lines: mpsc::Sender<String>, stop: mpsc::Receive
             ));
             last.insert(record.item.clone(), top);
         }
-    }
-    Ok(())
-}
-
-/// Reads the service group's committed offsets, which it commits after every store write.
-struct GroupWatcher {
-    client: BaseConsumer,
-}
-
-impl GroupWatcher {
-    fn new(brokers: &str, group: &str) -> Result<GroupWatcher> {
-        let client = ClientConfig::new()
-            .set("bootstrap.servers", brokers)
-            .set("group.id", group)
-            .create()?;
-        Ok(GroupWatcher { client })
-    }
-
-    /// Whether every input partition's committed offset reached its end.
-    fn caught_up(&self) -> Result<bool> {
-        let timeout = Duration::from_secs(5);
-        let mut tpl = TopicPartitionList::new();
-        for p in 0..INPUT_PARTITIONS {
-            tpl.add_partition(INPUT, p);
-        }
-        let committed = self.client.committed_offsets(tpl, timeout)?;
-        for element in committed.elements() {
-            let (_, high) = self
-                .client
-                .fetch_watermarks(INPUT, element.partition(), timeout)?;
-            if high > 0 && element.offset() != Offset::Offset(high) {
-                return Ok(false);
-            }
-        }
-        Ok(true)
-    }
+        Ok(())
+    })
 }
 
 /// Runs the demo; the store is kept at `keep` when given, otherwise removed afterwards.
+/// Long by design: the demo is a script, told in the order it happens.
 pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
     let work = std::env::temp_dir().join(format!("simtide-demo-{}", std::process::id()));
     std::fs::create_dir_all(&work)?;
     let store_dir = keep.clone().unwrap_or_else(|| work.join("store"));
-    let mock = MockCluster::new(1).context("cannot start the in-process Kafka mock cluster")?;
-    let brokers = mock.bootstrap_servers();
-    mock.create_topic(INPUT, INPUT_PARTITIONS, 1)?;
-    for topic in [OUTPUT, PURCHASE_OUTPUT, DEAD_LETTER] {
-        mock.create_topic(topic, 1, 1)?;
-    }
+    let cluster = InProcessCluster::start(&[
+        (INPUT, INPUT_PARTITIONS),
+        (OUTPUT, 1),
+        (PURCHASE_OUTPUT, 1),
+        (DEAD_LETTER, 1),
+    ])?;
+    let brokers = cluster.brokers();
     let config = demo_config(&brokers, &store_dir)?;
     let messages = demo_messages()?;
     writeln!(
@@ -216,14 +145,14 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
         store_dir.display()
     )?;
 
-    let runtime = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()?;
-    let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+    let shutdown = Shutdown::new();
     let service = {
-        let config = config.clone();
-        runtime.spawn(async move { run_service(&config, RunOptions::default(), stop_rx).await })
+        let (config, shutdown) = (config.clone(), shutdown.clone());
+        let options = RunOptions {
+            signals: SignalHandling::Ignore,
+            ..RunOptions::default()
+        };
+        std::thread::spawn(move || run_service(&config, options, shutdown))
     };
     let (line_tx, line_rx) = mpsc::channel();
     let (reader_stop_tx, reader_stop_rx) = mpsc::channel();
@@ -233,7 +162,14 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
     };
     let producer = {
         let brokers = brokers.clone();
-        std::thread::spawn(move || replay(&brokers, messages))
+        std::thread::spawn(move || {
+            produce_paced(
+                &brokers,
+                INPUT,
+                &messages,
+                Duration::from_secs_f64(REPLAY_SECONDS),
+            )
+        })
     };
     while !producer.is_finished() {
         while let Ok(line) = line_rx.recv_timeout(Duration::from_millis(100)) {
@@ -245,14 +181,14 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
     // does: it commits and publishes what is pending before leaving.
     let watcher = GroupWatcher::new(&brokers, &config.kafka.group)?;
     let give_up = Instant::now() + Duration::from_secs(20);
-    while !watcher.caught_up()? && Instant::now() < give_up {
+    while !watcher.caught_up(INPUT, INPUT_PARTITIONS)? && Instant::now() < give_up {
         if let Ok(line) = line_rx.recv_timeout(Duration::from_millis(200)) {
             writeln!(out, "{line}")?;
         }
     }
     drop(watcher);
-    let _ = stop_tx.send(true);
-    let report = runtime.block_on(service)??;
+    shutdown.begin();
+    let report = service.join().expect("the service thread does not panic")?;
     while let Ok(line) = line_rx.recv_timeout(Duration::from_millis(800)) {
         writeln!(out, "{line}")?;
     }
@@ -275,7 +211,7 @@ pub fn run_demo(keep: Option<PathBuf>, out: &mut dyn Write) -> Result<()> {
         "\n'reel-mower-blades' was discontinued (item_status available=false): it appears in no list."
     )?;
     drop(store);
-    drop(mock);
+    drop(cluster);
     if keep.is_none() {
         std::fs::remove_dir_all(&work)?;
     } else {

@@ -11,16 +11,16 @@ use rustc_hash::FxHashSet;
 
 use crate::config::{Config, Neighborhood};
 use crate::decode::Limits;
-use crate::engine::EngineSettings;
 use crate::event::{Event, EventBody, UnixNanos};
-use crate::meter::Meter;
+use crate::meter::{Display, Meter, Unit};
 use crate::pipeline::apply_and_commit;
-use crate::publish::{compute_list, NameOrder};
-use crate::recommend::{recommend_for, user_history, NeighborIndex, Predictor, ScoreTable, UserView};
+use crate::predict::{recommend_for, user_history, NeighborIndex, Predictor, ScoreTable, UserView};
+use crate::publish::{compute_list, name_order};
 use crate::score::ListSettings;
 use crate::signal::Signal;
 use crate::source::{Decoded, InputFile, RecordReader};
 use crate::store::{StatsFingerprint, Store};
+use crate::topk::Exclusions;
 
 /// How held-out ratings are chosen.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -246,7 +246,7 @@ fn with_override(config: &Config, key: &str, value: &str) -> Result<Config> {
 
 fn train_store(dir: &Path, config: &Config, events: &[Event]) -> Result<Store> {
     let mut store = Store::open(dir, config)?;
-    let settings = EngineSettings::from_config(config);
+    let settings = config.engine_settings();
     for batch in events.chunks(config.backfill.batch_events as usize) {
         apply_and_commit(&mut store, &settings, batch, &BTreeMap::new(), |_| {})?;
     }
@@ -255,10 +255,13 @@ fn train_store(dir: &Path, config: &Config, events: &[Event]) -> Result<Store> {
 
 fn lists_for(store: &Store, settings: &ListSettings) -> Result<NeighborIndex> {
     let unavailable = store.unavailable_items()?;
-    let names = NameOrder::of(store);
+    let excluded = Exclusions {
+        unavailable: &unavailable,
+    };
+    let names = name_order(store);
     let mut lists = HashMap::new();
     for item in 0..store.item_count() as u32 {
-        let row = compute_list(store, Signal::Rating, item, settings, &unavailable, &names)?;
+        let row = compute_list(store, Signal::Rating, item, settings, &excluded, &names)?;
         lists.insert(item, row.neighbors.iter().map(|n| (n.item, n.score)).collect());
     }
     Ok(NeighborIndex::from_lists(lists))
@@ -293,11 +296,12 @@ fn score_point(
     let rho = config.recommend.amplification;
     let table = match config.recommend.neighborhood {
         Neighborhood::List => ScoreTable::default(),
-        Neighborhood::Rated => ScoreTable::for_items(
-            store,
-            0..store.item_count() as u32,
-            &ListSettings::from_config(config),
-        )?,
+        Neighborhood::Rated => {
+            let rows = (0..store.item_count() as u32)
+                .map(|item| Ok((item, store.rating_row(item)?)))
+                .collect::<Result<Vec<_>>>()?;
+            ScoreTable::from_rows(rows, &config.list_settings())
+        }
     };
     let predictor = match config.recommend.neighborhood {
         Neighborhood::List => Predictor::List(index),
@@ -324,7 +328,7 @@ fn score_point(
     for (user, wanted) in &relevant {
         let (ratings, owned) = &histories[*user];
         let view = UserView { ratings, owned };
-        let recs = recommend_for(index, &predictor, &view, &unavailable, request.top_n, rho)?;
+        let recs = recommend_for(index, &predictor, &view, &unavailable, request.top_n, rho);
         let hits = recs.iter().filter(|r| wanted.contains(&r.item)).count() as f64;
         precision += hits / request.top_n as f64;
         recall += hits / wanted.len() as f64;
@@ -346,7 +350,7 @@ fn score_point(
 /// Runs the sweep. Stores for each distinct statistics setting live in `work_dir`.
 pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<EvaluationResult> {
     let started = Instant::now();
-    let events = read_events(&request.inputs, Limits::from_config(&request.config))?;
+    let events = read_events(&request.inputs, request.config.limits())?;
     let (train, test) = split_events(events, request.split);
     if test.is_empty() {
         bail!("the split holds out no ratings: lower the cut-off time or raise the fraction");
@@ -356,7 +360,12 @@ pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<Evaluati
         .filter(|e| matches!(e.body, EventBody::Rating { .. }))
         .count() as u64;
     let points = sweep_points(&request.config, &request.sweeps)?;
-    let mut meter = Meter::new("evaluate", points.len() as u64, false, request.show_progress);
+    let mut meter = Meter::new(
+        "evaluate",
+        points.len() as u64,
+        Unit::Items,
+        Display::when(request.show_progress),
+    );
     let mut stores: Vec<(StatsFingerprint, Store, Histories)> = Vec::new();
     let mut results = Vec::with_capacity(points.len());
     for (done, (setting, config)) in points.into_iter().enumerate() {
@@ -371,7 +380,7 @@ pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<Evaluati
             }
         };
         let (_, store, hist) = &stores[position];
-        let index = lists_for(store, &ListSettings::from_config(&config))?;
+        let index = lists_for(store, &config.list_settings())?;
         let scored = score_point(store, &index, hist, &test, request, &config)?;
         results.push(PointResult { setting, ..scored });
         meter.update(done as u64 + 1, "settings");

@@ -5,13 +5,18 @@ use std::io::Write;
 
 use anyhow::Result;
 
-use crate::meter::Meter;
+use crate::meter::{Display, Meter, Unit};
 use crate::record::NeighborRecord;
 use crate::store::Store;
 
 /// Writes the records and returns how many were written.
 pub fn export_lists(store: &Store, out: &mut dyn Write, show_progress: bool) -> Result<u64> {
-    let mut meter = Meter::new("export", 2 * store.item_count() as u64, false, show_progress);
+    let mut meter = Meter::new(
+        "export",
+        2 * store.item_count() as u64,
+        Unit::Items,
+        Display::when(show_progress),
+    );
     let (mut seen, mut written) = (0u64, 0u64);
     for entry in store.all_published() {
         let (signal, item, list) = entry?;

@@ -86,7 +86,8 @@ fn published_rank(store: &Store, signal: Signal, a: u32, b: u32) -> Result<Strin
     })
 }
 
-/// The pair's sums and the arithmetic from them to the published score.
+/// The pair's sums and the arithmetic from them to the published score. Long by design:
+/// the explanation is written in the order a reader checks it.
 pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSettings) -> Result<String> {
     let a = item_or_fail(store, a_name)?;
     let b = item_or_fail(store, b_name)?;
@@ -162,7 +163,7 @@ pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSe
         let (na, nb, total) = (
             store.purchase_pair(a, a)?,
             store.purchase_pair(b, b)?,
-            store.progress().buyers,
+            store.ledger().buyers,
         );
         writeln!(
             out,

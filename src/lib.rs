@@ -1,19 +1,23 @@
 //! simtide keeps item-to-item similarities fresh from an event stream: per-pair sufficient
 //! statistics in RocksDB, adjusted cosine for ratings, co-purchase scores for purchases,
 //! and top-k neighbor lists republished as the statistics change.
+//!
+//! The maths (events, decoding, the engine, scores, top-k, drift, predictions) is the
+//! `simtide-core` crate; its modules are re-exported here so that the binary, the tests
+//! and the benchmarks name one crate. This crate adds the store, the Kafka bus, the live
+//! service, HTTP, and the commands.
 
-pub mod backfill;
+pub use simtide_core::{decode, drift, engine, event, model, predict, score, signal, timefmt, topk};
+
 pub mod config;
-pub mod decode;
 pub mod demo;
 pub mod diskspace;
-pub mod drift;
-pub mod engine;
 pub mod evaluate;
-pub mod event;
+pub mod exit;
 pub mod export;
 pub mod health;
 pub mod http;
+pub mod ingest;
 pub mod inspect;
 pub mod kafka;
 pub mod live;
@@ -27,10 +31,8 @@ pub mod publish;
 pub mod recommend;
 pub mod record;
 pub mod report;
-pub mod score;
-pub mod signal;
+pub mod retry;
+pub mod shutdown;
 pub mod source;
 pub mod status;
 pub mod store;
-pub mod timefmt;
-pub mod topic_backfill;

@@ -9,6 +9,35 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 /// How often the plain-line fallback reports.
 const LINE_EVERY: Duration = Duration::from_secs(5);
 
+/// What a meter counts, which decides how amounts are shown.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Unit {
+    /// Bytes of input (shown as KiB, MiB…).
+    Bytes,
+    /// Records, lists or settings (shown as plain counts).
+    Items,
+}
+
+/// Whether a meter draws anything.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Display {
+    /// A bar on a terminal, plain lines otherwise.
+    Shown,
+    /// Nothing at all (library use, tests, `--quiet`).
+    Hidden,
+}
+
+impl Display {
+    /// [`Display::Shown`] when `show` is true.
+    pub fn when(show: bool) -> Display {
+        if show {
+            Display::Shown
+        } else {
+            Display::Hidden
+        }
+    }
+}
+
 /// One progress display.
 pub struct Meter {
     bar: Option<ProgressBar>,
@@ -19,12 +48,12 @@ pub struct Meter {
 }
 
 impl Meter {
-    /// A meter over `total` units (`bytes` selects byte formatting). `enabled = false`
-    /// shows nothing at all (library use, tests).
-    pub fn new(label: &'static str, total: u64, bytes: bool, enabled: bool) -> Meter {
+    /// A meter over `total` amounts of `unit`.
+    pub fn new(label: &'static str, total: u64, unit: Unit, display: Display) -> Meter {
+        let enabled = display == Display::Shown;
         let bar = (enabled && std::io::stderr().is_terminal()).then(|| {
             let bar = ProgressBar::with_draw_target(Some(total), ProgressDrawTarget::stderr());
-            let template = if bytes {
+            let template = if unit == Unit::Bytes {
                 "{prefix:>10} [{bar:30}] {bytes}/{total_bytes} {msg} eta {eta}"
             } else {
                 "{prefix:>10} [{bar:30}] {pos}/{len} {msg} eta {eta}"

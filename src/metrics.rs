@@ -18,6 +18,68 @@ use crate::health::Freshness;
 use crate::signal::Signal;
 use crate::timefmt::now_nanos;
 
+/// Every metric's name, defined once: the registry and `simtide status` both use these.
+pub mod names {
+    /// `simtide_batch_duration_seconds`.
+    pub const BATCH_DURATION_SECONDS: &str = "simtide_batch_duration_seconds";
+    /// `simtide_batch_stalled_seconds`.
+    pub const BATCH_STALLED_SECONDS: &str = "simtide_batch_stalled_seconds";
+    /// `simtide_batches_total`.
+    pub const BATCHES_TOTAL: &str = "simtide_batches_total";
+    /// `simtide_broker_reachable`.
+    pub const BROKER_REACHABLE: &str = "simtide_broker_reachable";
+    /// `simtide_build_info`.
+    pub const BUILD_INFO: &str = "simtide_build_info";
+    /// `simtide_center_gap`.
+    pub const CENTER_GAP: &str = "simtide_center_gap";
+    /// `simtide_center_gap_max`.
+    pub const CENTER_GAP_MAX: &str = "simtide_center_gap_max";
+    /// `simtide_consumer_lag_messages`.
+    pub const CONSUMER_LAG_MESSAGES: &str = "simtide_consumer_lag_messages";
+    /// `simtide_dead_letters_total`.
+    pub const DEAD_LETTERS_TOTAL: &str = "simtide_dead_letters_total";
+    /// `simtide_entities`.
+    pub const ENTITIES: &str = "simtide_entities";
+    /// `simtide_event_time_lag_seconds`.
+    pub const EVENT_TIME_LAG_SECONDS: &str = "simtide_event_time_lag_seconds";
+    /// `simtide_events_total`.
+    pub const EVENTS_TOTAL: &str = "simtide_events_total";
+    /// `simtide_last_publish_timestamp_seconds`.
+    pub const LAST_PUBLISH_TIMESTAMP_SECONDS: &str = "simtide_last_publish_timestamp_seconds";
+    /// `simtide_list_delivery_failures_total`.
+    pub const LIST_DELIVERY_FAILURES_TOTAL: &str = "simtide_list_delivery_failures_total";
+    /// `simtide_list_drift_ratio`.
+    pub const LIST_DRIFT_RATIO: &str = "simtide_list_drift_ratio";
+    /// `simtide_list_rank_biased_overlap_ratio`.
+    pub const LIST_RANK_BIASED_OVERLAP_RATIO: &str = "simtide_list_rank_biased_overlap_ratio";
+    /// `simtide_lists_published_total`.
+    pub const LISTS_PUBLISHED_TOTAL: &str = "simtide_lists_published_total";
+    /// `simtide_pair_updates_total`.
+    pub const PAIR_UPDATES_TOTAL: &str = "simtide_pair_updates_total";
+    /// `simtide_publish_cycle_duration_seconds`.
+    pub const PUBLISH_CYCLE_DURATION_SECONDS: &str = "simtide_publish_cycle_duration_seconds";
+    /// `simtide_publish_cycles_total`.
+    pub const PUBLISH_CYCLES_TOTAL: &str = "simtide_publish_cycles_total";
+    /// `simtide_ready`.
+    pub const READY: &str = "simtide_ready";
+    /// `simtide_recenterings_total`.
+    pub const RECENTERINGS_TOTAL: &str = "simtide_recenterings_total";
+    /// `simtide_rejected_events_total`.
+    pub const REJECTED_EVENTS_TOTAL: &str = "simtide_rejected_events_total";
+    /// `simtide_staleness_seconds`.
+    pub const STALENESS_SECONDS: &str = "simtide_staleness_seconds";
+    /// `simtide_store_disk_available_bytes`.
+    pub const STORE_DISK_AVAILABLE_BYTES: &str = "simtide_store_disk_available_bytes";
+    /// `simtide_store_pending_compaction_bytes`.
+    pub const STORE_PENDING_COMPACTION_BYTES: &str = "simtide_store_pending_compaction_bytes";
+    /// `simtide_store_size_bytes`.
+    pub const STORE_SIZE_BYTES: &str = "simtide_store_size_bytes";
+    /// `simtide_store_write_failures_total`.
+    pub const STORE_WRITE_FAILURES_TOTAL: &str = "simtide_store_write_failures_total";
+    /// `simtide_tombstones_published_total`.
+    pub const TOMBSTONES_PUBLISHED_TOTAL: &str = "simtide_tombstones_published_total";
+}
+
 /// "Not known yet" for the instants kept as atomics.
 const UNSET: i64 = i64::MIN;
 
@@ -119,69 +181,70 @@ impl Default for Metrics {
 }
 
 impl Metrics {
-    /// Creates and registers every metric.
+    /// Creates and registers every metric. Long by design: one declaration per metric, in
+    /// the order of the struct.
     pub fn new() -> Metrics {
         let registry = Registry::new();
         let m = Metrics {
-            events: counter_vec("simtide_events_total", "Accepted events by kind and outcome.", &["kind", "outcome"]),
-            rejected: counter_vec("simtide_rejected_events_total", "Events refused by validation, by reason.", &["reason"]),
+            events: counter_vec(names::EVENTS_TOTAL, "Accepted events by kind and outcome.", &["kind", "outcome"]),
+            rejected: counter_vec(names::REJECTED_EVENTS_TOTAL, "Events refused by validation, by reason.", &["reason"]),
             dead_letters: counter_vec(
-                "simtide_dead_letters_total",
+                names::DEAD_LETTERS_TOTAL,
                 "Refused events delivered to the dead-letter topic, by reason.",
                 &["reason"],
             ),
-            batches: IntCounter::new("simtide_batches_total", "Micro-batches committed to the store.").expect("valid"),
+            batches: IntCounter::new(names::BATCHES_TOTAL, "Micro-batches committed to the store.").expect("valid"),
             batch_seconds: histogram(
-                "simtide_batch_duration_seconds",
+                names::BATCH_DURATION_SECONDS,
                 "Time to apply one micro-batch and commit it.",
                 prometheus::exponential_buckets(0.005, 2.0, 12).expect("valid"),
             ),
-            pair_updates: IntCounter::new("simtide_pair_updates_total", "Pair contributions added or retracted.")
+            pair_updates: IntCounter::new(names::PAIR_UPDATES_TOTAL, "Pair contributions added or retracted.")
                 .expect("valid"),
-            recenterings: IntCounter::new("simtide_recenterings_total", "Users whose applied center moved.")
+            recenterings: IntCounter::new(names::RECENTERINGS_TOTAL, "Users whose applied center moved.")
                 .expect("valid"),
             center_gap_max: Gauge::new(
-                "simtide_center_gap_max",
+                names::CENTER_GAP_MAX,
                 "Largest |mean − applied center| among the users of the last batch (rating units).",
             )
             .expect("valid"),
             center_gap: histogram(
-                "simtide_center_gap",
+                names::CENTER_GAP,
                 "|mean − applied center| of each user touched by a batch (rating units).",
                 CENTER_GAP_BUCKETS.to_vec(),
             ),
             consumer_lag: IntGaugeVec::new(
                 Opts::new(
-                    "simtide_consumer_lag_messages",
+                    names::CONSUMER_LAG_MESSAGES,
                     "Messages between the stored position and the end of each input partition.",
                 ),
                 &["partition"],
             )
             .expect("valid"),
-            cycles: IntCounter::new("simtide_publish_cycles_total", "Publication cycles completed.").expect("valid"),
+            cycles: IntCounter::new(names::PUBLISH_CYCLES_TOTAL, "Publication cycles completed.").expect("valid"),
             cycle_seconds: histogram(
-                "simtide_publish_cycle_duration_seconds",
+                names::PUBLISH_CYCLE_DURATION_SECONDS,
                 "Duration of one publication cycle (rescore, deliver, store).",
                 prometheus::exponential_buckets(0.001, 2.5, 12).expect("valid"),
             ),
             lists_published: counter_vec(
-                "simtide_lists_published_total",
+                names::LISTS_PUBLISHED_TOTAL,
                 "Changed lists delivered to the output topics (tombstones included), by signal.",
                 &["signal"],
             ),
             tombstones: counter_vec(
-                "simtide_tombstones_published_total",
+                names::TOMBSTONES_PUBLISHED_TOTAL,
                 "Tombstones delivered (a list became empty), by signal.",
                 &["signal"],
             ),
             delivery_failures: IntCounter::new(
-                "simtide_list_delivery_failures_total",
+                names::LIST_DELIVERY_FAILURES_TOTAL,
                 "List deliveries the broker did not acknowledge; each stays dirty and is retried.",
             )
             .expect("valid"),
             list_drift: HistogramVec::new(
                 HistogramOpts::new(
-                    "simtide_list_drift_ratio",
+                    names::LIST_DRIFT_RATIO,
                     "1 − |previous ∩ new| / max(|previous|, |new|) between an item's consecutive lists.",
                 )
                 .buckets(RATIO_BUCKETS.to_vec()),
@@ -190,7 +253,7 @@ impl Metrics {
             .expect("valid"),
             list_rbo: HistogramVec::new(
                 HistogramOpts::new(
-                    "simtide_list_rank_biased_overlap_ratio",
+                    names::LIST_RANK_BIASED_OVERLAP_RATIO,
                     "Rank-biased overlap (Webber, Moffat and Zobel 2010, p = 0.9, extrapolated) of an item's consecutive lists.",
                 )
                 .buckets(RATIO_BUCKETS.to_vec()),
@@ -198,45 +261,45 @@ impl Metrics {
             )
             .expect("valid"),
             store_write_failures: IntCounter::new(
-                "simtide_store_write_failures_total",
+                names::STORE_WRITE_FAILURES_TOTAL,
                 "Store writes that failed and were retried.",
             )
             .expect("valid"),
             entities: IntGaugeVec::new(
-                Opts::new("simtide_entities", "Items, users and rating pairs (pairs estimated by RocksDB)."),
+                Opts::new(names::ENTITIES, "Items, users and rating pairs (pairs estimated by RocksDB)."),
                 &["entity"],
             )
             .expect("valid"),
-            store_bytes: IntGauge::new("simtide_store_size_bytes", "Bytes of the store's SST files.").expect("valid"),
+            store_bytes: IntGauge::new(names::STORE_SIZE_BYTES, "Bytes of the store's SST files.").expect("valid"),
             pending_compaction_bytes: IntGauge::new(
-                "simtide_store_pending_compaction_bytes",
+                names::STORE_PENDING_COMPACTION_BYTES,
                 "RocksDB's estimate of the bytes compaction still has to rewrite.",
             )
             .expect("valid"),
             disk_available_bytes: IntGauge::new(
-                "simtide_store_disk_available_bytes",
+                names::STORE_DISK_AVAILABLE_BYTES,
                 "Free bytes on the filesystem holding the store.",
             )
             .expect("valid"),
-            broker_up: IntGauge::new("simtide_broker_reachable", "1 while a broker answered recently.").expect("valid"),
-            ready: IntGauge::new("simtide_ready", "1 while every readiness check passes.").expect("valid"),
+            broker_up: IntGauge::new(names::BROKER_REACHABLE, "1 while a broker answered recently.").expect("valid"),
+            ready: IntGauge::new(names::READY, "1 while every readiness check passes.").expect("valid"),
             last_publish: Gauge::new(
-                "simtide_last_publish_timestamp_seconds",
+                names::LAST_PUBLISH_TIMESTAMP_SECONDS,
                 "Unix time at which the last publication cycle completed.",
             )
             .expect("valid"),
             staleness: Gauge::new(
-                "simtide_staleness_seconds",
+                names::STALENESS_SECONDS,
                 "Age of the oldest change not yet reflected in a published list (0 when none).",
             )
             .expect("valid"),
             event_time_lag: Gauge::new(
-                "simtide_event_time_lag_seconds",
+                names::EVENT_TIME_LAG_SECONDS,
                 "Now minus the newest event time reflected in the published lists.",
             )
             .expect("valid"),
             batch_stalled: Gauge::new(
-                "simtide_batch_stalled_seconds",
+                names::BATCH_STALLED_SECONDS,
                 "How long the batch in hand has been failing to commit (dead letters not acknowledged, or the store write failing); 0 when none is.",
             )
             .expect("valid"),
@@ -248,7 +311,7 @@ impl Metrics {
             registry,
         };
         let build = GaugeVec::new(
-            Opts::new("simtide_build_info", "Always 1; the labels say which build runs."),
+            Opts::new(names::BUILD_INFO, "Always 1; the labels say which build runs."),
             &["version"],
         )
         .expect("valid");

@@ -12,6 +12,7 @@ use crate::metrics::Metrics;
 use crate::pipeline::BatchSummary;
 use crate::publish::{CycleReport, ListDrift};
 use crate::signal::Signal;
+use crate::store::StoreStats;
 
 /// One delivered list, for the cycle's metrics.
 #[derive(Debug, Clone, Copy)]
@@ -82,6 +83,24 @@ pub enum Observation<'a> {
         /// The store's error.
         error: &'a str,
     },
+    /// A batch could not be committed before its deadline and was dropped; it is consumed
+    /// again from the stored positions.
+    BatchAbandoned {
+        /// Messages it held.
+        messages: usize,
+    },
+    /// The catalogue's size, known from memory after every batch.
+    CatalogueCounted {
+        /// Items ever seen.
+        items: u64,
+        /// Users ever seen.
+        users: u64,
+    },
+    /// The store's size figures were read (after each publication cycle).
+    StoreMeasured {
+        /// RocksDB's figures and the free disk space.
+        stats: &'a StoreStats,
+    },
     /// A publication cycle completed.
     CycleCompleted {
         /// Counts of the cycle.
@@ -96,7 +115,8 @@ pub enum Observation<'a> {
 }
 
 impl Observation<'_> {
-    /// Logs the event and moves its metrics.
+    /// Logs the event and moves its metrics. Long by design: one match arm per observation,
+    /// so every log line and the metrics it moves sit side by side.
     pub fn emit(&self, m: &Metrics) {
         match self {
             Observation::BatchCommitted {
@@ -113,7 +133,7 @@ impl Observation<'_> {
                     seconds,
                     "batch committed"
                 );
-                for (&(kind, outcome), &n) in &summary.outcomes {
+                for (&(kind, outcome), &n) in summary.outcomes.iter() {
                     m.events
                         .with_label_values(&[kind.as_str(), outcome.as_str()])
                         .inc_by(n);
@@ -196,6 +216,26 @@ impl Observation<'_> {
                 if let Some(suppressed) = log_limit::admit("admin_refused") {
                     tracing::warn!(suppressed, "admin request refused: missing or wrong bearer token");
                 }
+            }
+            Observation::BatchAbandoned { messages } => {
+                m.clear_batch_stalled();
+                tracing::warn!(
+                    messages,
+                    "batch dropped before commit; it will be consumed again from the stored positions"
+                );
+            }
+            Observation::CatalogueCounted { items, users } => {
+                m.entities.with_label_values(&["items"]).set(*items as i64);
+                m.entities.with_label_values(&["users"]).set(*users as i64);
+            }
+            Observation::StoreMeasured { stats } => {
+                m.store_bytes.set(stats.sst_bytes as i64);
+                m.pending_compaction_bytes
+                    .set(stats.pending_compaction_bytes as i64);
+                m.disk_available_bytes.set(stats.disk_available_bytes as i64);
+                m.entities
+                    .with_label_values(&["rating_pairs"])
+                    .set(stats.rating_pairs_estimate as i64);
             }
             Observation::PendingChangesUnreadable { error } => {
                 if let Some(suppressed) = log_limit::admit("pending_changes") {

@@ -8,22 +8,17 @@ use std::collections::{BTreeMap, HashMap};
 use anyhow::Result;
 
 use crate::decode::RejectReason;
-use crate::engine::user_state::Outcome;
+use crate::engine::tally::EventTally;
 use crate::engine::{apply_batch, Action, EngineSettings, Sequenced};
-use crate::event::{Event, EventBody, EventKind};
-use crate::store::{BatchCommit, Progress, Store};
+use crate::event::{Event, EventBody};
+use crate::store::{BatchCommit, Ledger, Store};
 use crate::timefmt::now_nanos;
-
-/// Counter key of an accepted event in [`Progress::events`].
-pub fn event_counter_key(kind: EventKind, outcome: Outcome) -> String {
-    format!("{}/{}", kind.as_str(), outcome.as_str())
-}
 
 /// What one committed batch did.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct BatchSummary {
     /// Accepted events by kind and outcome.
-    pub outcomes: BTreeMap<(EventKind, Outcome), u64>,
+    pub outcomes: EventTally,
     /// Pair contributions added or retracted.
     pub pair_updates: u64,
     /// Users re-centered.
@@ -66,7 +61,7 @@ struct Interner<'a> {
 
 impl<'a> Interner<'a> {
     fn new(store: &'a Store, events: &[Event]) -> Result<Interner<'a>> {
-        let p = store.progress();
+        let p = store.ledger();
         let mut names: Vec<&str> = events.iter().filter_map(Event::user).collect();
         names.sort_unstable();
         names.dedup();
@@ -127,17 +122,17 @@ impl<'a> Interner<'a> {
 }
 
 /// Applies one micro-batch and commits it. `rejects` counts the records of the same batch
-/// that failed validation; `advance` records the source position the batch consumed into
-/// the progress state that is written with it.
+/// that failed validation; `advance` records the source position the batch consumed in
+/// the ledger that is written with it.
 pub fn apply_and_commit(
     store: &mut Store,
     settings: &EngineSettings,
     events: &[Event],
     rejects: &BTreeMap<RejectReason, u64>,
-    advance: impl FnOnce(&mut Progress),
+    advance: impl FnOnce(&mut Ledger),
 ) -> Result<BatchSummary> {
     let mut interner = Interner::new(store, events)?;
-    let mut next_seq = store.progress().next_seq;
+    let mut next_seq = store.ledger().next_seq;
     let sequenced: Vec<Sequenced> = events
         .iter()
         .map(|e| {
@@ -170,26 +165,23 @@ pub fn apply_and_commit(
     let mut statuses = store.load_statuses(&status_items)?;
     let effects = apply_batch(settings, &sequenced, &mut users, &mut statuses);
 
-    let mut progress = store.progress().clone();
-    progress.next_seq = next_seq;
-    progress.next_user = user_ids_table.next;
-    progress.next_item = item_ids_table.next;
-    progress.buyers += effects.buyers_delta;
-    progress.recenterings += effects.recenterings;
-    progress.pair_updates += effects.pair_updates;
+    let mut ledger = store.ledger().clone();
+    ledger.next_seq = next_seq;
+    ledger.next_user = user_ids_table.next;
+    ledger.next_item = item_ids_table.next;
+    ledger.buyers += effects.buyers_delta;
+    ledger.recenterings += effects.recenterings;
+    ledger.pair_updates += effects.pair_updates;
     if let Some(t) = effects.newest_event_at {
-        progress.event_time_watermark = Some(progress.event_time_watermark.map_or(t, |w| w.max(t)));
+        ledger.event_time_watermark = Some(ledger.event_time_watermark.map_or(t, |w| w.max(t)));
     }
-    for (&(kind, outcome), &n) in &effects.outcomes {
-        *progress
-            .events
-            .entry(event_counter_key(kind, outcome))
-            .or_default() += n;
+    for (&(kind, outcome), &n) in effects.outcomes.iter() {
+        *ledger.events.entry(EventTally::key(kind, outcome)).or_default() += n;
     }
     for (reason, &n) in rejects {
-        *progress.rejects.entry(reason.code().to_string()).or_default() += n;
+        *ledger.rejects.entry(reason.code().to_string()).or_default() += n;
     }
-    advance(&mut progress);
+    advance(&mut ledger);
 
     let changed_users: Vec<_> = effects
         .touched_users
@@ -201,7 +193,7 @@ pub fn apply_and_commit(
         new_items: item_ids_table.added,
         users: changed_users,
         effects: &effects,
-        progress,
+        ledger,
         dirty_since: now_nanos(),
     })?;
     Ok(BatchSummary {

@@ -1,17 +1,17 @@
 //! Publication (docs/design.md, "Publication"): rescoring the rows of dirty items into top-k
 //! lists with deterministic ties, and storing each list that changed with a new version.
 
-use std::cmp::Ordering;
 use std::collections::BTreeMap;
 
 use anyhow::Result;
 use rustc_hash::FxHashSet;
 
 use crate::drift::{overlap_drift, rank_biased_overlap, RBO_PERSISTENCE};
-use crate::score::{purchase_list_score, rating_list_score, ListSettings};
+use crate::model::{DirtyScope, PublishedList};
+use crate::score::ListSettings;
 use crate::signal::Signal;
-use crate::store::codec::{PublishedList, StoredNeighbor};
-use crate::store::{Delivery, PublicationWrite, Store};
+use crate::store::{Delivery, MarkAfterWrite, PublicationWrite, Store};
+use crate::topk::{purchase_list, rating_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
 
 /// Lists written per store write during a publication cycle.
 const WRITE_CHUNK: usize = 512;
@@ -30,140 +30,82 @@ pub struct CycleReport {
     pub rating_pairs_seen: u64,
 }
 
-/// Position of every item id in name order, so ties can be broken by name with integer
-/// comparisons (one sort of the catalogue per cycle instead of string compares per row).
-pub struct NameOrder(Vec<u32>);
-
-impl NameOrder {
-    /// Ranks the store's current item names.
-    pub fn of(store: &Store) -> NameOrder {
-        let mut ids: Vec<u32> = (0..store.item_count() as u32).collect();
-        ids.sort_unstable_by(|a, b| store.item_name(*a).cmp(store.item_name(*b)));
-        let mut rank = vec![0u32; ids.len()];
-        for (position, id) in ids.into_iter().enumerate() {
-            rank[id as usize] = position as u32;
-        }
-        NameOrder(rank)
-    }
-
-    fn rank(&self, item: u32) -> u32 {
-        self.0.get(item as usize).copied().unwrap_or(u32::MAX)
-    }
+/// The names of the store's items in id order, ranked for tie-breaking.
+pub fn name_order(store: &Store) -> NameOrder {
+    let names: Vec<&str> = (0..store.item_count() as u32)
+        .map(|id| store.item_name(id))
+        .collect();
+    NameOrder::of(&names)
 }
 
-/// Orders candidates best first: score descending, then item name ascending.
-fn rank(names: &NameOrder, a: &StoredNeighbor, b: &StoredNeighbor) -> Ordering {
-    b.score
-        .total_cmp(&a.score)
-        .then_with(|| names.rank(a.item).cmp(&names.rank(b.item)))
-}
-
-/// Keeps the best `k` candidates, in rank order.
-fn top_k(names: &NameOrder, mut candidates: Vec<StoredNeighbor>, k: usize) -> Vec<StoredNeighbor> {
-    if candidates.len() > k {
-        candidates.select_nth_unstable_by(k - 1, |a, b| rank(names, a, b));
-        candidates.truncate(k);
-    }
-    candidates.sort_unstable_by(|a, b| rank(names, a, b));
-    candidates
-}
-
-/// A freshly computed list, with the size of the row it came from.
-#[derive(Debug, Clone, PartialEq)]
-pub struct ScoredRow {
-    /// The top-k, best first.
-    pub neighbors: Vec<StoredNeighbor>,
-    /// Other items in the row (rating signal), for counting pairs.
-    pub row_len: usize,
-}
-
-/// Computes the current list of one item from the store.
+/// Computes the current list of one item from its stored row.
 pub fn compute_list(
     store: &Store,
     signal: Signal,
     item: u32,
     settings: &ListSettings,
-    unavailable: &FxHashSet<u32>,
+    excluded: &Exclusions,
     names: &NameOrder,
 ) -> Result<ScoredRow> {
-    let item_unavailable = unavailable.contains(&item);
-    let (candidates, row_len) = match signal {
-        Signal::Rating => {
-            let row = store.rating_row(item)?;
-            let row_len = row.iter().filter(|(other, _)| *other != item).count();
-            let candidates = row
-                .into_iter()
-                .filter(|(other, _)| !item_unavailable && *other != item && !unavailable.contains(other))
-                .filter_map(|(other, stats)| {
-                    rating_list_score(&stats, settings).map(|score| StoredNeighbor {
-                        item: other,
-                        score,
-                        support: stats.n as u64,
-                    })
-                })
-                .collect();
-            (candidates, row_len)
-        }
-        Signal::Purchase if item_unavailable => (Vec::new(), 0),
+    Ok(match signal {
+        Signal::Rating => rating_list(item, store.rating_row(item)?, settings, excluded, names),
         Signal::Purchase => {
             let row = store.purchase_row(item)?;
-            let own = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);
-            let others: Vec<(u32, i64)> = row
-                .into_iter()
-                .filter(|(other, _)| *other != item && !unavailable.contains(other))
-                .collect();
+            let own_buyers = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);
+            let others: Vec<(u32, i64)> = row.into_iter().filter(|(other, _)| *other != item).collect();
             let ids: Vec<u32> = others.iter().map(|(o, _)| *o).collect();
             let counts = store.buyer_counts(&ids)?;
-            let total = store.progress().buyers;
-            let candidates = others
+            let row = others
                 .into_iter()
                 .zip(counts)
-                .filter_map(|((other, co), n_other)| {
-                    purchase_list_score(co, own, n_other, total, settings).map(|score| StoredNeighbor {
-                        item: other,
-                        score,
-                        support: co as u64,
-                    })
+                .map(|((other, both), buyers_of_other)| CoBuyers {
+                    other,
+                    both,
+                    buyers_of_other,
                 })
                 .collect();
-            (candidates, 0)
+            purchase_list(
+                item,
+                own_buyers,
+                store.ledger().buyers,
+                row,
+                settings,
+                excluded,
+                names,
+            )
         }
-    };
-    Ok(ScoredRow {
-        neighbors: top_k(names, candidates, settings.neighbors),
-        row_len,
     })
 }
 
-/// Items to rescore for a signal, with whether each clears a stored mark: every marked
+/// Items to rescore for a signal, with what each does to a stored mark: every marked
 /// item, plus the row members of items marked "with neighbors". Items whose mark expands
 /// to a row come last, so a cycle cut short (crash, broker away) clears such a mark only
 /// after its whole row was rescored, and the next cycle redoes the expansion otherwise.
-fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, bool)>> {
+fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, MarkAfterWrite)>> {
     let marks = store.dirty_marks(signal)?;
-    let mut plain: BTreeMap<u32, bool> = marks
+    let mut plain: BTreeMap<u32, MarkAfterWrite> = marks
         .iter()
-        .filter(|(_, m)| !m.with_neighbors)
-        .map(|(item, _)| (*item, true))
+        .filter(|(_, m)| m.scope == DirtyScope::OwnList)
+        .map(|(item, _)| (*item, MarkAfterWrite::Clear))
         .collect();
     let mut expanding = Vec::new();
     for (item, mark) in &marks {
-        if !mark.with_neighbors {
+        if mark.scope == DirtyScope::OwnList {
             continue;
         }
-        expanding.push((*item, true));
+        expanding.push((*item, MarkAfterWrite::Clear));
         let members: Vec<u32> = match signal {
             Signal::Rating => store.rating_row(*item)?.into_iter().map(|(o, _)| o).collect(),
             Signal::Purchase => store.purchase_row(*item)?.into_iter().map(|(o, _)| o).collect(),
         };
         for m in members {
-            plain.entry(m).or_insert(false);
+            plain.entry(m).or_insert(MarkAfterWrite::Keep);
         }
     }
     for (item, _) in &expanding {
         plain.remove(item);
     }
-    let mut out: Vec<(u32, bool)> = plain.into_iter().collect();
+    let mut out: Vec<(u32, MarkAfterWrite)> = plain.into_iter().collect();
     out.extend(expanding);
     Ok(out)
 }
@@ -171,9 +113,9 @@ fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, bool)>> {
 /// Computes the lists of a chunk on every core: rows are independent reads.
 fn compute_in_parallel(
     store: &Store,
-    chunk: &[(Signal, u32, bool)],
+    chunk: &[(Signal, u32, MarkAfterWrite)],
     settings: &ListSettings,
-    unavailable: &FxHashSet<u32>,
+    excluded: &Exclusions,
     names: &NameOrder,
 ) -> Result<Vec<ScoredRow>> {
     let workers = std::thread::available_parallelism()
@@ -188,7 +130,7 @@ fn compute_in_parallel(
                 scope.spawn(move || {
                     part.iter()
                         .map(|&(signal, item, _)| {
-                            compute_list(store, signal, item, settings, unavailable, names)
+                            compute_list(store, signal, item, settings, excluded, names)
                         })
                         .collect::<Result<Vec<_>>>()
                 })
@@ -223,7 +165,7 @@ pub struct Rescored {
 /// rescored chunk by chunk. The caller stores each chunk (after delivering it, in the live
 /// service), so a list is never recorded as published before it reached its readers.
 pub struct Cycle {
-    plan: Vec<(Signal, u32, bool)>,
+    plan: Vec<(Signal, u32, MarkAfterWrite)>,
     position: usize,
     unavailable: FxHashSet<u32>,
     names: NameOrder,
@@ -238,14 +180,14 @@ impl Cycle {
         let mut plan = Vec::new();
         for signal in Signal::ALL {
             let items = targets(store, signal)?;
-            plan.extend(items.into_iter().map(|(item, clears)| (signal, item, clears)));
+            plan.extend(items.into_iter().map(|(item, mark)| (signal, item, mark)));
         }
         Ok(Cycle {
             plan,
             position: 0,
             unavailable: store.unavailable_items()?,
-            names: NameOrder::of(store),
-            watermark: store.progress().event_time_watermark,
+            names: name_order(store),
+            watermark: store.ledger().event_time_watermark,
             now,
             report: CycleReport::default(),
         })
@@ -274,9 +216,12 @@ impl Cycle {
         }
         let end = (self.position + WRITE_CHUNK).min(self.plan.len());
         let chunk = &self.plan[self.position..end];
-        let lists = compute_in_parallel(store, chunk, settings, &self.unavailable, &self.names)?;
+        let excluded = Exclusions {
+            unavailable: &self.unavailable,
+        };
+        let lists = compute_in_parallel(store, chunk, settings, &excluded, &self.names)?;
         let mut writes: Vec<Rescored> = Vec::with_capacity(chunk.len());
-        for (&(signal, item, clears_mark), scored) in chunk.iter().zip(lists) {
+        for (&(signal, item, mark), scored) in chunk.iter().zip(lists) {
             self.report.rating_pairs_seen += scored.row_len as u64;
             let neighbors = scored.neighbors;
             let previous = store.published(signal, item)?;
@@ -311,8 +256,7 @@ impl Cycle {
                     signal,
                     item,
                     list,
-                    clears_mark,
-                    redirty: false,
+                    mark,
                 },
                 drift,
             });

@@ -1,209 +1,28 @@
-//! Predicted ratings and recommendations.
-//!
-//! p(u, i) = Σ_j s(i,j)^ρ · r_uj / Σ_j |s(i,j)^ρ| over the user's rated items j in i's
-//! neighborhood (the weighted sum of Sarwar et al. 2001; ρ is case amplification after
-//! Breese, Heckerman and Kadie 1998, sign kept). The neighborhood is either i's published
-//! list (what serving has) or the k most similar of the user's rated items, scored from the
-//! stored sums (Sarwar et al.'s own definition). Candidates are the list neighbors of the
-//! user's items, minus what the user already has and unavailable items. When no neighbor
-//! is rated the user's mean rating stands in.
+//! Recommendations for a stored user: reads the user's history, the published rating lists
+//! and (for the `rated` neighborhood) the candidates' rows from the store, then ranks with
+//! the core's weighted-sum predictor (`simtide_core::predict`).
 
 use std::collections::{BTreeSet, HashMap};
 
 use anyhow::Result;
-use rustc_hash::FxHashSet;
 
 use crate::config::{Config, Neighborhood};
-use crate::engine::user_state::UserState;
-use crate::score::{rating_list_score, ListSettings};
+use crate::predict::{
+    recommend_for, user_history, NeighborIndex, Predictor, Recommendation, ScoreTable, UserView,
+};
 use crate::signal::Signal;
 use crate::store::Store;
 
-/// Rating lists in memory: item → (neighbor, score), best first.
-#[derive(Debug, Default, Clone)]
-pub struct NeighborIndex {
-    lists: HashMap<u32, Vec<(u32, f64)>>,
-}
-
-impl NeighborIndex {
-    /// The rating lists published in a store.
-    pub fn from_store(store: &Store) -> Result<NeighborIndex> {
-        let mut lists = HashMap::new();
-        for entry in store.all_published() {
-            let (signal, item, list) = entry?;
-            if signal == Signal::Rating && !list.neighbors.is_empty() {
-                lists.insert(item, list.neighbors.iter().map(|n| (n.item, n.score)).collect());
-            }
-        }
-        Ok(NeighborIndex { lists })
-    }
-
-    /// Builds an index from lists computed elsewhere (evaluation sweeps).
-    pub fn from_lists(lists: HashMap<u32, Vec<(u32, f64)>>) -> NeighborIndex {
-        NeighborIndex { lists }
-    }
-
-    /// The list of one item (empty when it has none).
-    pub fn neighbors(&self, item: u32) -> &[(u32, f64)] {
-        self.lists.get(&item).map_or(&[], Vec::as_slice)
-    }
-}
-
-/// A user's ratings that take part in predictions, and every item the user has (also
-/// ratings left out by the interaction cut, and purchases).
-pub fn user_history(state: &UserState, cut: usize) -> (HashMap<u32, f64>, FxHashSet<u32>) {
-    let ratings = state.active_ratings(cut).into_iter().collect();
-    let owned = state
-        .ratings
-        .iter()
-        .filter(|r| r.value.is_some())
-        .map(|r| r.item)
-        .chain(state.purchases.iter().map(|p| p.item))
-        .collect();
-    (ratings, owned)
-}
-
-/// Σ s^ρ·r / Σ |s^ρ| over (similarity, rating) pairs, sign of s kept; `None` when empty.
-fn weighted_sum(pairs: impl Iterator<Item = (f64, f64)>, rho: f64) -> Option<f64> {
-    let (mut num, mut den) = (0.0, 0.0);
-    for (s, r) in pairs {
-        let w = s.signum() * s.abs().powf(rho);
-        num += w * r;
-        den += w.abs();
-    }
-    (den > 0.0).then(|| num / den)
-}
-
-/// Publishable scores of whole rows, for predictions from the user's rated items:
-/// item → (other, score) sorted by other.
-#[derive(Debug, Default)]
-pub struct ScoreTable {
-    rows: HashMap<u32, Vec<(u32, f64)>>,
-    /// How many of the user's rated items a prediction may use.
-    neighbors: usize,
-}
-
-impl ScoreTable {
-    /// Scores the rows of `items` from the store's pair sums under `settings`.
-    pub fn for_items(
-        store: &Store,
-        items: impl IntoIterator<Item = u32>,
-        settings: &ListSettings,
-    ) -> Result<ScoreTable> {
-        let mut rows = HashMap::new();
-        for item in items {
-            let row: Vec<(u32, f64)> = store
-                .rating_row(item)?
-                .into_iter()
-                .filter(|(other, _)| *other != item)
-                .filter_map(|(other, stats)| rating_list_score(&stats, settings).map(|s| (other, s)))
-                .collect();
-            rows.insert(item, row);
-        }
-        Ok(ScoreTable {
-            rows,
-            neighbors: settings.neighbors,
-        })
-    }
-
-    fn score(&self, item: u32, other: u32) -> Option<f64> {
-        let row = self.rows.get(&item)?;
-        row.binary_search_by_key(&other, |(o, _)| *o)
-            .ok()
-            .map(|i| row[i].1)
-    }
-}
-
-/// How predictions find an item's neighbors.
-pub enum Predictor<'a> {
-    /// From the item's list.
-    List(&'a NeighborIndex),
-    /// The most similar of the user's rated items, from whole scored rows.
-    Rated(&'a ScoreTable),
-}
-
-impl Predictor<'_> {
-    /// The weighted-sum prediction of `item` for a user with `ratings`, or `None` when no
-    /// neighbor of the item is rated by the user.
-    pub fn predict(&self, ratings: &HashMap<u32, f64>, item: u32, rho: f64) -> Option<f64> {
-        match self {
-            Predictor::List(index) => weighted_sum(
-                index
-                    .neighbors(item)
-                    .iter()
-                    .filter_map(|(j, s)| ratings.get(j).map(|r| (*s, *r))),
-                rho,
-            ),
-            Predictor::Rated(table) => {
-                let mut scored: Vec<(f64, u32, f64)> = ratings
-                    .iter()
-                    .filter_map(|(j, r)| table.score(item, *j).map(|s| (s, *j, *r)))
-                    .collect();
-                scored.sort_unstable_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
-                scored.truncate(table.neighbors);
-                weighted_sum(scored.into_iter().map(|(s, _, r)| (s, r)), rho)
-            }
+/// The rating lists published in a store, as a neighbor index.
+pub fn published_rating_lists(store: &Store) -> Result<NeighborIndex> {
+    let mut lists = HashMap::new();
+    for entry in store.all_published() {
+        let (signal, item, list) = entry?;
+        if signal == Signal::Rating && !list.neighbors.is_empty() {
+            lists.insert(item, list.neighbors.iter().map(|n| (n.item, n.score)).collect());
         }
     }
-}
-
-/// One recommended item.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Recommendation {
-    /// Dense item id.
-    pub item: u32,
-    /// Predicted rating.
-    pub predicted: f64,
-    /// False when the user's mean stood in for a missing neighbor-based prediction.
-    pub from_neighbors: bool,
-}
-
-/// What a recommendation needs to know of the user.
-pub struct UserView<'a> {
-    /// Ratings taking part in predictions.
-    pub ratings: &'a HashMap<u32, f64>,
-    /// Everything the user has.
-    pub owned: &'a FxHashSet<u32>,
-}
-
-/// Up to `count` items for a user, ranked by prediction, ties by item id. Candidates come
-/// from the lists of the user's rated items. Empty for a user with no ratings.
-pub fn recommend_for(
-    index: &NeighborIndex,
-    predictor: &Predictor,
-    user: &UserView,
-    unavailable: &FxHashSet<u32>,
-    count: usize,
-    rho: f64,
-) -> Result<Vec<Recommendation>> {
-    if user.ratings.is_empty() {
-        return Ok(Vec::new());
-    }
-    let mean = user.ratings.values().sum::<f64>() / user.ratings.len() as f64;
-    let candidates: BTreeSet<u32> = user
-        .ratings
-        .keys()
-        .flat_map(|j| index.neighbors(*j).iter().map(|(i, _)| *i))
-        .filter(|i| !user.ratings.contains_key(i) && !user.owned.contains(i) && !unavailable.contains(i))
-        .collect();
-    let mut out = Vec::with_capacity(candidates.len());
-    for item in candidates {
-        out.push(match predictor.predict(user.ratings, item, rho) {
-            Some(p) => Recommendation {
-                item,
-                predicted: p,
-                from_neighbors: true,
-            },
-            None => Recommendation {
-                item,
-                predicted: mean,
-                from_neighbors: false,
-            },
-        });
-    }
-    out.sort_by(|a, b| b.predicted.total_cmp(&a.predicted).then(a.item.cmp(&b.item)));
-    out.truncate(count);
-    Ok(out)
+    Ok(NeighborIndex::from_lists(lists))
 }
 
 /// Recommendations for a stored user by name, with the configuration's `[recommend]`
@@ -218,7 +37,7 @@ pub fn recommend_user(
         return Ok(Vec::new());
     };
     let (ratings, owned) = user_history(&state, store.fingerprint().max_items_per_user);
-    let index = NeighborIndex::from_store(store)?;
+    let index = published_rating_lists(store)?;
     let table = match config.recommend.neighborhood {
         Neighborhood::List => ScoreTable::default(),
         // Only candidates are predicted: score just their rows.
@@ -227,7 +46,11 @@ pub fn recommend_user(
                 .keys()
                 .flat_map(|j| index.neighbors(*j).iter().map(|(i, _)| *i))
                 .collect();
-            ScoreTable::for_items(store, candidates, &ListSettings::from_config(config))?
+            let rows = candidates
+                .into_iter()
+                .map(|item| Ok((item, store.rating_row(item)?)))
+                .collect::<Result<Vec<_>>>()?;
+            ScoreTable::from_rows(rows, &config.list_settings())
         }
     };
     let predictor = match config.recommend.neighborhood {
@@ -238,12 +61,12 @@ pub fn recommend_user(
         ratings: &ratings,
         owned: &owned,
     };
-    recommend_for(
+    Ok(recommend_for(
         &index,
         &predictor,
         &view,
         &store.unavailable_items()?,
         count,
         config.recommend.amplification,
-    )
+    ))
 }

@@ -3,8 +3,8 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::model::PublishedList;
 use crate::signal::Signal;
-use crate::store::codec::PublishedList;
 use crate::store::Store;
 use crate::timefmt::format_rfc3339;
 

@@ -11,6 +11,8 @@ use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
 
+use crate::metrics::names;
+
 /// One scrape: series (name with labels, as exposed) → value.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct Scrape(BTreeMap<String, f64>);
@@ -97,7 +99,8 @@ fn bytes(n: f64) -> String {
     format!("{v:.1} {}", units[u])
 }
 
-/// Renders the screen from a readiness answer and two scrapes `window` apart.
+/// Renders the screen from a readiness answer and two scrapes `window` apart. Long by
+/// design: the screen top to bottom, one block per section.
 pub fn render(
     base: &str,
     readiness: &serde_json::Value,
@@ -131,17 +134,17 @@ pub fn render(
     for f in &failing {
         let _ = writeln!(out, "  ! {f}");
     }
-    let staleness = after.sum("simtide_staleness_seconds", "");
-    let since_publish = after.sum("simtide_last_publish_timestamp_seconds", "");
+    let staleness = after.sum(names::STALENESS_SECONDS, "");
+    let since_publish = after.sum(names::LAST_PUBLISH_TIMESTAMP_SECONDS, "");
     let now = crate::timefmt::now_nanos() as f64 / 1e9;
     let _ = writeln!(
         out,
         "  freshness    staleness {}  ·  event-time lag {:.1} s  ·  last publication {:.1} s ago",
         paint(&format!("{staleness:.1} s"), staleness < 60.0, colour),
-        after.sum("simtide_event_time_lag_seconds", ""),
+        after.sum(names::EVENT_TIME_LAG_SECONDS, ""),
         (now - since_publish).max(0.0)
     );
-    let stalled = after.sum("simtide_batch_stalled_seconds", "");
+    let stalled = after.sum(names::BATCH_STALLED_SECONDS, "");
     if stalled > 0.0 {
         let _ = writeln!(
             out,
@@ -154,11 +157,11 @@ pub fn render(
         );
     }
     let lags: Vec<String> = after
-        .series("simtide_consumer_lag_messages")
+        .series(names::CONSUMER_LAG_MESSAGES)
         .map(|(labels, v)| format!("{} {v:.0}", labels.replace("partition=", "p").replace('"', "")))
         .collect();
-    let lag_now = after.sum("simtide_consumer_lag_messages", "");
-    let lag_rate = (lag_now - before.sum("simtide_consumer_lag_messages", "")) / secs;
+    let lag_now = after.sum(names::CONSUMER_LAG_MESSAGES, "");
+    let lag_rate = (lag_now - before.sum(names::CONSUMER_LAG_MESSAGES, "")) / secs;
     let _ = writeln!(
         out,
         "  lag          {}  (total {lag_now:.0}, {lag_rate:+.0}/s)",
@@ -170,7 +173,7 @@ pub fn render(
     );
     let rate = |outcome: &str| {
         let f = format!("outcome=\"{outcome}\"");
-        (after.sum("simtide_events_total", &f) - before.sum("simtide_events_total", &f)) / secs
+        (after.sum(names::EVENTS_TOTAL, &f) - before.sum(names::EVENTS_TOTAL, &f)) / secs
     };
     let _ = writeln!(
         out,
@@ -181,9 +184,9 @@ pub fn render(
     );
     let mut letters: Vec<String> = Vec::new();
     let mut total = 0.0;
-    for (labels, v) in after.series("simtide_dead_letters_total") {
+    for (labels, v) in after.series(names::DEAD_LETTERS_TOTAL) {
         let previous = before
-            .series("simtide_dead_letters_total")
+            .series(names::DEAD_LETTERS_TOTAL)
             .find(|(l, _)| *l == labels)
             .map_or(0.0, |(_, p)| p);
         if v - previous > 0.0 {
@@ -208,18 +211,18 @@ pub fn render(
     );
     for signal in ["rating", "purchase"] {
         let f = format!("signal=\"{signal}\"");
-        let count = after.sum("simtide_list_drift_ratio_count", &f);
+        let count = after.sum(&format!("{}_count", names::LIST_DRIFT_RATIO), &f);
         if count > 0.0 {
             let _ = writeln!(
                 out,
                 "  drift        {signal}: {:.3} of neighbors replaced per changed list, RBO {:.3}, over {count:.0} changes",
-                after.sum("simtide_list_drift_ratio_sum", &f) / count,
-                after.sum("simtide_list_rank_biased_overlap_ratio_sum", &f) / count
+                after.sum(&format!("{}_sum", names::LIST_DRIFT_RATIO), &f) / count,
+                after.sum(&format!("{}_sum", names::LIST_RANK_BIASED_OVERLAP_RATIO), &f) / count
             );
         }
     }
-    let size = after.sum("simtide_store_size_bytes", "");
-    let free = after.sum("simtide_store_disk_available_bytes", "");
+    let size = after.sum(names::STORE_SIZE_BYTES, "");
+    let free = after.sum(names::STORE_DISK_AVAILABLE_BYTES, "");
     let free_share = if size + free > 0.0 {
         free / (size + free)
     } else {
@@ -229,9 +232,9 @@ pub fn render(
         out,
         "  store        {}  ·  compaction debt {}  ·  disk free {}  ·  center gap max {:.3}",
         bytes(size),
-        bytes(after.sum("simtide_store_pending_compaction_bytes", "")),
+        bytes(after.sum(names::STORE_PENDING_COMPACTION_BYTES, "")),
         paint(&format!("{:.0}%", free_share * 100.0), free_share > 0.1, colour),
-        after.sum("simtide_center_gap_max", "")
+        after.sum(names::CENTER_GAP_MAX, "")
     );
     out
 }

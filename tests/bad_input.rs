@@ -3,6 +3,10 @@
 
 mod common;
 
+use common::Settings;
+use simtide::engine::user_state::Outcome;
+use simtide::event::EventKind;
+
 use std::collections::BTreeMap;
 
 use simtide::decode::RejectReason;
@@ -75,10 +79,16 @@ fn json_lines_apply_only_valid_records() {
     let clean = dir.path().join("clean.jsonl");
     std::fs::write(&clean, valid.join("\n") + "\n").unwrap();
 
-    let config = common::config(0.0, 0, 1, 4);
+    let config = common::config(Settings {
+        batch_events: 4,
+        ..Settings::EXACT
+    });
     let mixed_store = dir.path().join("mixed-store");
     let summary = common::backfill(&mixed_store, &[&mixed], &config);
-    assert_eq!(summary.events.get("rating/applied"), Some(&(valid.len() as u64)));
+    assert_eq!(
+        summary.events.count(EventKind::Rating, Outcome::Applied),
+        valid.len() as u64
+    );
     let mut by_reason: BTreeMap<RejectReason, u64> = BTreeMap::new();
     for (_, _, r) in &expected_bad {
         *by_reason.entry(*r).or_default() += 1;
@@ -133,9 +143,9 @@ fn csv_reports_not_finite_and_short_records() {
     )
     .unwrap();
     let store = dir.path().join("store");
-    let summary = common::backfill(&store, &[&csv], &common::config(0.0, 0, 1, 100));
-    assert_eq!(summary.events.get("rating/applied"), Some(&1));
-    assert_eq!(summary.events.get("purchase/applied"), Some(&1));
+    let summary = common::backfill(&store, &[&csv], &common::config(Settings::EXACT));
+    assert_eq!(summary.events.count(EventKind::Rating, Outcome::Applied), 1);
+    assert_eq!(summary.events.count(EventKind::Purchase, Outcome::Applied), 1);
     let reasons: Vec<serde_json::Value> = std::fs::read_to_string(store.join("rejects.jsonl"))
         .unwrap()
         .lines()

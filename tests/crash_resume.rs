@@ -30,7 +30,7 @@ fn start(store: &Path, config: &Path, input: &Path) -> Child {
 /// instance while the writer runs; `None` before the store exists.
 fn committed(store: &Path) -> Option<(u64, bool)> {
     let s = Store::open_read_only(store).ok()?;
-    let p = s.progress().files.values().next().copied()?;
+    let p = s.ledger().files.values().next().copied()?;
     Some((p.next_record, p.done))
 }
 
@@ -101,7 +101,7 @@ fn killed_runs_equal_uninterrupted(tolerance: f64) {
         assert_eq!(x, y, "lists differ after crash and resume");
     }
     let store = Store::open_read_only(&crashed).unwrap();
-    let events = &store.progress().events;
+    let events = &store.ledger().events;
     assert_eq!(events.get("rating/applied"), Some(&(SLICE as u64)), "{events:?}");
     assert_eq!(
         events.values().sum::<u64>(),

@@ -2,12 +2,15 @@
 
 mod common;
 
+use common::Settings;
+
 use std::collections::HashMap;
 use std::path::Path;
 
 use simtide::config::{Config, Neighborhood};
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
-use simtide::recommend::{recommend_user, NeighborIndex, Predictor};
+use simtide::predict::Predictor;
+use simtide::recommend::{published_rating_lists, recommend_user};
 use simtide::report::write_report;
 use simtide::store::Store;
 
@@ -47,7 +50,7 @@ fn hand_worked_similarity_and_prediction() {
     let csv = dir.path().join("hand.csv");
     hand_matrix(&csv);
     let store_dir = dir.path().join("store");
-    common::backfill(&store_dir, &[&csv], &common::config(0.0, 0, 1, 100));
+    common::backfill(&store_dir, &[&csv], &common::config(Settings::EXACT));
     let store = Store::open_read_only(&store_dir).unwrap();
     let id = |name: &str| store.item_id(name).unwrap();
     let score = |a: &str, b: &str| {
@@ -72,7 +75,7 @@ fn hand_worked_similarity_and_prediction() {
     // pairs are negative and not published), so
     // p(u6, E) = (0.9456108577 × 4 + 0.7333333333 × 2) / (0.9456108577 + 0.7333333333)
     //          = 5.2491100974 / 1.6789441910 = 3.126435128392606.
-    let index = NeighborIndex::from_store(&store).unwrap();
+    let index = published_rating_lists(&store).unwrap();
     let u6: HashMap<u32, f64> = [(id("C"), 4.0), (id("D"), 2.0)].into_iter().collect();
     let lists = Predictor::List(&index);
     let p = lists.predict(&u6, id("E"), 1.0).unwrap();
@@ -108,7 +111,7 @@ fn recommend_skips_owned_and_unavailable_items() {
     )
     .unwrap();
     let store_dir = dir.path().join("store");
-    common::backfill(&store_dir, &[&csv, &status], &common::config(0.0, 0, 1, 100));
+    common::backfill(&store_dir, &[&csv, &status], &common::config(Settings::EXACT));
     let store = Store::open_read_only(&store_dir).unwrap();
     let mut configs = [Config::default(), Config::default()];
     configs[1].recommend.neighborhood = Neighborhood::Rated;
@@ -168,7 +171,12 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_slice(30_000, &dir.path().join("first-30000.csv"));
     let split = Split::LastFraction(0.2);
-    let config = common::config(0.05, 500, 3, 50_000);
+    let config = common::config(Settings {
+        tolerance: 0.05,
+        cut: 500,
+        min_common_users: 3,
+        batch_events: 50_000,
+    });
     let a = run(dir.path(), &csv, "a", config.clone(), split, "neighbors=1,30");
     let b = run(dir.path(), &csv, "b", config, split, "neighbors=1,30");
     assert_eq!(a.points, b.points, "same input, same numbers");
@@ -239,7 +247,11 @@ struct NumpyPrediction {
 fn movielens_predictions_match_numpy_and_beat_the_user_mean() {
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_csv();
-    let mut config = common::config(0.0, 0, 3, 50_000);
+    let mut config = common::config(Settings {
+        min_common_users: 3,
+        batch_events: 50_000,
+        ..Settings::EXACT
+    });
     config.recommend.neighborhood = Neighborhood::Rated;
     let ours = run(
         dir.path(),

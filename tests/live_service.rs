@@ -17,6 +17,8 @@
 
 mod common;
 
+use common::Settings;
+
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
@@ -150,7 +152,7 @@ impl Scenario {
     /// The store's event and reject counters.
     fn counters(&self) -> (BTreeMap<String, u64>, BTreeMap<String, u64>) {
         let store = Store::open_read_only(&self.store).unwrap();
-        let p = store.progress();
+        let p = store.ledger();
         (p.events.clone(), p.rejects.clone())
     }
 }
@@ -479,12 +481,16 @@ fn handover_from_a_file_backfill_at_a_time_neither_overlaps_nor_leaves_a_gap() {
         .collect();
     sc.produce(&stamped);
 
-    common::backfill(&sc.store, &[&history], &common::config(0.0, 0, 1, 50_000));
+    common::backfill(
+        &sc.store,
+        &[&history],
+        &common::config(Settings {
+            batch_events: 50_000,
+            ..Settings::EXACT
+        }),
+    );
     let (config, port) = sc.config(&LiveSettings::default());
-    let start = time::OffsetDateTime::from_unix_timestamp(handover_at)
-        .unwrap()
-        .format(&time::format_description::well_known::Rfc3339)
-        .unwrap();
+    let start = simtide::timefmt::format_rfc3339(handover_at * simtide::timefmt::NANOS_PER_SECOND);
     sc.finish(Service::start(&config, port, &["--start-at", &start]));
     sc.assert_exact();
 
@@ -579,7 +585,16 @@ fn full_movielens_at_the_default_tolerance_stays_within_the_engine_bound() {
     eprintln!("{}", sc.finish(Service::start(&config, port, &[])));
 
     let exact_dir = sc.work.path().join("exact");
-    common::backfill(&exact_dir, &[&sc.slice], &common::config(0.0, 500, 5, 50_000));
+    common::backfill(
+        &exact_dir,
+        &[&sc.slice],
+        &common::config(Settings {
+            cut: 500,
+            min_common_users: 5,
+            batch_events: 50_000,
+            ..Settings::EXACT
+        }),
+    );
     let exact = Store::open_read_only(&exact_dir).unwrap();
     let mut records = read_all(&sc.brokers(), OUTPUT);
     accept_missing_tombstones(&mut records, &sc.store);

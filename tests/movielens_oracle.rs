@@ -15,6 +15,10 @@
 
 mod common;
 
+use common::Settings;
+use simtide::engine::user_state::Outcome;
+use simtide::event::EventKind;
+
 use std::path::Path;
 
 use simtide::score::RatingSums;
@@ -25,8 +29,16 @@ use simtide::store::Store;
 fn exact_matches_scipy(csv: &Path, ratings: u64, min_common_users: u64) -> usize {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path().join("store");
-    let summary = common::backfill(&store, &[csv], &common::config(0.0, 0, min_common_users, 50_000));
-    assert_eq!(summary.events.get("rating/applied"), Some(&ratings));
+    let summary = common::backfill(
+        &store,
+        &[csv],
+        &common::config(Settings {
+            min_common_users,
+            batch_events: 50_000,
+            ..Settings::EXACT
+        }),
+    );
+    assert_eq!(summary.events.count(EventKind::Rating, Outcome::Applied), ratings);
     let export = dir.path().join("export.jsonl");
     let lines = common::export(&store, &export);
     let (ok, out) = common::oracle(&[
@@ -80,9 +92,27 @@ fn default_tolerance_in_micro_batches_stays_within_its_bound() {
     let csv = common::movielens_slice(50_000, &dir.path().join("first-50000.csv"));
     let exact_dir = dir.path().join("exact");
     let approx_dir = dir.path().join("approx");
-    common::backfill(&exact_dir, &[&csv], &common::config(0.0, 500, 5, 50_000));
+    common::backfill(
+        &exact_dir,
+        &[&csv],
+        &common::config(Settings {
+            cut: 500,
+            min_common_users: 5,
+            batch_events: 50_000,
+            ..Settings::EXACT
+        }),
+    );
     // 5000 events per batch, the live consumer's default batch size.
-    let approx = common::backfill(&approx_dir, &[&csv], &common::config(0.05, 500, 5, 5_000));
+    let approx = common::backfill(
+        &approx_dir,
+        &[&csv],
+        &common::config(Settings {
+            tolerance: 0.05,
+            cut: 500,
+            min_common_users: 5,
+            batch_events: 5_000,
+        }),
+    );
     assert_eq!(
         approx.batches, 11,
         "10 full batches of 5000 plus the empty one that marks the end"

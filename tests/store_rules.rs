@@ -3,10 +3,14 @@
 
 mod common;
 
+use common::Settings;
+use simtide::engine::user_state::Outcome;
+use simtide::event::EventKind;
+
 use std::path::Path;
 
 use simtide::config::{Config, PurchaseScore};
-use simtide::store::Store;
+use simtide::store::{OpenError, Store};
 
 /// Small deterministic generator (64-bit LCG, constants from Knuth's MMIX; from memory).
 struct Lcg(u64);
@@ -44,7 +48,11 @@ fn purchase_scores_match_scipy() {
         (PurchaseScore::Jaccard, "jaccard"),
         (PurchaseScore::LogLikelihood, "log_likelihood"),
     ] {
-        let mut config = common::config(0.0, 0, 2, 1000);
+        let mut config = common::config(Settings {
+            min_common_users: 2,
+            batch_events: 1000,
+            ..Settings::EXACT
+        });
         config.similarity.purchase_score = kind;
         config.similarity.neighbors = 10;
         let store = dir.path().join(name);
@@ -90,14 +98,14 @@ fn garden_ratings() -> Vec<String> {
 }
 
 /// Every stored rating pair with item names, sorted, for comparing two stores.
-fn named_pairs(store: &Path) -> Vec<(String, String, simtide::store::codec::RatingPairStats)> {
+fn named_pairs(store: &Path) -> Vec<(String, String, simtide::model::RatingPairStats)> {
     let s = Store::open_read_only(store).unwrap();
-    let mut v: Vec<_> = s
-        .all_rating_pairs()
-        .unwrap()
-        .into_iter()
-        .map(|((a, b), st)| (s.item_name(a).to_string(), s.item_name(b).to_string(), st))
-        .collect();
+    let mut v = Vec::new();
+    for a in 0..s.item_count() as u32 {
+        for (b, st) in s.rating_row(a).unwrap() {
+            v.push((s.item_name(a).to_string(), s.item_name(b).to_string(), st));
+        }
+    }
     v.sort_by(|x, y| (&x.0, &x.1).cmp(&(&y.0, &y.1)));
     v
 }
@@ -124,19 +132,33 @@ fn changed_statistics_settings_are_refused_and_nothing_is_lost() {
     let input = dir.path().join("a.jsonl");
     write(&input, &garden_ratings());
     let store = dir.path().join("store");
-    let config = common::config(0.0, 0, 1, 100);
+    let config = common::config(Settings::EXACT);
     common::backfill(&store, &[&input], &config);
     let before = common::export_without_times(&store, &dir.path().join("1.jsonl"));
+    assert!(!before.is_empty(), "the store holds lists to lose");
 
     let mut other = config.clone();
     other.similarity.recenter_tolerance = 0.1;
     other.similarity.max_items_per_user = 20;
-    let err = Store::open(&store, &other).err().expect("refused").to_string();
+    let err = Store::open(&store, &other).err().expect("refused");
+    match err.downcast_ref::<OpenError>() {
+        Some(OpenError::SettingsChanged { differences, .. }) => {
+            assert_eq!(differences.len(), 2, "{differences:?}");
+            assert!(
+                differences[0].starts_with("similarity.recenter_tolerance"),
+                "{differences:?}"
+            );
+            assert!(
+                differences[1].starts_with("similarity.max_items_per_user"),
+                "{differences:?}"
+            );
+        }
+        _ => panic!("expected a settings refusal, got {err:#}"),
+    }
     assert!(
-        err.contains("similarity.recenter_tolerance") && err.contains("similarity.max_items_per_user"),
-        "{err}"
+        err.to_string().contains("rebuild"),
+        "the message says what to do: {err}"
     );
-    assert!(err.contains("rebuild"), "{err}");
     assert_eq!(
         before,
         common::export_without_times(&store, &dir.path().join("2.jsonl"))
@@ -151,7 +173,7 @@ fn changed_statistics_settings_are_refused_and_nothing_is_lost() {
 fn unavailable_items_leave_lists_and_come_back() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path().join("store");
-    let config = common::config(0.0, 0, 1, 100);
+    let config = common::config(Settings::EXACT);
     let base = dir.path().join("a.jsonl");
     write(&base, &garden_ratings());
     common::backfill(&store, &[&base], &config);
@@ -175,7 +197,7 @@ fn unavailable_items_leave_lists_and_come_back() {
         &[r#"{"kind":"item_status","item":"border-spade","available":true,"at":50}"#.to_string()],
     );
     let s = common::backfill(&store, &[&stale], &config);
-    assert_eq!(s.events.get("item_status/stale"), Some(&1));
+    assert_eq!(s.events.count(EventKind::ItemStatus, Outcome::Stale), 1);
     assert!(!neighbor_names(&store, "spade").contains(&"border-spade".to_string()));
 
     let on = dir.path().join("on.jsonl");
@@ -190,7 +212,10 @@ fn unavailable_items_leave_lists_and_come_back() {
 #[test]
 fn erasure_equals_never_having_seen_the_user() {
     let dir = tempfile::tempdir().unwrap();
-    let config = common::config(0.0, 0, 1, 3);
+    let config = common::config(Settings {
+        batch_events: 3,
+        ..Settings::EXACT
+    });
     let all = garden_ratings();
     let with = dir.path().join("with.jsonl");
     let mut erased = all.clone();
@@ -207,8 +232,9 @@ fn erasure_equals_never_having_seen_the_user() {
     );
     let (s1, s2) = (dir.path().join("s1"), dir.path().join("s2"));
     let summary = common::backfill(&s1, &[&with], &config);
-    assert_eq!(summary.events.get("rating/stale"), Some(&1));
+    assert_eq!(summary.events.count(EventKind::Rating, Outcome::Stale), 1);
     common::backfill(&s2, &[&without], &config);
+    assert!(!named_pairs(&s2).is_empty(), "pairs remain without bo");
     assert_eq!(
         named_pairs(&s1),
         named_pairs(&s2),
@@ -222,7 +248,10 @@ fn erasure_equals_never_having_seen_the_user() {
 #[test]
 fn second_backfill_continues_the_store() {
     let dir = tempfile::tempdir().unwrap();
-    let config: Config = common::config(0.0, 0, 1, 2);
+    let config: Config = common::config(Settings {
+        batch_events: 2,
+        ..Settings::EXACT
+    });
     let lines = garden_ratings();
     let (first, second) = lines.split_at(7);
     let (a, b, both) = (
@@ -256,8 +285,22 @@ fn rebuild_in_one_batch_equals_many_small_batches_exactly() {
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_slice(20_000, &dir.path().join("slice.csv"));
     let (small, large) = (dir.path().join("small"), dir.path().join("large"));
-    common::backfill(&small, &[&csv], &common::config(0.0, 0, 1, 333));
-    common::backfill(&large, &[&csv], &common::config(0.0, 0, 1, 20_000));
+    common::backfill(
+        &small,
+        &[&csv],
+        &common::config(Settings {
+            batch_events: 333,
+            ..Settings::EXACT
+        }),
+    );
+    common::backfill(
+        &large,
+        &[&csv],
+        &common::config(Settings {
+            batch_events: 20_000,
+            ..Settings::EXACT
+        }),
+    );
     let (a, b) = (named_pairs(&small), named_pairs(&large));
     assert!(a.len() > 100_000, "{} pair entries", a.len());
     assert!(a == b, "pair sums differ between batchings");

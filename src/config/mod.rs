@@ -15,6 +15,11 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 
+use simtide_core::decode::Limits;
+use simtide_core::engine::EngineSettings;
+use simtide_core::score::ListSettings;
+pub use simtide_core::score::PurchaseScore;
+
 pub use service::{
     HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, ReadinessConfig, StartPosition,
     StoreConfig,
@@ -49,20 +54,6 @@ pub struct Config {
     pub readiness: ReadinessConfig,
     /// Log line format.
     pub log: LogConfig,
-}
-
-/// Which purchase-signal score ranks items purchased by the same users.
-#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
-#[serde(rename_all = "snake_case")]
-pub enum PurchaseScore {
-    /// Cosine of the binary buyer vectors: co / sqrt(n_a · n_b).
-    #[default]
-    Cosine,
-    /// Jaccard index of the buyer sets: co / (n_a + n_b − co).
-    Jaccard,
-    /// Log-likelihood ratio G² of the 2×2 co-occurrence table (Dunning 1993), written
-    /// `log_likelihood`.
-    LogLikelihood,
 }
 
 /// `[similarity]`: the maths (docs/design.md, "Adjusted cosine over co-raters") and the shape of
@@ -175,6 +166,35 @@ impl Default for RecommendConfig {
 pub const MAX_RATING_RANGE: f64 = 1000.0;
 
 impl Config {
+    /// The settings that shape the stored statistics (part of the store's fingerprint).
+    pub fn engine_settings(&self) -> EngineSettings {
+        EngineSettings {
+            recenter_tolerance: self.similarity.recenter_tolerance,
+            max_items_per_user: self.similarity.max_items_per_user,
+        }
+    }
+
+    /// The settings that turn stored sums into published lists.
+    pub fn list_settings(&self) -> ListSettings {
+        let s = &self.similarity;
+        ListSettings {
+            neighbors: s.neighbors,
+            min_common_users: s.min_common_users,
+            damping: s.damping,
+            min_score: s.min_score,
+            purchase_score: s.purchase_score,
+        }
+    }
+
+    /// The limits every incoming event is validated against.
+    pub fn limits(&self) -> Limits {
+        Limits {
+            max_id_bytes: self.input.max_id_bytes,
+            rating_min: self.similarity.rating_min,
+            rating_max: self.similarity.rating_max,
+        }
+    }
+
     /// Loads the file (if given), applies `SIMTIDE_*` overrides from the process
     /// environment, and validates the result.
     pub fn load(path: Option<&Path>) -> Result<Config> {

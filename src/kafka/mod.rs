@@ -1,6 +1,15 @@
-//! Everything that speaks Kafka: client construction and logging, the producer that
-//! knows what was delivered, and topic creation. Nothing here knows similarity maths.
+//! Everything that speaks Kafka: client construction and logging (`client`), the message
+//! copied out at the boundary (`message`), partitions and offsets (`offsets`), the group
+//! consumer with its rebalance handler (`group`), replaying a topic to its end (`replay`),
+//! the producer that knows what was delivered (`producer`), topic creation and checks
+//! (`topics`), and the in-process cluster of the demo (`in_process`). Nothing here knows
+//! similarity maths or the store.
 
 pub mod client;
+pub mod group;
+pub mod in_process;
+pub mod message;
+pub mod offsets;
 pub mod producer;
+pub mod replay;
 pub mod topics;

@@ -8,24 +8,8 @@ use std::time::Instant;
 use crate::decode::json::decode_json_line;
 use crate::decode::{Limits, RejectReason, Rejection};
 use crate::event::Event;
+use crate::kafka::message::InMessage;
 use crate::kafka::producer::OutRecord;
-
-/// A consumed message, copied out of the client's buffer.
-#[derive(Debug, Clone, PartialEq)]
-pub struct InMessage {
-    /// Partition it came from.
-    pub partition: i32,
-    /// Its offset.
-    pub offset: i64,
-    /// Record key (the user id by contract).
-    pub key: Option<Vec<u8>>,
-    /// Record value (one JSON event).
-    pub value: Option<Vec<u8>>,
-    /// Record headers, in order.
-    pub headers: Vec<(String, Vec<u8>)>,
-    /// Record timestamp, milliseconds since the epoch, when the broker gave one.
-    pub timestamp_ms: Option<i64>,
-}
 
 /// A message that failed validation, kept whole for the dead-letter topic.
 #[derive(Debug, Clone)]
@@ -170,7 +154,7 @@ mod tests {
 
     #[test]
     fn offsets_advance_past_every_message_and_rejections_keep_the_original() {
-        let limits = Limits::from_config(&crate::config::Config::default());
+        let limits = crate::config::Config::default().limits();
         let mut b = PendingBatch::default();
         let good = br#"{"kind":"rating","user":"u1","item":"rake","value":4,"at":"2026-05-01T10:00:00Z"}"#;
         b.take(message(0, 7, good), &limits);

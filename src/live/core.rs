@@ -3,32 +3,38 @@
 //! [`Core::flush`], so a batch is committed the same way whoever ends it.
 
 use std::collections::BTreeMap;
-use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
 
-use super::batch::{InMessage, PendingBatch};
+use super::batch::PendingBatch;
 use super::latency::LatencyRecorder;
 use crate::config::Config;
 use crate::decode::Limits;
+use crate::engine::tally::EventTally;
 use crate::engine::EngineSettings;
 use crate::health::Health;
+use crate::kafka::message::InMessage;
 use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::metrics::Metrics;
+use crate::model::PublishedList;
 use crate::observe::{DeliveredList, Observation};
-use crate::pipeline::{apply_and_commit, event_counter_key};
+use crate::pipeline::apply_and_commit;
 use crate::publish::{Cycle, CycleReport};
 use crate::record::NeighborRecord;
+use crate::retry::Backoff;
 use crate::score::ListSettings;
+use crate::shutdown::Shutdown;
 use crate::signal::Signal;
-use crate::store::codec::PublishedList;
-use crate::store::{Delivery, Store};
-use crate::timefmt::now_nanos;
+use crate::store::{Delivery, MarkAfterWrite, Store};
+use crate::timefmt::{now_nanos, NANOS_PER_MILLI};
+
+/// First pause before retrying a failing store write or delivery.
+const FIRST_RETRY_WAIT: Duration = Duration::from_millis(200);
 
 /// Longest pause between two retries of a failing store write or delivery.
-const MAX_BACKOFF: Duration = Duration::from_secs(30);
+const LONGEST_RETRY_WAIT: Duration = Duration::from_secs(30);
 
 /// Lists produced per delivery when republishing the whole store.
 const REPUBLISH_CHUNK: usize = 2000;
@@ -50,8 +56,8 @@ pub enum Flushed {
 pub struct RunCounters {
     /// Messages consumed and committed.
     pub messages: u64,
-    /// Accepted events by `kind/outcome`.
-    pub events: BTreeMap<String, u64>,
+    /// Accepted events by kind and outcome.
+    pub events: EventTally,
     /// Dead letters delivered, by reason code.
     pub dead_letters: BTreeMap<String, u64>,
     /// Batches committed.
@@ -66,14 +72,10 @@ pub struct RunCounters {
 
 /// The service state.
 pub struct Core {
-    /// The store.
-    pub store: Store,
-    /// The batch being collected.
-    pub pending: PendingBatch,
-    /// This run's counters.
-    pub counters: RunCounters,
-    /// Event-to-publication latency of this run.
-    pub latency: LatencyRecorder,
+    store: Store,
+    pending: PendingBatch,
+    counters: RunCounters,
+    latency: LatencyRecorder,
     engine: EngineSettings,
     lists: ListSettings,
     limits: Limits,
@@ -81,52 +83,50 @@ pub struct Core {
     producer: Arc<RecordProducer>,
     health: Arc<Health>,
     metrics: Arc<Metrics>,
-    stopping: Arc<AtomicBool>,
+    shutdown: Shutdown,
     /// Record timestamps of committed messages not yet covered by a publication.
     unpublished_ms: Vec<i64>,
 }
 
-/// Waits before the next attempt, doubling up to [`MAX_BACKOFF`]; false when the
-/// deadline would pass first or shutdown began (checked every 100 ms of the wait).
-fn back_off(delay: &mut Duration, deadline: Option<Instant>, stopping: &AtomicBool) -> bool {
-    let until = Instant::now() + *delay;
-    if deadline.is_some_and(|d| until > d) {
-        return false;
-    }
-    while Instant::now() < until {
-        if stopping.load(Ordering::Relaxed) {
-            return false;
-        }
-        std::thread::sleep(Duration::from_millis(100).min(until.saturating_duration_since(Instant::now())));
-    }
-    *delay = (*delay * 2).min(MAX_BACKOFF);
-    true
-}
-
 impl Core {
-    /// Wraps an open store. Retries end early once `stopping` is set.
+    /// Wraps an open store. Retries end early once shutdown begins.
     pub fn new(
         store: Store,
         config: &Config,
         producer: Arc<RecordProducer>,
         health: Arc<Health>,
         metrics: Arc<Metrics>,
-        stopping: Arc<AtomicBool>,
+        shutdown: Shutdown,
     ) -> Core {
         Core {
             store,
             pending: PendingBatch::default(),
             counters: RunCounters::default(),
             latency: LatencyRecorder::default(),
-            engine: EngineSettings::from_config(config),
-            lists: ListSettings::from_config(config),
-            limits: Limits::from_config(config),
+            engine: config.engine_settings(),
+            lists: config.list_settings(),
+            limits: config.limits(),
             config: config.clone(),
             producer,
             health,
             metrics,
-            stopping,
+            shutdown,
             unpublished_ms: Vec::new(),
+        }
+    }
+
+    /// Compacts the whole store (an operator asked for it).
+    pub fn compact_store(&self) {
+        self.store.compact();
+    }
+
+    /// What the run did so far, for the report printed at exit.
+    pub fn report(&self, seconds: f64) -> super::RunReport {
+        super::RunReport {
+            counters: self.counters.clone(),
+            latency_p50_ms: self.latency.quantile_ms(0.5),
+            latency_p99_ms: self.latency.quantile_ms(0.99),
+            seconds,
         }
     }
 
@@ -144,7 +144,7 @@ impl Core {
     /// The store's next offsets for the input topic.
     pub fn stored_offsets(&self) -> BTreeMap<i32, i64> {
         self.store
-            .progress()
+            .ledger()
             .offsets
             .get(&self.config.kafka.input_topic)
             .cloned()
@@ -181,42 +181,19 @@ impl Core {
         if self.pending.is_empty() {
             return Flushed::Nothing;
         }
-        let kafka = &self.config.kafka;
-        let mut letters: Vec<OutRecord> = self
-            .pending
-            .rejected
-            .iter()
-            .map(|r| r.dead_letter(&kafka.input_topic, &kafka.dead_letter_topic))
-            .collect();
-        let mut delay = Duration::from_millis(200);
-        while !letters.is_empty() {
-            let report = self.deliver(&letters);
-            if report.all_delivered() {
-                break;
-            }
-            Observation::DeliveryFailed {
-                what: "dead letters",
-                count: report.failed.len(),
-                first_reason: &report.failed[0].1,
-            }
-            .emit(&self.metrics);
-            self.metrics.note_batch_stalled();
-            let failed: Vec<usize> = report.failed.iter().map(|(i, _)| *i).collect();
-            letters = failed.into_iter().map(|i| letters[i].clone()).collect();
-            if !back_off(&mut delay, deadline, &self.stopping) {
-                return self.abandon();
-            }
+        if !self.deliver_dead_letters(deadline) {
+            return self.abandon();
         }
         let rejects = self.pending.reject_counts();
         if !rejects.is_empty() {
             Observation::DeadLettersDelivered { by_reason: &rejects }.emit(&self.metrics);
         }
         let started = Instant::now();
-        let topic = kafka.input_topic.clone();
+        let topic = self.config.kafka.input_topic.clone();
         let offsets = self.pending.next_offsets.clone();
-        let mut delay = Duration::from_millis(200);
+        let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
         let summary = loop {
-            let advance = |p: &mut crate::store::Progress| {
+            let advance = |p: &mut crate::store::Ledger| {
                 let stored = p.offsets.entry(topic.clone()).or_default();
                 for (&partition, &next) in &offsets {
                     stored.insert(partition, next);
@@ -235,7 +212,7 @@ impl Core {
                     Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
                     self.metrics.note_batch_stalled();
                     self.health.set_store_error(Some(text));
-                    if !back_off(&mut delay, deadline, &self.stopping) {
+                    if !backoff.wait(deadline, &self.shutdown) {
                         return self.abandon();
                     }
                 }
@@ -246,13 +223,7 @@ impl Core {
         let batch = std::mem::take(&mut self.pending);
         self.counters.messages += batch.messages as u64;
         self.counters.batches += 1;
-        for (&(kind, outcome), &n) in &summary.outcomes {
-            *self
-                .counters
-                .events
-                .entry(event_counter_key(kind, outcome))
-                .or_default() += n;
-        }
+        self.counters.events.absorb(&summary.outcomes);
         for (reason, &n) in &rejects {
             *self
                 .counters
@@ -278,6 +249,37 @@ impl Core {
         Flushed::Committed(offsets)
     }
 
+    /// Delivers the pending batch's dead letters, retrying what the broker did not take
+    /// until `deadline`; false when it gave up (deadline or shutdown).
+    fn deliver_dead_letters(&self, deadline: Option<Instant>) -> bool {
+        let kafka = &self.config.kafka;
+        let mut letters: Vec<OutRecord> = self
+            .pending
+            .rejected
+            .iter()
+            .map(|r| r.dead_letter(&kafka.input_topic, &kafka.dead_letter_topic))
+            .collect();
+        let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
+        while !letters.is_empty() {
+            let report = self.deliver(&letters);
+            if report.all_delivered() {
+                return true;
+            }
+            Observation::DeliveryFailed {
+                what: "dead letters",
+                count: report.failed.len(),
+                first_reason: &report.failed[0].1,
+            }
+            .emit(&self.metrics);
+            self.metrics.note_batch_stalled();
+            letters = report.failed.iter().map(|(i, _)| letters[*i].clone()).collect();
+            if !backoff.wait(deadline, &self.shutdown) {
+                return false;
+            }
+        }
+        true
+    }
+
     /// Produces `records` and tells readiness, per topic, whether the broker took them.
     fn deliver(&self, records: &[OutRecord]) -> DeliveryReport {
         let report = self.producer.deliver(records, self.config.live.delivery_timeout);
@@ -293,11 +295,10 @@ impl Core {
     }
 
     fn abandon(&mut self) -> Flushed {
-        self.metrics.clear_batch_stalled();
-        tracing::warn!(
-            messages = self.pending.messages,
-            "batch dropped before commit; it will be consumed again from the stored positions"
-        );
+        Observation::BatchAbandoned {
+            messages: self.pending.messages,
+        }
+        .emit(&self.metrics);
         self.pending = PendingBatch::default();
         Flushed::Abandoned
     }
@@ -394,7 +395,7 @@ impl Core {
             let mut failed = vec![false; changed.len()];
             for (k, _) in &report.failed {
                 failed[*k] = true;
-                writes[changed[*k]].redirty = true;
+                writes[changed[*k]].mark = MarkAfterWrite::Renew;
             }
             for (k, &i) in changed.iter().enumerate().filter(|(k, _)| !failed[*k]) {
                 delivered.push(DeliveredList {
@@ -431,7 +432,7 @@ impl Core {
             seconds: started.elapsed().as_secs_f64(),
         }
         .emit(&self.metrics);
-        let delivered_ms = now_nanos() / 1_000_000;
+        let delivered_ms = now_nanos() / NANOS_PER_MILLI;
         if undelivered == 0 {
             self.latency.record_all(&covered, delivered_ms);
             self.metrics.set_published_watermark(cycle.watermark());
@@ -445,13 +446,11 @@ impl Core {
 
     /// Items and users, from memory.
     fn refresh_counts(&self) {
-        let m = &self.metrics;
-        m.entities
-            .with_label_values(&["items"])
-            .set(self.store.item_count() as i64);
-        m.entities
-            .with_label_values(&["users"])
-            .set(i64::from(self.store.progress().next_user));
+        Observation::CatalogueCounted {
+            items: self.store.item_count() as u64,
+            users: u64::from(self.store.ledger().next_user),
+        }
+        .emit(&self.metrics);
     }
 
     /// Brings the store-derived gauges up to date: pending changes (a scan of the dirty
@@ -466,19 +465,8 @@ impl Core {
             .emit(m),
         }
         if let Ok(stats) = self.store.stats() {
-            m.store_bytes.set(stats.sst_bytes as i64);
-            m.pending_compaction_bytes
-                .set(stats.pending_compaction_bytes as i64);
-            m.disk_available_bytes.set(stats.disk_available_bytes as i64);
-            m.entities
-                .with_label_values(&["rating_pairs"])
-                .set(stats.rating_pairs_estimate as i64);
+            Observation::StoreMeasured { stats: &stats }.emit(m);
         }
-        m.entities
-            .with_label_values(&["items"])
-            .set(self.store.item_count() as i64);
-        m.entities
-            .with_label_values(&["users"])
-            .set(i64::from(self.store.progress().next_user));
+        self.refresh_counts();
     }
 }

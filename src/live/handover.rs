@@ -3,20 +3,14 @@
 //! explicit offsets — so that history and stream neither overlap nor leave a gap.
 
 use std::collections::BTreeMap;
-use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
-use rdkafka::consumer::{BaseConsumer, Consumer};
-use rdkafka::{Offset, TopicPartitionList};
 
 use crate::config::{Config, KafkaConfig};
-use crate::engine::EngineSettings;
-use crate::kafka::client::{base_config, describe_error, BusContext};
+use crate::kafka::client::BusContext;
+use crate::kafka::offsets::{OffsetsClient, REQUEST_TIMEOUT};
 use crate::pipeline::apply_and_commit;
 use crate::store::Store;
-
-/// How long each metadata or offset request may take.
-const REQUEST_TIMEOUT: Duration = Duration::from_secs(15);
 
 /// Where the live stream should begin.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -54,75 +48,35 @@ pub fn parse_offsets(text: &str) -> Result<BTreeMap<i32, i64>> {
     Ok(out)
 }
 
-/// The partitions of a topic, from the broker.
-pub fn partitions_of(client: &BaseConsumer<BusContext>, topic: &str) -> Result<Vec<i32>> {
-    let metadata = client
-        .fetch_metadata(Some(topic), REQUEST_TIMEOUT)
-        .with_context(|| format!("cannot read the metadata of topic {topic}"))?;
-    let partitions: Vec<i32> = metadata
-        .topics()
-        .iter()
-        .filter(|t| t.name() == topic && t.error().is_none())
-        .flat_map(|t| t.partitions().iter().map(|p| p.id()))
-        .collect();
-    if partitions.is_empty() {
-        bail!("topic {topic} does not exist or has no partitions");
-    }
-    Ok(partitions)
-}
-
-/// A metadata and offset client (no group).
-pub fn offsets_client(kafka: &KafkaConfig, bus: &BusContext) -> Result<BaseConsumer<BusContext>> {
-    base_config(kafka)
-        .create_with_context(bus.clone())
-        .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka offsets client", &e))
-}
-
 /// Resolves a start request to a next offset for every partition of the input topic.
 pub fn resolve(kafka: &KafkaConfig, bus: &BusContext, request: &StartRequest) -> Result<BTreeMap<i32, i64>> {
-    let client = offsets_client(kafka, bus)?;
+    let client = OffsetsClient::new(kafka, bus)?;
     let topic = &kafka.input_topic;
-    let partitions = partitions_of(&client, topic)?;
-    let mut out = BTreeMap::new();
     match request {
         StartRequest::Offsets(given) => {
+            let partitions = client.partitions(topic)?;
             for p in given.keys() {
                 if !partitions.contains(p) {
                     bail!("--start-offsets: topic {topic} has no partition {p}");
                 }
             }
+            let mut out = BTreeMap::new();
             for &p in &partitions {
-                let (low, _) = client.fetch_watermarks(topic, p, REQUEST_TIMEOUT)?;
+                let (low, _) = client.watermarks(topic, p, REQUEST_TIMEOUT)?;
                 out.insert(p, given.get(&p).copied().unwrap_or(low));
             }
+            Ok(out)
         }
-        StartRequest::AtTime(ms) => {
-            let mut query = TopicPartitionList::new();
-            for &p in &partitions {
-                query.add_partition_offset(topic, p, Offset::Offset(*ms))?;
-            }
-            let found = client
-                .offsets_for_times(query, REQUEST_TIMEOUT)
-                .with_context(|| format!("cannot look up offsets by time on {topic}"))?;
-            for element in found.elements() {
-                let p = element.partition();
-                let next = match element.offset() {
-                    Offset::Offset(o) => o,
-                    // No message at or after the time: start at the current end.
-                    _ => client.fetch_watermarks(topic, p, REQUEST_TIMEOUT)?.1,
-                };
-                out.insert(p, next);
-            }
-        }
+        // No message at or after the time: a partition starts at its current end.
+        StartRequest::AtTime(ms) => client.offsets_at_time(topic, *ms),
     }
-    Ok(out)
 }
 
 /// Writes the start positions into the store. Refused when the store already consumed
 /// the topic: moving an existing position could apply events twice or skip some.
 pub fn write_start(store: &mut Store, config: &Config, offsets: BTreeMap<i32, i64>) -> Result<()> {
     let topic = config.kafka.input_topic.clone();
-    if let Some(existing) = store.progress().offsets.get(&topic) {
+    if let Some(existing) = store.ledger().offsets.get(&topic) {
         bail!(
             "store {} already holds positions for topic {topic} ({}); a start position is only for a store that never consumed it",
             store.dir().display(),
@@ -133,7 +87,7 @@ pub fn write_start(store: &mut Store, config: &Config, offsets: BTreeMap<i32, i6
                 .join(",")
         );
     }
-    let settings = EngineSettings::from_config(config);
+    let settings = config.engine_settings();
     tracing::info!(
         topic = %topic,
         positions = %offsets.iter().map(|(p, o)| format!("{p}:{o}")).collect::<Vec<_>>().join(","),

@@ -1,38 +1,45 @@
 //! `simtide run`: the long-running service (docs/design.md: "Data flow", "Storage",
-//! "Publication", "Failure model"). One loop consumes micro-batches (bounded by count and
-//! age), commits each as one store write holding its next offsets, commits group offsets
-//! after it for external lag tools, and runs a publication cycle every `publish.interval`.
-//! SIGTERM/SIGINT end it cleanly: stop fetching, commit the batch in flight, publish what
-//! is pending, leave.
+//! "Publication", "Failure model"). Its state machine runs on the calling thread, never on
+//! an async worker: one loop polls the group consumer, collects micro-batches (bounded by
+//! count and age), commits each as one store write holding its next offsets, commits
+//! group offsets after it for external lag tools, and runs a publication cycle every
+//! `publish.interval`. Store writes, blocking deliveries and retry back-offs happen on
+//! this thread. A small tokio runtime serves HTTP, signals and the topic checks (the Kafka
+//! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
+//! commits the batch in flight and publishes what is pending.
 
 pub mod batch;
-pub mod consumer;
 pub mod core;
 pub mod handover;
 pub mod latency;
+pub mod positions;
 
 use std::fmt;
 use std::path::PathBuf;
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::Ordering;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
-use rdkafka::consumer::{CommitMode, Consumer};
-use tokio::sync::{watch, Semaphore};
+use tokio::sync::Semaphore;
 
 use self::core::{Core, Flushed, RunCounters};
+use self::positions::StorePositions;
 use crate::config::secrets::Scrubber;
 use crate::config::Config;
+use crate::exit::SHUTDOWN_OVERRAN;
 use crate::health::Health;
 use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
+use crate::kafka::group::GroupConsumer;
+use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::producer::RecordProducer;
 use crate::kafka::topics::{compaction_warnings, ensure_topics};
 use crate::lookup::LookupStore;
 use crate::metrics::Metrics;
 use crate::observe::Observation;
-use crate::score::ListSettings;
+use crate::retry::Backoff;
+use crate::shutdown::Shutdown;
 use crate::store::Store;
 use handover::StartRequest;
 
@@ -42,6 +49,9 @@ const PROBE_EVERY: Duration = Duration::from_secs(2);
 /// Longest idle wait for a message before the loop looks at its timers again.
 const IDLE_WAIT: Duration = Duration::from_millis(500);
 
+/// Longest single poll: how soon the loop notices that shutdown began.
+const LONGEST_POLL: Duration = Duration::from_millis(100);
+
 /// What `run` was asked beyond the configuration.
 #[derive(Debug, Clone, Default)]
 pub struct RunOptions {
@@ -49,6 +59,18 @@ pub struct RunOptions {
     pub store_dir: Option<PathBuf>,
     /// Where the stream starts for a store that never consumed the input topic.
     pub start: Option<StartRequest>,
+    /// Whether SIGTERM and SIGINT begin shutdown.
+    pub signals: SignalHandling,
+}
+
+/// Whether the service listens for SIGTERM and SIGINT itself.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub enum SignalHandling {
+    /// SIGTERM and SIGINT begin shutdown (`simtide run`).
+    #[default]
+    Listen,
+    /// The caller begins shutdown (the demo, which runs the service on a thread).
+    Ignore,
 }
 
 /// What a run did, printed when it ends.
@@ -75,9 +97,7 @@ impl fmt::Display for RunReport {
             c.messages,
             c.messages as f64 / secs
         )?;
-        for (key, n) in &c.events {
-            writeln!(f, "    {key:<24}{n:>10}")?;
-        }
+        write!(f, "{}", c.events)?;
         let dead: u64 = c.dead_letters.values().sum();
         writeln!(f, "  dead letters       {dead:>10}")?;
         for (reason, n) in &c.dead_letters {
@@ -100,36 +120,27 @@ impl fmt::Display for RunReport {
 }
 
 /// Keeps the broker flag current by asking for metadata every [`PROBE_EVERY`], and the
-/// per-partition lag gauge from the input topic's high watermarks.
+/// per-partition lag gauge from the input topic's high watermarks, until shutdown.
 fn spawn_broker_probe(
     config: &Config,
     bus: &BusContext,
     metrics: Arc<Metrics>,
-    stop: watch::Receiver<bool>,
+    shutdown: Shutdown,
 ) -> Result<()> {
-    let client = handover::offsets_client(&config.kafka, bus)?;
+    let client = OffsetsClient::new(&config.kafka, bus)?;
     let topic = config.kafka.input_topic.clone();
     let brokers = bus.brokers().clone();
     std::thread::Builder::new()
         .name("simtide-broker-probe".into())
-        .spawn(move || {
-            while !*stop.borrow() {
-                let partitions = handover::partitions_of(&client, &topic);
-                brokers.set_reachable(partitions.is_ok());
-                metrics.broker_up.set(i64::from(brokers.reachable()));
-                if let Ok(partitions) = partitions {
-                    let high: std::collections::BTreeMap<i32, i64> = partitions
-                        .into_iter()
-                        .filter_map(|p| {
-                            client
-                                .fetch_watermarks(&topic, p, PROBE_EVERY)
-                                .ok()
-                                .map(|(_, h)| (p, h))
-                        })
-                        .collect();
-                    metrics.set_lag_from_watermarks(&high);
-                }
-                std::thread::sleep(PROBE_EVERY);
+        .spawn(move || loop {
+            let high = client.high_watermarks(&topic, PROBE_EVERY);
+            brokers.set_reachable(high.is_ok());
+            metrics.broker_up.set(i64::from(brokers.reachable()));
+            if let Ok(high) = high {
+                metrics.set_lag_from_watermarks(&high);
+            }
+            if !shutdown.sleep(PROBE_EVERY) {
+                break;
             }
         })?;
     Ok(())
@@ -151,11 +162,11 @@ async fn keep_topics_checked(
     bus: BusContext,
     health: Arc<Health>,
     metrics: Arc<Metrics>,
-    mut stop: watch::Receiver<bool>,
+    shutdown: Shutdown,
 ) {
-    let mut backoff = TOPIC_CHECK_FIRST_WAIT;
+    let mut backoff = Backoff::new(TOPIC_CHECK_FIRST_WAIT, TOPIC_CHECK_MAX_WAIT);
     let mut compaction_checked = false;
-    while !*stop.borrow() {
+    while !shutdown.is_begun() {
         let checked = tokio::time::timeout(TOPIC_CHECK_MAX_WAIT, ensure_topics(&kafka, &bus))
             .await
             .unwrap_or_else(|_| Err(anyhow::anyhow!("no answer within {TOPIC_CHECK_MAX_WAIT:?}")));
@@ -188,39 +199,45 @@ async fn keep_topics_checked(
             }
         }
         let pause = if all_exist {
-            backoff = TOPIC_CHECK_FIRST_WAIT;
+            backoff.reset();
             TOPIC_CHECK_MAX_WAIT
         } else {
-            let pause = backoff;
-            backoff = (backoff * 2).min(TOPIC_CHECK_MAX_WAIT);
-            pause
+            backoff.next_delay()
         };
-        if let Ok(Err(_)) = tokio::time::timeout(pause, stop.changed()).await {
-            break; // the service is gone
+        if !shutdown.sleep_async(pause).await {
+            break;
         }
     }
 }
 
-/// Exits the process if shutdown overruns its bound. The store needs no cleanup: every
-/// committed batch is in its write-ahead log, and an uncommitted one is consumed again.
-fn arm_shutdown_watchdog(limit: Duration) {
-    std::thread::spawn(move || {
-        std::thread::sleep(limit);
-        tracing::error!(
-            seconds = limit.as_secs_f64(),
-            "shutdown did not finish within live.shutdown_timeout; exiting now (committed state is safe)"
-        );
-        std::process::exit(3);
-    });
+/// A started service: the store open, HTTP listening, the consumer subscribed.
+pub struct Service {
+    config: Config,
+    shutdown: Shutdown,
+    started: Instant,
+    /// Serves HTTP, signals and the topic checks; dropped (and stopped) with the service.
+    runtime: tokio::runtime::Runtime,
+    core: Arc<Mutex<Core>>,
+    consumer: GroupConsumer<StorePositions>,
+    health: Arc<Health>,
+    metrics: Arc<Metrics>,
+    admin: Arc<AdminRequests>,
+    /// Whether the output topics hold every stored list.
+    in_sync: bool,
 }
 
-/// Runs the service until `stop` turns true. Returns what the run did.
-pub async fn run_service(
-    config: &Config,
-    options: RunOptions,
-    mut stop: watch::Receiver<bool>,
-) -> Result<RunReport> {
+/// Opens the store, starts HTTP, the probes and (with [`SignalHandling::Listen`]) the
+/// signal listener, and subscribes to the input topic.
+pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result<Service> {
     let started = Instant::now();
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .thread_name("simtide-async")
+        .enable_all()
+        .build()?;
+    if options.signals == SignalHandling::Listen {
+        runtime.spawn(begin_shutdown_on_signal(shutdown.clone()));
+    }
     let scrubber = Arc::new(Scrubber::of(config));
     let brokers = Arc::new(BrokerState::default());
     let bus = BusContext::new(brokers.clone(), scrubber);
@@ -232,54 +249,31 @@ pub async fn run_service(
         .clone()
         .unwrap_or_else(|| PathBuf::from(&config.store.dir));
     let lookups = Arc::new(LookupStore::new());
-    let listener = crate::http::bind(&config.http.listen).await?;
-    tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
-    let http = tokio::spawn(crate::http::serve(
-        listener,
-        HttpState {
-            health: health.clone(),
-            metrics: metrics.clone(),
-            lookups: lookups.clone(),
-            lookup_places: Arc::new(Semaphore::new(config.http.max_concurrent_lookups)),
-            request_timeout: config.http.request_timeout,
-            max_id_bytes: config.input.max_id_bytes,
-            lists: ListSettings::from_config(config),
-            admin_token: config.http.admin_token.clone(),
-            admin: admin.clone(),
-        },
-    ));
-
+    start_http(
+        &runtime,
+        config,
+        health.clone(),
+        metrics.clone(),
+        lookups.clone(),
+        admin.clone(),
+    )?;
     let mut store = Store::open(&store_dir, config)?;
     lookups.attach(store.view());
     if let Some(request) = &options.start {
-        let (kafka, b, r) = (config.kafka.clone(), bus.clone(), request.clone());
-        let offsets = tokio::task::spawn_blocking(move || handover::resolve(&kafka, &b, &r)).await??;
+        let offsets = handover::resolve(&config.kafka, &bus, request)?;
         handover::write_start(&mut store, config, offsets)?;
     }
     // Topic checks run beside consumption, so a broker that is away or slow never delays
     // start-up; until every written topic exists, readiness names the missing ones.
-    tokio::spawn(keep_topics_checked(
+    runtime.spawn(keep_topics_checked(
         config.kafka.clone(),
         bus.clone(),
         health.clone(),
         metrics.clone(),
-        stop.clone(),
+        shutdown.clone(),
     ));
-    spawn_broker_probe(config, &bus, metrics.clone(), stop.clone())?;
+    spawn_broker_probe(config, &bus, metrics.clone(), shutdown.clone())?;
 
-    // Retry loops (store writes, deliveries) give up once shutdown begins.
-    let stopping = Arc::new(AtomicBool::new(false));
-    {
-        let (mut stop, stopping) = (stop.clone(), stopping.clone());
-        tokio::spawn(async move {
-            while !*stop.borrow() {
-                if stop.changed().await.is_err() {
-                    break;
-                }
-            }
-            stopping.store(true, Ordering::Relaxed);
-        });
-    }
     let producer = Arc::new(RecordProducer::new(&config.kafka, bus.clone())?);
     let core = Arc::new(Mutex::new(Core::new(
         store,
@@ -287,14 +281,17 @@ pub async fn run_service(
         producer,
         health.clone(),
         metrics.clone(),
-        stopping,
+        shutdown.clone(),
     )));
-    core.lock().expect("core lock").seed_positions();
-    let consumer = consumer::subscribe(
+    let in_sync = {
+        let c = core.lock().expect("core lock");
+        c.seed_positions();
+        c.outputs_in_sync()?
+    };
+    let consumer = GroupConsumer::subscribe(
         &config.kafka,
-        bus.clone(),
-        core.clone(),
-        health.clone(),
+        bus,
+        StorePositions::new(core.clone(), health.clone()),
         config.live.shutdown_timeout,
     )?;
     tracing::info!(
@@ -303,90 +300,154 @@ pub async fn run_service(
         group = %config.kafka.group,
         "consuming"
     );
-
-    let interval = config.publish.interval;
-    let mut next_publish = Instant::now() + interval;
-    let mut in_sync = core.lock().expect("core lock").outputs_in_sync()?;
-    loop {
-        let wake = {
-            let c = core.lock().expect("core lock");
-            c.batch_deadline()
-                .unwrap_or(Instant::now() + IDLE_WAIT)
-                .min(next_publish)
-        };
-        tokio::select! {
-            changed = stop.changed() => {
-                if changed.is_err() || *stop.borrow() {
-                    break;
-                }
-            }
-            received = tokio::time::timeout_at(wake.into(), consumer.recv()) => match received {
-                Ok(Ok(message)) => core.lock().expect("core lock").take(consumer::copy_message(&message)),
-                Ok(Err(e)) => Observation::ConsumeFailed {
-                    error: &bus.scrubber().scrub(&e.to_string()),
-                }
-                .emit(&metrics),
-                Err(_) => {}
-            },
-        }
-        let flushed = core.lock().expect("core lock").flush_if_due();
-        commit_group_offsets(&consumer, &config.kafka.input_topic, flushed);
-        if admin.compact.swap(false, Ordering::Relaxed) {
-            tracing::info!("compacting the store on request");
-            core.lock().expect("core lock").store.compact();
-        }
-        if admin.republish.swap(false, Ordering::Relaxed) {
-            in_sync = false;
-            next_publish = Instant::now();
-        }
-        if admin.publish.swap(false, Ordering::Relaxed) {
-            next_publish = Instant::now();
-        }
-        if Instant::now() >= next_publish {
-            let mut c = core.lock().expect("core lock");
-            if !in_sync {
-                in_sync = c.republish_all()?;
-            }
-            c.publish()?;
-            next_publish = Instant::now() + interval;
-        }
-    }
-
-    tracing::info!("stopping: committing the batch in flight and publishing pending lists");
-    health.set_stopping();
-    arm_shutdown_watchdog(config.live.shutdown_timeout);
-    let deadline = Instant::now() + config.live.shutdown_timeout;
-    {
-        let flushed = core.lock().expect("core lock").flush(Some(deadline));
-        commit_group_offsets(&consumer, &config.kafka.input_topic, flushed);
-        let mut c = core.lock().expect("core lock");
-        if !in_sync {
-            c.republish_all()?;
-        }
-        c.publish()?;
-    }
-    drop(consumer);
-    http.abort();
-    let c = core.lock().expect("core lock");
-    Ok(RunReport {
-        counters: c.counters.clone(),
-        latency_p50_ms: c.latency.quantile_ms(0.5),
-        latency_p99_ms: c.latency.quantile_ms(0.99),
-        seconds: started.elapsed().as_secs_f64(),
+    Ok(Service {
+        config: config.clone(),
+        shutdown,
+        started,
+        runtime,
+        core,
+        consumer,
+        health,
+        metrics,
+        admin,
+        in_sync,
     })
 }
 
-/// Commits group offsets after a store write (asynchronously: they only inform external
-/// lag tools; the store holds the truth).
-fn commit_group_offsets<C: Consumer<X>, X: rdkafka::consumer::ConsumerContext>(
-    consumer: &C,
-    topic: &str,
-    flushed: Flushed,
-) {
-    if let Flushed::Committed(offsets) = flushed {
-        let list = consumer::offsets_list(topic, &offsets);
-        if let Err(e) = consumer.commit(&list, CommitMode::Async) {
-            tracing::debug!(error = %e, "group offset commit not sent");
+/// Binds the HTTP listener and serves it on the runtime.
+fn start_http(
+    runtime: &tokio::runtime::Runtime,
+    config: &Config,
+    health: Arc<Health>,
+    metrics: Arc<Metrics>,
+    lookups: Arc<LookupStore>,
+    admin: Arc<AdminRequests>,
+) -> Result<()> {
+    let listener = runtime.block_on(crate::http::bind(&config.http.listen))?;
+    tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
+    runtime.spawn(crate::http::serve(
+        listener,
+        HttpState {
+            health,
+            metrics,
+            lookups,
+            lookup_places: Arc::new(Semaphore::new(config.http.max_concurrent_lookups)),
+            request_timeout: config.http.request_timeout,
+            max_id_bytes: config.input.max_id_bytes,
+            lists: config.list_settings(),
+            admin_token: config.http.admin_token.clone(),
+            admin,
+        },
+    ));
+    Ok(())
+}
+
+/// Begins shutdown at the first SIGTERM or SIGINT.
+async fn begin_shutdown_on_signal(shutdown: Shutdown) {
+    let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+        Ok(s) => s,
+        Err(e) => {
+            tracing::error!(error = %e, "cannot listen for SIGTERM");
+            return;
+        }
+    };
+    tokio::select! {
+        _ = term.recv() => tracing::info!("SIGTERM received"),
+        _ = tokio::signal::ctrl_c() => tracing::info!("SIGINT received"),
+    }
+    shutdown.begin();
+}
+
+impl Service {
+    fn core(&self) -> std::sync::MutexGuard<'_, Core> {
+        self.core.lock().expect("core lock")
+    }
+
+    /// Consumes, commits and publishes until shutdown begins.
+    pub fn run(&mut self) -> Result<()> {
+        let interval = self.config.publish.interval;
+        let mut next_publish = Instant::now() + interval;
+        while !self.shutdown.is_begun() {
+            let now = Instant::now();
+            let wake = self
+                .core()
+                .batch_deadline()
+                .unwrap_or(now + IDLE_WAIT)
+                .min(next_publish);
+            // The core is not locked here: rebalance callbacks run inside poll and lock it.
+            match self
+                .consumer
+                .poll(wake.saturating_duration_since(now).min(LONGEST_POLL))
+            {
+                Some(Ok(message)) => self.core().take(message),
+                Some(Err(error)) => Observation::ConsumeFailed { error: &error }.emit(&self.metrics),
+                None => {}
+            }
+            let flushed = self.core().flush_if_due();
+            self.commit_group_offsets(flushed);
+            if self.admin.compact.swap(false, Ordering::Relaxed) {
+                tracing::info!("compacting the store on request");
+                self.core().compact_store();
+            }
+            if self.admin.republish.swap(false, Ordering::Relaxed) {
+                self.in_sync = false;
+                next_publish = Instant::now();
+            }
+            if self.admin.publish.swap(false, Ordering::Relaxed) {
+                next_publish = Instant::now();
+            }
+            if Instant::now() >= next_publish {
+                self.publish()?;
+                next_publish = Instant::now() + interval;
+            }
+        }
+        Ok(())
+    }
+
+    /// Republishes everything first when the outputs are not in sync, then runs one
+    /// publication cycle.
+    fn publish(&mut self) -> Result<()> {
+        let mut c = self.core.lock().expect("core lock");
+        if !self.in_sync {
+            self.in_sync = c.republish_all()?;
+        }
+        c.publish()?;
+        Ok(())
+    }
+
+    /// Commits group offsets after a store write.
+    fn commit_group_offsets(&self, flushed: Flushed) {
+        if let Flushed::Committed(offsets) = flushed {
+            self.consumer.commit_positions(&offsets);
         }
     }
+
+    /// Stops consuming, commits the batch in flight and publishes what is pending, within
+    /// `live.shutdown_timeout` (a watchdog ends the process past it); returns what the
+    /// run did.
+    pub fn drain(mut self) -> Result<RunReport> {
+        tracing::info!("stopping: committing the batch in flight and publishing pending lists");
+        self.shutdown.begin();
+        self.health.set_stopping();
+        let limit = self.config.live.shutdown_timeout;
+        let _watchdog = self.shutdown.arm_watchdog(limit, SHUTDOWN_OVERRAN);
+        let flushed = self.core().flush(Some(Instant::now() + limit));
+        self.commit_group_offsets(flushed);
+        self.publish()?;
+        let report = self.core().report(self.started.elapsed().as_secs_f64());
+        let Service {
+            runtime, consumer, ..
+        } = self;
+        drop(consumer);
+        runtime.shutdown_background();
+        Ok(report)
+    }
+}
+
+/// Runs the service until `shutdown` begins: [`start`], [`Service::run`],
+/// [`Service::drain`].
+pub fn run_service(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result<RunReport> {
+    let mut service = start(config, options, shutdown)?;
+    service.run()?;
+    service.drain()
 }

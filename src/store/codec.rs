@@ -5,60 +5,37 @@ use anyhow::{bail, Result};
 
 use crate::engine::user_state::{PurchaseEntry, RatingEntry, UserState};
 use crate::engine::ItemStatus;
+use crate::model::{DirtyMark, DirtyScope, Neighbor, PublishedList, RatingPairStats};
 use crate::signal::Signal;
 
-/// Sums of one rating pair, oriented to its key (row item, other item).
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
-pub struct RatingPairStats {
-    /// Co-raters.
-    pub n: i64,
-    /// Σ d_row·d_other, fixed point (see `engine::fixed`).
-    pub dot: i128,
-    /// Σ d_row² over co-raters.
-    pub s_row: i128,
-    /// Σ d_other² over co-raters.
-    pub s_other: i128,
-}
-
-/// Encoded length of [`RatingPairStats`].
+/// Encoded length of a [`RatingPairStats`] value.
 pub const RATING_PAIR_LEN: usize = 8 + 3 * 16;
 
-impl RatingPairStats {
-    /// Fixed 56-byte form.
-    pub fn encode(&self) -> [u8; RATING_PAIR_LEN] {
-        let mut out = [0u8; RATING_PAIR_LEN];
-        out[..8].copy_from_slice(&self.n.to_le_bytes());
-        out[8..24].copy_from_slice(&self.dot.to_le_bytes());
-        out[24..40].copy_from_slice(&self.s_row.to_le_bytes());
-        out[40..56].copy_from_slice(&self.s_other.to_le_bytes());
-        out
-    }
+/// The fixed 56-byte form of a rating pair's sums: n, dot, s_row, s_other.
+pub fn encode_rating_pair(stats: &RatingPairStats) -> [u8; RATING_PAIR_LEN] {
+    let mut out = [0u8; RATING_PAIR_LEN];
+    out[..8].copy_from_slice(&stats.n.to_le_bytes());
+    out[8..24].copy_from_slice(&stats.dot.to_le_bytes());
+    out[24..40].copy_from_slice(&stats.s_row.to_le_bytes());
+    out[40..56].copy_from_slice(&stats.s_other.to_le_bytes());
+    out
+}
 
-    /// Reads the 56-byte form.
-    pub fn decode(bytes: &[u8]) -> Result<RatingPairStats> {
-        if bytes.len() != RATING_PAIR_LEN {
-            bail!(
-                "rating pair value has {} bytes, expected {RATING_PAIR_LEN}",
-                bytes.len()
-            );
-        }
-        let i128_at = |o: usize| i128::from_le_bytes(bytes[o..o + 16].try_into().expect("16 bytes"));
-        Ok(RatingPairStats {
-            n: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
-            dot: i128_at(8),
-            s_row: i128_at(24),
-            s_other: i128_at(40),
-        })
+/// Reads [`encode_rating_pair`]'s form.
+pub fn decode_rating_pair(bytes: &[u8]) -> Result<RatingPairStats> {
+    if bytes.len() != RATING_PAIR_LEN {
+        bail!(
+            "rating pair value has {} bytes, expected {RATING_PAIR_LEN}",
+            bytes.len()
+        );
     }
-
-    /// Field-wise sum; wrapping, as the range argument in `engine::fixed` rules out
-    /// overflow and a merge operator must not panic.
-    pub fn add(&mut self, other: &RatingPairStats) {
-        self.n = self.n.wrapping_add(other.n);
-        self.dot = self.dot.wrapping_add(other.dot);
-        self.s_row = self.s_row.wrapping_add(other.s_row);
-        self.s_other = self.s_other.wrapping_add(other.s_other);
-    }
+    let i128_at = |o: usize| i128::from_le_bytes(bytes[o..o + 16].try_into().expect("16 bytes"));
+    Ok(RatingPairStats {
+        n: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
+        dot: i128_at(8),
+        s_row: i128_at(24),
+        s_other: i128_at(40),
+    })
 }
 
 /// Reads an i64 count value.
@@ -94,10 +71,19 @@ pub fn split_pair_key(key: &[u8]) -> Result<(u32, u32)> {
     ))
 }
 
+/// Leading key byte of a signal in the `dirty` and `published` column families (a prefix
+/// scan of one signal starts here).
+pub fn signal_key_byte(signal: Signal) -> u8 {
+    match signal {
+        Signal::Rating => b'r',
+        Signal::Purchase => b'p',
+    }
+}
+
 /// Key of an item's entry in a per-signal family (`dirty`, `published`).
 pub fn signal_item_key(signal: Signal, item: u32) -> [u8; 5] {
     let mut k = [0u8; 5];
-    k[0] = signal.key_byte();
+    k[0] = signal_key_byte(signal);
     k[1..].copy_from_slice(&item.to_be_bytes());
     k
 }
@@ -107,72 +93,36 @@ pub fn split_signal_item_key(key: &[u8]) -> Result<(Signal, u32)> {
     if key.len() != 5 {
         bail!("signal key has {} bytes, expected 5", key.len());
     }
-    let Some(signal) = Signal::from_key_byte(key[0]) else {
+    let Some(signal) = Signal::ALL.into_iter().find(|s| signal_key_byte(*s) == key[0]) else {
         bail!("unknown signal byte {}", key[0]);
     };
     Ok((signal, u32::from_be_bytes(key[1..].try_into().expect("4 bytes"))))
 }
 
-/// A pending re-score of an item's list.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct DirtyMark {
-    /// Wall-clock time the list first became out of date (nanoseconds).
-    pub since: i64,
-    /// Also re-score every item that lists this one.
-    pub with_neighbors: bool,
+/// Length of an encoded [`DirtyMark`]: the time, then the scope byte.
+const DIRTY_MARK_LEN: usize = 9;
+
+/// The 9-byte form of a dirty mark.
+pub fn encode_dirty_mark(mark: &DirtyMark) -> [u8; DIRTY_MARK_LEN] {
+    let mut k = [0u8; DIRTY_MARK_LEN];
+    k[..8].copy_from_slice(&mark.since.to_le_bytes());
+    k[8] = u8::from(mark.scope == DirtyScope::WithNeighbors);
+    k
 }
 
-impl DirtyMark {
-    /// 9-byte form.
-    pub fn encode(&self) -> [u8; 9] {
-        let mut k = [0u8; 9];
-        k[..8].copy_from_slice(&self.since.to_le_bytes());
-        k[8] = u8::from(self.with_neighbors);
-        k
+/// Reads [`encode_dirty_mark`]'s form.
+pub fn decode_dirty_mark(bytes: &[u8]) -> Result<DirtyMark> {
+    if bytes.len() != DIRTY_MARK_LEN {
+        bail!("dirty mark has {} bytes, expected {DIRTY_MARK_LEN}", bytes.len());
     }
-
-    /// Reads the 9-byte form.
-    pub fn decode(bytes: &[u8]) -> Result<DirtyMark> {
-        if bytes.len() != 9 {
-            bail!("dirty mark has {} bytes, expected 9", bytes.len());
-        }
-        Ok(DirtyMark {
-            since: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
-            with_neighbors: bytes[8] != 0,
-        })
-    }
-
-    /// Combination of two marks: the earlier time, either flag.
-    pub fn combine(&self, other: &DirtyMark) -> DirtyMark {
-        DirtyMark {
-            since: self.since.min(other.since),
-            with_neighbors: self.with_neighbors || other.with_neighbors,
-        }
-    }
-}
-
-/// One entry of a published list, with the dense id of the neighbor.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct StoredNeighbor {
-    /// Dense item id.
-    pub item: u32,
-    /// Its score.
-    pub score: f64,
-    /// Co-raters or co-buyers behind the score.
-    pub support: u64,
-}
-
-/// The last list published for an item and signal.
-#[derive(Debug, Clone, PartialEq)]
-pub struct PublishedList {
-    /// Starts at 1, +1 at every change.
-    pub version: u64,
-    /// Wall-clock time it was computed.
-    pub computed_at: i64,
-    /// Newest event time reflected in the store when it was computed.
-    pub event_time_watermark: Option<i64>,
-    /// Neighbors, best first; empty means a tombstone.
-    pub neighbors: Vec<StoredNeighbor>,
+    Ok(DirtyMark {
+        since: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
+        scope: if bytes[8] != 0 {
+            DirtyScope::WithNeighbors
+        } else {
+            DirtyScope::OwnList
+        },
+    })
 }
 
 const FORMAT_V1: u8 = 1;
@@ -368,7 +318,7 @@ pub fn decode_published(bytes: &[u8]) -> Result<PublishedList> {
     let n = r.u32()? as usize;
     let mut neighbors = Vec::with_capacity(n);
     for _ in 0..n {
-        neighbors.push(StoredNeighbor {
+        neighbors.push(Neighbor {
             item: r.u32()?,
             score: r.f64()?,
             support: r.u64()?,
@@ -417,21 +367,25 @@ mod tests {
     }
 
     #[test]
-    fn pair_stats_round_trip_and_add() {
-        let mut a = RatingPairStats {
+    fn pair_stats_and_marks_round_trip() {
+        let a = RatingPairStats {
             n: 2,
             dot: -5,
             s_row: 1 << 100,
             s_other: 3,
         };
-        assert_eq!(RatingPairStats::decode(&a.encode()).unwrap(), a);
-        a.add(&RatingPairStats {
-            n: -2,
-            dot: 5,
-            s_row: -(1 << 100),
-            s_other: -3,
-        });
-        assert_eq!(a, RatingPairStats::default());
+        assert_eq!(decode_rating_pair(&encode_rating_pair(&a)).unwrap(), a);
+        assert!(decode_rating_pair(&encode_rating_pair(&a)[1..]).is_err());
+        for scope in [DirtyScope::OwnList, DirtyScope::WithNeighbors] {
+            let mark = DirtyMark { since: -7, scope };
+            assert_eq!(decode_dirty_mark(&encode_dirty_mark(&mark)).unwrap(), mark);
+        }
+        for signal in Signal::ALL {
+            assert_eq!(
+                split_signal_item_key(&signal_item_key(signal, 9)).unwrap(),
+                (signal, 9)
+            );
+        }
     }
 
     #[test]
@@ -440,7 +394,7 @@ mod tests {
             version: 3,
             computed_at: 10,
             event_time_watermark: None,
-            neighbors: vec![StoredNeighbor {
+            neighbors: vec![Neighbor {
                 item: 4,
                 score: 0.5,
                 support: 9,

@@ -6,19 +6,23 @@
 use rocksdb::compaction_filter::Decision;
 use rocksdb::MergeOperands;
 
-use super::codec::{decode_count, DirtyMark, RatingPairStats, RATING_PAIR_LEN};
+use super::codec::{
+    decode_count, decode_dirty_mark, decode_rating_pair, encode_dirty_mark, encode_rating_pair,
+    RATING_PAIR_LEN,
+};
+use crate::model::{DirtyMark, RatingPairStats};
 
 /// Sums rating pair statistics field by field. A malformed operand is skipped with an
 /// error log rather than poisoning the key (it can only come from a foreign writer).
 pub fn merge_rating_pairs(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
     let mut total = RatingPairStats::default();
     for bytes in existing.into_iter().chain(operands) {
-        match RatingPairStats::decode(bytes) {
+        match decode_rating_pair(bytes) {
             Ok(delta) => total.add(&delta),
             Err(e) => tracing::error!(error = %e, "skipping malformed rating pair operand"),
         }
     }
-    Some(total.encode().to_vec())
+    Some(encode_rating_pair(&total).to_vec())
 }
 
 /// Sums co-buyer counts.
@@ -37,18 +41,18 @@ pub fn merge_counts(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperan
 pub fn merge_dirty(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
     let mut combined: Option<DirtyMark> = None;
     for bytes in existing.into_iter().chain(operands) {
-        if let Ok(mark) = DirtyMark::decode(bytes) {
+        if let Ok(mark) = decode_dirty_mark(bytes) {
             combined = Some(combined.map_or(mark, |c| c.combine(&mark)));
         }
     }
-    combined.map(|m| m.encode().to_vec())
+    combined.map(|m| encode_dirty_mark(&m).to_vec())
 }
 
 /// Drops pairs whose every contribution was retracted (n = 0), so erased users and cut
 /// items leave no empty keys behind after compaction.
 pub fn drop_empty_pairs(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
     let empty = match value.len() {
-        RATING_PAIR_LEN => RatingPairStats::decode(value).is_ok_and(|s| s.n == 0),
+        RATING_PAIR_LEN => decode_rating_pair(value).is_ok_and(|s| s.n == 0),
         8 => decode_count(value).is_ok_and(|c| c == 0),
         _ => false,
     };

@@ -8,9 +8,9 @@ pub mod live;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-use simtide::backfill::{run_backfill, BackfillRequest, BackfillSummary};
 use simtide::config::Config;
 use simtide::export::export_lists;
+use simtide::ingest::{backfill_files, BackfillRequest, BackfillSummary};
 use simtide::score::RatingSums;
 use simtide::store::Store;
 
@@ -79,20 +79,44 @@ pub fn movielens_slice(rows: usize, out: &Path) -> PathBuf {
 
 /// A configuration for tests: the given tolerance, cut, support and batch size, on the
 /// MovieLens rating scale (0.5–5), which also holds the 1–5 ratings of hand-made data.
-pub fn config(tolerance: f64, cut: usize, min_common_users: u64, batch: u64) -> Config {
+pub fn config(settings: Settings) -> Config {
     let mut c = Config::default();
     c.similarity.rating_min = 0.5;
-    c.similarity.recenter_tolerance = tolerance;
-    c.similarity.max_items_per_user = cut;
-    c.similarity.min_common_users = min_common_users;
-    c.backfill.batch_events = batch;
+    c.similarity.recenter_tolerance = settings.tolerance;
+    c.similarity.max_items_per_user = settings.cut;
+    c.similarity.min_common_users = settings.min_common_users;
+    c.backfill.batch_events = settings.batch_events;
     c.validate().expect("test configuration is valid");
     c
 }
 
+/// The settings tests vary, by name. `EXACT` (tolerance 0, no cut, one common user,
+/// batches of 100) is the base; tests change fields with struct update syntax.
+#[derive(Debug, Clone, Copy)]
+pub struct Settings {
+    /// similarity.recenter_tolerance.
+    pub tolerance: f64,
+    /// similarity.max_items_per_user (0: no cut).
+    pub cut: usize,
+    /// similarity.min_common_users.
+    pub min_common_users: u64,
+    /// backfill.batch_events.
+    pub batch_events: u64,
+}
+
+impl Settings {
+    /// Exact statistics, every pair published, small batches.
+    pub const EXACT: Settings = Settings {
+        tolerance: 0.0,
+        cut: 0,
+        min_common_users: 1,
+        batch_events: 100,
+    };
+}
+
 /// Backfills the inputs into `store` through the library.
 pub fn backfill(store: &Path, inputs: &[&Path], config: &Config) -> BackfillSummary {
-    run_backfill(&BackfillRequest {
+    backfill_files(&BackfillRequest {
         store_dir: store.to_path_buf(),
         inputs: inputs.iter().map(|p| p.to_path_buf()).collect(),
         config: config.clone(),

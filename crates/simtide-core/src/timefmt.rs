@@ -5,6 +5,12 @@ use time::OffsetDateTime;
 
 use crate::event::UnixNanos;
 
+/// Nanoseconds in a millisecond: record timestamps and latencies are in milliseconds.
+pub const NANOS_PER_MILLI: i64 = 1_000_000;
+
+/// Nanoseconds in a second.
+pub const NANOS_PER_SECOND: i64 = 1_000_000_000;
+
 /// Parses RFC 3339 (`2026-05-01T10:00:00Z`, any offset, optional fraction) or a string of
 /// integer Unix seconds. Returns `None` for anything else or for times outside the range
 /// a signed 64-bit nanosecond count can hold (years 1678–2261).
@@ -24,7 +30,7 @@ pub fn parse_event_time(text: &str) -> Option<UnixNanos> {
 
 /// Converts integer Unix seconds, refusing values outside the nanosecond range.
 pub fn unix_seconds_to_nanos(seconds: i64) -> Option<UnixNanos> {
-    seconds.checked_mul(1_000_000_000)
+    seconds.checked_mul(NANOS_PER_SECOND)
 }
 
 /// Formats as RFC 3339 in UTC, e.g. `2026-05-01T10:00:00Z`.

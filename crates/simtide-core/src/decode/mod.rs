@@ -8,7 +8,6 @@ pub mod json;
 
 use std::fmt;
 
-use crate::config::Config;
 use crate::event::{Event, EventBody, EventKind, UnixNanos};
 use crate::timefmt::parse_event_time;
 
@@ -71,11 +70,6 @@ impl RejectReason {
             RejectReason::BadQuantity => "bad_quantity",
         }
     }
-
-    /// Inverse of [`RejectReason::code`].
-    pub fn from_code(code: &str) -> Option<RejectReason> {
-        RejectReason::ALL.into_iter().find(|r| r.code() == code)
-    }
 }
 
 /// A refused record: which field, why, and a sentence for people.
@@ -112,7 +106,8 @@ impl fmt::Display for Rejection {
     }
 }
 
-/// The validation limits taken from the configuration.
+/// The validation limits an event must meet (set by the configuration's `[input]` and
+/// `[similarity]` sections).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Limits {
     /// Longest id in bytes.
@@ -121,17 +116,6 @@ pub struct Limits {
     pub rating_min: f64,
     /// Highest valid rating.
     pub rating_max: f64,
-}
-
-impl Limits {
-    /// The limits a configuration sets.
-    pub fn from_config(config: &Config) -> Limits {
-        Limits {
-            max_id_bytes: config.input.max_id_bytes,
-            rating_min: config.similarity.rating_min,
-            rating_max: config.similarity.rating_max,
-        }
-    }
 }
 
 /// A record's fields, as either decoder sees them. Each accessor returns `Ok(None)` when

@@ -25,17 +25,4 @@ impl Signal {
     pub fn parse(name: &str) -> Option<Signal> {
         Signal::ALL.into_iter().find(|s| s.as_str() == name)
     }
-
-    /// Leading key byte in the `dirty` and `published` column families.
-    pub fn key_byte(self) -> u8 {
-        match self {
-            Signal::Rating => b'r',
-            Signal::Purchase => b'p',
-        }
-    }
-
-    /// Inverse of [`Signal::key_byte`].
-    pub fn from_key_byte(b: u8) -> Option<Signal> {
-        Signal::ALL.into_iter().find(|s| s.key_byte() == b)
-    }
 }

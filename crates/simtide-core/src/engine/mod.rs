@@ -6,6 +6,7 @@
 pub mod aggregate;
 pub mod contrib;
 pub mod fixed;
+pub mod tally;
 pub mod user_state;
 
 use std::collections::{BTreeMap, HashMap};
@@ -13,8 +14,10 @@ use std::collections::{BTreeMap, HashMap};
 use rustc_hash::FxHashMap;
 
 use crate::event::{EventKind, UnixNanos};
+use crate::model::DirtyScope;
 use aggregate::{aggregate_pairs, PairSum};
 use contrib::{difference, ContributionSet};
+use tally::EventTally;
 use user_state::{mean_rating, Outcome, UserState};
 
 /// The settings that shape the statistics (part of the store's fingerprint).
@@ -24,16 +27,6 @@ pub struct EngineSettings {
     pub recenter_tolerance: f64,
     /// Items per user taking part in pairs, most recent first; 0 means no cut.
     pub max_items_per_user: usize,
-}
-
-impl EngineSettings {
-    /// The engine settings of a configuration.
-    pub fn from_config(config: &crate::config::Config) -> EngineSettings {
-        EngineSettings {
-            recenter_tolerance: config.similarity.recenter_tolerance,
-            max_items_per_user: config.similarity.max_items_per_user,
-        }
-    }
 }
 
 /// An event with ids already interned to dense numbers.
@@ -139,20 +132,20 @@ pub struct RatingPairDelta {
 #[derive(Debug, Default)]
 pub struct BatchEffects {
     /// Accepted events by kind and outcome.
-    pub outcomes: BTreeMap<(EventKind, Outcome), u64>,
+    pub outcomes: EventTally,
     /// Rating pair deltas as (lo, hi, delta), lo < hi, sorted.
     pub rating_pairs: Vec<(u32, u32, RatingPairDelta)>,
     /// Co-buyer count deltas as (lo, hi, delta), lo ≤ hi, sorted; (a, a) is a's buyer count.
     pub purchase_pairs: Vec<(u32, u32, i64)>,
     /// Change in the number of users with at least one active purchase.
     pub buyers_delta: i64,
-    /// Items whose rating list may have changed. `true` means the item's availability
-    /// changed, so every item listing it must be rescored too (the publisher resolves
-    /// those from the item's row).
-    pub dirty_rating: FxHashMap<u32, bool>,
-    /// Items whose purchase list may have changed; `true` as above, also set when the
+    /// Items whose rating list may have changed. [`DirtyScope::WithNeighbors`] means the
+    /// item's availability changed, so every item listing it must be rescored too (the
+    /// publisher resolves those from the item's row).
+    pub dirty_rating: FxHashMap<u32, DirtyScope>,
+    /// Items whose purchase list may have changed; with neighbors as above, also when the
     /// item's own buyer count changed (it divides every score in its column).
-    pub dirty_purchase: FxHashMap<u32, bool>,
+    pub dirty_purchase: FxHashMap<u32, DirtyScope>,
     /// Item statuses to store.
     pub statuses: Vec<(u32, ItemStatus)>,
     /// Users whose state changed, to store.
@@ -251,7 +244,7 @@ pub fn apply_batch(
                 }
             }
         };
-        *fx.outcomes.entry((ev.action.kind(), outcome)).or_default() += 1;
+        fx.outcomes.add(ev.action.kind(), outcome, 1);
         if outcome == Outcome::Applied {
             fx.newest_event_at = Some(fx.newest_event_at.map_or(ev.at, |t| t.max(ev.at)));
         }
@@ -312,7 +305,7 @@ fn settle_user(
     if let Some(sides) = difference(&old.ratings, &new.ratings, center_moved) {
         if sides.iter().any(|s| s.pair_count() > 0) {
             for item in sides.iter().flat_map(|s| &s.items) {
-                mark_dirty(&mut fx.dirty_rating, *item, false);
+                mark_dirty(&mut fx.dirty_rating, *item, DirtyScope::OwnList);
             }
         }
         sets.ratings.extend(sides);
@@ -320,7 +313,7 @@ fn settle_user(
     if let Some(sides) = difference(&old.purchases, &new.purchases, false) {
         for side in &sides {
             for (item, _) in side.items.iter().zip(&side.changed).filter(|(_, c)| **c) {
-                mark_dirty(&mut fx.dirty_purchase, *item, true);
+                mark_dirty(&mut fx.dirty_purchase, *item, DirtyScope::WithNeighbors);
             }
         }
         sets.purchases.extend(sides);
@@ -328,8 +321,9 @@ fn settle_user(
     fx.buyers_delta += i64::from(!new.purchases.is_empty()) - i64::from(!old.purchases.is_empty());
 }
 
-fn mark_dirty(set: &mut FxHashMap<u32, bool>, item: u32, with_neighbors: bool) {
-    *set.entry(item).or_insert(false) |= with_neighbors;
+fn mark_dirty(set: &mut FxHashMap<u32, DirtyScope>, item: u32, scope: DirtyScope) {
+    let entry = set.entry(item).or_insert(scope);
+    *entry = entry.widest(scope);
 }
 
 fn apply_status(
@@ -356,8 +350,8 @@ fn apply_status(
         fx.statuses.retain(|(i, _)| *i != item);
         fx.statuses.push((item, new));
         if was_available != available {
-            mark_dirty(&mut fx.dirty_rating, item, true);
-            mark_dirty(&mut fx.dirty_purchase, item, true);
+            mark_dirty(&mut fx.dirty_rating, item, DirtyScope::WithNeighbors);
+            mark_dirty(&mut fx.dirty_purchase, item, DirtyScope::WithNeighbors);
         }
     }
     outcome

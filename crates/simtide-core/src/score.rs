@@ -2,9 +2,24 @@
 //! damping for ratings; cosine, Jaccard or log-likelihood ratio for purchases; and the rule
 //! that decides whether a scored pair may be published.
 
-use crate::config::{Config, PurchaseScore};
+use serde::{Deserialize, Serialize};
+
 use crate::engine::fixed::to_f64;
-use crate::store::codec::RatingPairStats;
+use crate::model::RatingPairStats;
+
+/// Which purchase-signal score ranks items purchased by the same users.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum PurchaseScore {
+    /// Cosine of the binary buyer vectors: co / sqrt(n_a · n_b).
+    #[default]
+    Cosine,
+    /// Jaccard index of the buyer sets: co / (n_a + n_b − co).
+    Jaccard,
+    /// Log-likelihood ratio G² of the 2×2 co-occurrence table (Dunning 1993), written
+    /// `log_likelihood`.
+    LogLikelihood,
+}
 
 /// Norms below this (after rounding) leave a pair without a score.
 pub const ZERO_NORM: f64 = 1e-9;
@@ -22,20 +37,6 @@ pub struct ListSettings {
     pub min_score: f64,
     /// Purchase score in use.
     pub purchase_score: PurchaseScore,
-}
-
-impl ListSettings {
-    /// The list settings of a configuration.
-    pub fn from_config(config: &Config) -> ListSettings {
-        let s = &config.similarity;
-        ListSettings {
-            neighbors: s.neighbors,
-            min_common_users: s.min_common_users,
-            damping: s.damping,
-            min_score: s.min_score,
-            purchase_score: s.purchase_score,
-        }
-    }
 }
 
 /// The real-valued sums of a rating pair.

@@ -4,10 +4,13 @@
 //! it (or where it is empty) an empty `value` means a purchase and any other a rating.
 //! Optional `quantity` and `available` columns serve purchases and item_status.
 
-use anyhow::{bail, Result};
-
 use super::{build_event, time_from_text, FieldSource, Limits, RejectReason, Rejection};
 use crate::event::{Event, UnixNanos};
+
+/// A CSV header without one of the required columns (named).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, thiserror::Error)]
+#[error("CSV header lacks the required column `{0}` (expected user,item,value,at)")]
+pub struct MissingColumn(pub &'static str);
 
 /// Where each known column sits in a record, found from the header row.
 #[derive(Debug, Clone, Default)]
@@ -24,7 +27,7 @@ pub struct CsvColumns {
 
 impl CsvColumns {
     /// Reads the header; refuses a header that lacks a required column, naming it.
-    pub fn from_header(header: &csv::StringRecord) -> Result<CsvColumns> {
+    pub fn from_header(header: &csv::StringRecord) -> Result<CsvColumns, MissingColumn> {
         let find = |name: &str| header.iter().position(|h| h.trim() == name);
         let cols = CsvColumns {
             user: find("user"),
@@ -43,7 +46,7 @@ impl CsvColumns {
             ("at", cols.at),
         ] {
             if pos.is_none() {
-                bail!("CSV header lacks the required column `{name}` (expected user,item,value,at)");
+                return Err(MissingColumn(name));
             }
         }
         Ok(cols)

@@ -1,0 +1,41 @@
+//! `simtide backfill`: files or the input topic into a store, then the summary.
+
+use std::io::Write;
+use std::sync::Arc;
+
+use anyhow::Result;
+
+use super::args::BackfillArgs;
+use simtide::config::Config;
+use simtide::ingest::{backfill_files, backfill_topic, BackfillRequest};
+use simtide::metrics::Metrics;
+
+/// Runs the backfill and prints its summary.
+pub fn run(args: BackfillArgs, mut config: Config, out: &mut dyn Write) -> Result<()> {
+    let metrics = match &args.metrics_listen {
+        Some(listen) => {
+            let metrics = Arc::new(Metrics::new());
+            simtide::http::serve_metrics_in_background(listen, metrics.clone())?;
+            Some(metrics)
+        }
+        None => None,
+    };
+    if let Some(n) = args.batch_events {
+        config.backfill.batch_events = n;
+        config.validate()?;
+    }
+    let request = BackfillRequest {
+        store_dir: args.store,
+        inputs: args.input,
+        config,
+        show_progress: !args.quiet,
+        metrics,
+    };
+    let summary = if args.from_topic {
+        backfill_topic(&request)?
+    } else {
+        backfill_files(&request)?
+    };
+    writeln!(out, "{summary}")?;
+    Ok(())
+}

@@ -1,0 +1,40 @@
+//! Why a store would not open, as types callers and tests can branch on.
+
+use std::path::PathBuf;
+
+/// A store that cannot be opened as asked.
+#[derive(Debug, thiserror::Error)]
+pub enum OpenError {
+    /// The directory holds no RocksDB database.
+    #[error("{} is not a simtide store (no {} found)", .dir.display(), .marker.display())]
+    NotAStore {
+        /// The directory given.
+        dir: PathBuf,
+        /// The file whose absence shows it.
+        marker: PathBuf,
+    },
+    /// The database was created but never initialised by simtide.
+    #[error("store {} was never initialised", .dir.display())]
+    NeverInitialised {
+        /// The store directory.
+        dir: PathBuf,
+    },
+    /// The store's layout version is not the one this build reads.
+    #[error("store {} has schema version {}, this build reads version {supported}", .dir.display(), .found.map_or("(none)".to_string(), |v| v.to_string()))]
+    SchemaMismatch {
+        /// The store directory.
+        dir: PathBuf,
+        /// The version the store records (`None`: none recorded).
+        found: Option<u32>,
+        /// The version this build reads.
+        supported: u32,
+    },
+    /// Settings that shape the stored statistics differ from the ones it was built with.
+    #[error("store {} refuses these settings:\n  {}\nThese settings shape the stored statistics; to change them, rebuild: backfill into a fresh store directory.", .dir.display(), .differences.join("\n  "))]
+    SettingsChanged {
+        /// The store directory.
+        dir: PathBuf,
+        /// One sentence per differing setting.
+        differences: Vec<String>,
+    },
+}

@@ -1,0 +1,230 @@
+//! Opening a store: RocksDB options and column families, the schema version, the
+//! statistics fingerprint, and the three ways a handle holds the database (the writer, a
+//! secondary instance for another process's reader, a view inside this process).
+
+use std::path::Path;
+use std::sync::Arc;
+
+use anyhow::{bail, Context, Result};
+use rocksdb::{ColumnFamilyDescriptor, DBCompressionType, Options, WriteBatch, DB};
+
+use super::errors::OpenError;
+use super::fingerprint::StatsFingerprint;
+use super::ids::{load_items_from, ItemDirectory};
+use super::ledger::Ledger;
+use super::{
+    db_path, merge, Access, Store, ALL_CFS, CF_DIRTY, CF_META, CF_PAIRS, CF_PURCHASE_PAIRS, META_FINGERPRINT,
+    META_LEDGER, META_SCHEMA, SCHEMA_VERSION,
+};
+use crate::config::Config;
+
+/// Bytes of the write buffer of a pair family: room for bursts, as flushing merges
+/// operands and lags bulk writes.
+const PAIR_WRITE_BUFFER_BYTES: usize = 64 << 20;
+
+/// Write buffers the rating pair family may hold before writes stall.
+const PAIR_WRITE_BUFFERS: i32 = 4;
+
+/// Largest total size of the write-ahead log before the families holding it are flushed.
+const MAX_TOTAL_WAL_BYTES: u64 = 256 << 20;
+
+/// Background flush and compaction threads.
+const BACKGROUND_JOBS: i32 = 2;
+
+fn db_options() -> Options {
+    let mut o = Options::default();
+    o.create_if_missing(true);
+    o.create_missing_column_families(true);
+    o.increase_parallelism(BACKGROUND_JOBS);
+    o.set_max_background_jobs(BACKGROUND_JOBS);
+    o.set_compression_type(DBCompressionType::Lz4);
+    o.set_level_compaction_dynamic_level_bytes(true);
+    // Small families (meta, users, ids) rarely fill a memtable; without a cap they would
+    // pin every WAL file the big pair families have long since flushed.
+    o.set_max_total_wal_size(MAX_TOTAL_WAL_BYTES);
+    o
+}
+
+fn cf_descriptors() -> Vec<ColumnFamilyDescriptor> {
+    ALL_CFS
+        .iter()
+        .map(|&name| {
+            let mut o = Options::default();
+            o.set_compression_type(DBCompressionType::Lz4);
+            match name {
+                CF_PAIRS => {
+                    o.set_merge_operator_associative("simtide_rating_pair_sum", merge::merge_rating_pairs);
+                    o.set_compaction_filter("simtide_drop_empty_pairs", merge::drop_empty_pairs);
+                    o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
+                    o.set_max_write_buffer_number(PAIR_WRITE_BUFFERS);
+                }
+                CF_PURCHASE_PAIRS => {
+                    o.set_merge_operator_associative("simtide_count_sum", merge::merge_counts);
+                    o.set_compaction_filter("simtide_drop_empty_pairs", merge::drop_empty_pairs);
+                    o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
+                }
+                CF_DIRTY => {
+                    o.set_merge_operator_associative("simtide_dirty_earliest", merge::merge_dirty);
+                }
+                _ => {}
+            }
+            ColumnFamilyDescriptor::new(name, o)
+        })
+        .collect()
+}
+
+/// The ledger of the last committed batch (the default for a new store).
+pub(super) fn read_ledger(db: &DB) -> Result<Ledger> {
+    let meta = db.cf_handle(CF_META).expect("meta family exists");
+    Ok(match db.get_cf(meta, META_LEDGER)? {
+        Some(bytes) => serde_json::from_slice(&bytes).context("stored ledger is unreadable")?,
+        None => Ledger::default(),
+    })
+}
+
+/// Refuses a store whose layout version is not [`SCHEMA_VERSION`].
+fn check_schema(db: &DB, dir: &Path) -> Result<()> {
+    let meta = db.cf_handle(CF_META).expect("meta family exists");
+    let found = db
+        .get_cf(meta, META_SCHEMA)?
+        .map(|v| <[u8; 4]>::try_from(v.as_slice()).map_or(u32::MAX, u32::from_le_bytes));
+    if found != Some(SCHEMA_VERSION) {
+        return Err(OpenError::SchemaMismatch {
+            dir: dir.to_path_buf(),
+            found,
+            supported: SCHEMA_VERSION,
+        }
+        .into());
+    }
+    Ok(())
+}
+
+impl Store {
+    /// Opens (creating if needed) a store for writing. Refuses a store whose statistics
+    /// were shaped by other settings, naming each differing setting.
+    pub fn open(dir: &Path, config: &Config) -> Result<Store> {
+        std::fs::create_dir_all(dir)
+            .with_context(|| format!("cannot create store directory {}", dir.display()))?;
+        let path = db_path(dir);
+        let db = DB::open_cf_descriptors(&db_options(), &path, cf_descriptors())
+            .with_context(|| format!("cannot open store {}", path.display()))?;
+        let asked = StatsFingerprint::from_config(config);
+        let meta = db.cf_handle(CF_META).expect("meta family exists");
+        let fingerprint = match db.get_cf(meta, META_FINGERPRINT)? {
+            Some(bytes) => {
+                check_schema(&db, dir)?;
+                let stored: StatsFingerprint =
+                    serde_json::from_slice(&bytes).context("stored fingerprint is unreadable")?;
+                let differences = stored.differences(&asked);
+                if !differences.is_empty() {
+                    return Err(OpenError::SettingsChanged {
+                        dir: dir.to_path_buf(),
+                        differences,
+                    }
+                    .into());
+                }
+                stored
+            }
+            None => {
+                let mut wb = WriteBatch::default();
+                wb.put_cf(meta, META_SCHEMA, SCHEMA_VERSION.to_le_bytes());
+                wb.put_cf(meta, META_FINGERPRINT, serde_json::to_vec(&asked)?);
+                db.write(wb)?;
+                asked
+            }
+        };
+        Store::finish_open(db, dir, fingerprint, Access::Primary)
+    }
+
+    /// Opens a store for reading while a writer may hold it open, as a RocksDB secondary
+    /// instance caught up with the primary at open time.
+    pub fn open_read_only(dir: &Path) -> Result<Store> {
+        let path = db_path(dir);
+        let marker = path.join("CURRENT");
+        if !marker.exists() {
+            return Err(OpenError::NotAStore {
+                dir: dir.to_path_buf(),
+                marker,
+            }
+            .into());
+        }
+        let secondary = std::env::temp_dir().join(format!(
+            "simtide-reader-{}-{}",
+            std::process::id(),
+            crate::timefmt::now_nanos()
+        ));
+        let mut opts = db_options();
+        opts.set_max_open_files(-1);
+        let db = DB::open_cf_descriptors_as_secondary(&opts, &path, &secondary, cf_descriptors())
+            .with_context(|| format!("cannot open store {} for reading", path.display()))?;
+        db.try_catch_up_with_primary()?;
+        check_schema(&db, dir)?;
+        let meta = db.cf_handle(CF_META).expect("meta family exists");
+        let fingerprint = match db.get_cf(meta, META_FINGERPRINT)? {
+            Some(bytes) => serde_json::from_slice(&bytes).context("stored fingerprint is unreadable")?,
+            None => {
+                return Err(OpenError::NeverInitialised {
+                    dir: dir.to_path_buf(),
+                }
+                .into())
+            }
+        };
+        Store::finish_open(db, dir, fingerprint, Access::Secondary(secondary))
+    }
+
+    fn finish_open(db: DB, dir: &Path, fingerprint: StatsFingerprint, access: Access) -> Result<Store> {
+        let ledger = read_ledger(&db)?;
+        let mut items = ItemDirectory::default();
+        load_items_from(&db, &mut items)?;
+        Ok(Store {
+            db: Arc::new(db),
+            dir: dir.to_path_buf(),
+            fingerprint,
+            ledger,
+            items,
+            access,
+        })
+    }
+
+    /// A read-only view of this store for readers in the same process (HTTP lookups): it
+    /// shares the open database, so reads see every committed batch without a second
+    /// instance replaying the write-ahead log; [`Store::catch_up`] refreshes its positions
+    /// and item names. A view refuses writes.
+    pub fn view(&self) -> Store {
+        Store {
+            db: self.db.clone(),
+            dir: self.dir.clone(),
+            fingerprint: self.fingerprint,
+            ledger: self.ledger.clone(),
+            items: self.items.clone(),
+            access: Access::View,
+        }
+    }
+
+    /// Brings a reader up to the writer's latest committed batch: for a secondary
+    /// instance RocksDB's catch-up first, then the positions and the items added since.
+    /// Long-lived readers (HTTP lookups) call it periodically instead of reopening.
+    pub fn catch_up(&mut self) -> Result<()> {
+        match self.access {
+            Access::Primary => bail!("the writer is always current; only readers catch up"),
+            Access::Secondary(_) => self.db.try_catch_up_with_primary()?,
+            Access::View => {}
+        }
+        self.ledger = read_ledger(&self.db)?;
+        load_items_from(&self.db, &mut self.items)
+    }
+}
+
+impl Drop for Store {
+    fn drop(&mut self) {
+        match &self.access {
+            Access::Secondary(dir) => {
+                let _ = std::fs::remove_dir_all(dir);
+            }
+            // Everything committed is in the WAL; there is no need to wait for a flush or
+            // compaction in progress before closing.
+            Access::Primary => self.db.cancel_all_background_work(false),
+            Access::View => {}
+        }
+    }
+}
