@@ -184,7 +184,7 @@ fn split_events(events: Vec<Event>, split: Split) -> (Vec<Event>, Vec<HeldOut>) 
             .filter(|(_, e)| matches!(e.body, EventBody::Rating { .. }) && e.at >= t)
             .map(|(i, _)| i)
             .collect(),
-        Split::LastFraction(f) => last_of_each_user(&events, f, |at, _| at),
+        Split::LastFraction(f) => last_of_each_user(&events, f, |at, _| at.0),
         Split::Random { fraction, seed } => {
             last_of_each_user(&events, fraction, |_, i| mix(seed ^ i as u64) as i64)
         }

@@ -14,6 +14,7 @@ use prometheus::{
 };
 
 use crate::decode::RejectReason;
+use crate::event::UnixNanos;
 use crate::health::Freshness;
 use crate::signal::Signal;
 use crate::timefmt::now_nanos;
@@ -363,14 +364,14 @@ impl Metrics {
             m.list_drift.with_label_values(&[s]);
             m.list_rbo.with_label_values(&[s]);
         }
-        m.last_publish.set(now_nanos() as f64 / 1e9);
+        m.last_publish.set(now_nanos().as_secs_f64());
         m
     }
 
     /// Records when the oldest unpublished change happened (`None`: nothing is dirty).
-    pub fn set_oldest_dirty(&self, since_ns: Option<i64>) {
+    pub fn set_oldest_dirty(&self, since: Option<UnixNanos>) {
         self.oldest_dirty_ns
-            .store(since_ns.unwrap_or(UNSET), Ordering::Relaxed);
+            .store(since.map_or(UNSET, |t| t.0), Ordering::Relaxed);
     }
 
     /// Records the store's next offsets after a commit (the base of the lag gauge).
@@ -399,7 +400,7 @@ impl Metrics {
     pub fn note_batch_stalled(&self) {
         let _ = self.batch_stalled_since_ns.compare_exchange(
             UNSET,
-            now_nanos(),
+            now_nanos().0,
             Ordering::Relaxed,
             Ordering::Relaxed,
         );
@@ -415,27 +416,27 @@ impl Metrics {
         let lag = self.lag_total.load(Ordering::Relaxed);
         Freshness {
             consumer_lag: (lag != UNSET).then_some(lag),
-            staleness_seconds: seconds_since(self.oldest_dirty_ns.load(Ordering::Relaxed), now_nanos()),
+            staleness_seconds: seconds_since(self.oldest_dirty_ns.load(Ordering::Relaxed), now_nanos().0),
         }
     }
 
-    /// Records a change at `at_ns` that no list reflects yet; the oldest one is kept.
-    pub fn note_unpublished_change(&self, at_ns: i64) {
+    /// Records a change at `at` that no list reflects yet; the oldest one is kept.
+    pub fn note_unpublished_change(&self, at: UnixNanos) {
         let _ = self
             .oldest_dirty_ns
-            .compare_exchange(UNSET, at_ns, Ordering::Relaxed, Ordering::Relaxed);
+            .compare_exchange(UNSET, at.0, Ordering::Relaxed, Ordering::Relaxed);
     }
 
     /// Records the newest event time reflected in published lists.
-    pub fn set_published_watermark(&self, watermark_ns: Option<i64>) {
-        if let Some(w) = watermark_ns {
-            self.published_watermark_ns.store(w, Ordering::Relaxed);
+    pub fn set_published_watermark(&self, watermark: Option<UnixNanos>) {
+        if let Some(w) = watermark {
+            self.published_watermark_ns.store(w.0, Ordering::Relaxed);
         }
     }
 
     /// The text exposition of every metric, with the time-dependent gauges brought to now.
     pub fn render(&self) -> String {
-        let now = now_nanos();
+        let now = now_nanos().0;
         self.staleness
             .set(seconds_since(self.oldest_dirty_ns.load(Ordering::Relaxed), now));
         self.batch_stalled.set(seconds_since(

@@ -271,7 +271,7 @@ impl Observation<'_> {
                         m.list_rbo.with_label_values(&[signal]).observe(drift.rbo);
                     }
                 }
-                m.last_publish.set(crate::timefmt::now_nanos() as f64 / 1e9);
+                m.last_publish.set(crate::timefmt::now_nanos().as_secs_f64());
             }
         }
     }

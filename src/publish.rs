@@ -7,6 +7,7 @@ use anyhow::Result;
 use rustc_hash::FxHashSet;
 
 use crate::drift::{overlap_drift, rank_biased_overlap, RBO_PERSISTENCE};
+use crate::event::UnixNanos;
 use crate::model::{DirtyScope, PublishedList};
 use crate::score::ListSettings;
 use crate::signal::Signal;
@@ -169,14 +170,14 @@ pub struct Cycle {
     position: usize,
     unavailable: FxHashSet<u32>,
     names: NameOrder,
-    watermark: Option<i64>,
-    now: i64,
+    watermark: Option<UnixNanos>,
+    now: UnixNanos,
     report: CycleReport,
 }
 
 impl Cycle {
     /// Plans a cycle over everything dirty now; `now` stamps the lists it computes.
-    pub fn plan(store: &Store, now: i64) -> Result<Cycle> {
+    pub fn plan(store: &Store, now: UnixNanos) -> Result<Cycle> {
         let mut plan = Vec::new();
         for signal in Signal::ALL {
             let items = targets(store, signal)?;
@@ -199,7 +200,7 @@ impl Cycle {
     }
 
     /// Newest event time the cycle's lists reflect.
-    pub fn watermark(&self) -> Option<i64> {
+    pub fn watermark(&self) -> Option<UnixNanos> {
         self.watermark
     }
 
@@ -279,7 +280,7 @@ impl Cycle {
 pub fn publish_dirty(
     store: &Store,
     settings: &ListSettings,
-    now: i64,
+    now: UnixNanos,
     mut on_progress: impl FnMut(u64, u64),
 ) -> Result<CycleReport> {
     let mut cycle = Cycle::plan(store, now)?;

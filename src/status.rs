@@ -136,7 +136,7 @@ pub fn render(
     }
     let staleness = after.sum(names::STALENESS_SECONDS, "");
     let since_publish = after.sum(names::LAST_PUBLISH_TIMESTAMP_SECONDS, "");
-    let now = crate::timefmt::now_nanos() as f64 / 1e9;
+    let now = crate::timefmt::now_nanos().as_secs_f64();
     let _ = writeln!(
         out,
         "  freshness    staleness {}  ·  event-time lag {:.1} s  ·  last publication {:.1} s ago",

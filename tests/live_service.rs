@@ -490,7 +490,9 @@ fn handover_from_a_file_backfill_at_a_time_neither_overlaps_nor_leaves_a_gap() {
         }),
     );
     let (config, port) = sc.config(&LiveSettings::default());
-    let start = simtide::timefmt::format_rfc3339(handover_at * simtide::timefmt::NANOS_PER_SECOND);
+    let start = simtide::timefmt::format_rfc3339(simtide::event::UnixNanos(
+        handover_at * simtide::timefmt::NANOS_PER_SECOND,
+    ));
     sc.finish(Service::start(&config, port, &["--start-at", &start]));
     sc.assert_exact();
 

@@ -9,14 +9,15 @@ use simtide::config::Config;
 use simtide::live::handover::{parse_offsets, StartRequest};
 use simtide::live::{run_service, RunOptions, SignalHandling};
 use simtide::shutdown::Shutdown;
-use simtide::timefmt::{parse_event_time, NANOS_PER_MILLI};
+use simtide::timefmt::parse_event_time;
 
 /// Runs the service and prints what it did.
 pub fn run(args: RunArgs, config: Config, out: &mut dyn Write) -> Result<()> {
     let start = match (args.start_at, args.start_offsets) {
         (Some(text), _) => Some(StartRequest::AtTime(
-            parse_event_time(&text).with_context(|| format!("--start-at {text:?}: expected RFC 3339"))?
-                / NANOS_PER_MILLI,
+            parse_event_time(&text)
+                .with_context(|| format!("--start-at {text:?}: expected RFC 3339"))?
+                .to_millis(),
         )),
         (None, Some(text)) => Some(StartRequest::Offsets(parse_offsets(&text)?)),
         (None, None) => None,

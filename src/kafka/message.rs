@@ -3,6 +3,8 @@
 
 use rdkafka::message::{BorrowedMessage, Headers, Message};
 
+use crate::event::UnixMillis;
+
 /// A consumed message, copied out of the client's buffer.
 #[derive(Debug, Clone, PartialEq)]
 pub struct InMessage {
@@ -16,8 +18,8 @@ pub struct InMessage {
     pub value: Option<Vec<u8>>,
     /// Record headers, in order.
     pub headers: Vec<(String, Vec<u8>)>,
-    /// Record timestamp, milliseconds since the epoch, when the broker gave one.
-    pub timestamp_ms: Option<i64>,
+    /// Record timestamp, when the broker gave one.
+    pub timestamp: Option<UnixMillis>,
 }
 
 impl InMessage {
@@ -37,7 +39,7 @@ impl InMessage {
             key: m.key().map(<[u8]>::to_vec),
             value: m.payload().map(<[u8]>::to_vec),
             headers,
-            timestamp_ms: m.timestamp().to_millis(),
+            timestamp: m.timestamp().to_millis().map(UnixMillis),
         }
     }
 }

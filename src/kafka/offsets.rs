@@ -12,6 +12,7 @@ use rdkafka::{Offset, TopicPartitionList};
 
 use super::client::{base_config, describe_error, BusContext};
 use crate::config::KafkaConfig;
+use crate::event::UnixMillis;
 
 /// How long each metadata or offset request may take.
 pub const REQUEST_TIMEOUT: Duration = Duration::from_secs(15);
@@ -66,11 +67,11 @@ impl OffsetsClient {
     }
 
     /// For every partition, the offset of the first message whose timestamp is at or
-    /// after `ms` (Unix milliseconds), or the partition's end when there is none.
-    pub fn offsets_at_time(&self, topic: &str, ms: i64) -> Result<BTreeMap<i32, i64>> {
+    /// after `at`, or the partition's end when there is none.
+    pub fn offsets_at_time(&self, topic: &str, at: UnixMillis) -> Result<BTreeMap<i32, i64>> {
         let mut query = TopicPartitionList::new();
         for p in self.partitions(topic)? {
-            query.add_partition_offset(topic, p, Offset::Offset(ms))?;
+            query.add_partition_offset(topic, p, Offset::Offset(at.0))?;
         }
         let found = self
             .client

@@ -7,7 +7,7 @@ use std::time::Instant;
 
 use crate::decode::json::decode_json_line;
 use crate::decode::{Limits, RejectReason, Rejection};
-use crate::event::Event;
+use crate::event::{Event, UnixMillis};
 use crate::kafka::message::InMessage;
 use crate::kafka::producer::OutRecord;
 
@@ -89,7 +89,7 @@ pub struct PendingBatch {
     /// Messages taken (events + rejected).
     pub messages: usize,
     /// Record timestamps of the messages taken, for event-to-publication latency.
-    pub timestamps_ms: Vec<i64>,
+    pub timestamps: Vec<UnixMillis>,
     /// When the first message was taken.
     pub opened: Option<Instant>,
 }
@@ -104,8 +104,8 @@ impl PendingBatch {
             .entry(message.partition)
             .or_insert(message.offset + 1);
         *next = (*next).max(message.offset + 1);
-        if let Some(t) = message.timestamp_ms {
-            self.timestamps_ms.push(t);
+        if let Some(t) = message.timestamp {
+            self.timestamps.push(t);
         }
         match decode_message(message.value.as_deref(), limits) {
             Ok(event) => self.events.push(event),
@@ -148,7 +148,7 @@ mod tests {
             key: Some(b"u1".to_vec()),
             value: Some(value.to_vec()),
             headers: vec![("origin".into(), b"checkout".to_vec())],
-            timestamp_ms: Some(1000),
+            timestamp: Some(UnixMillis(1000)),
         }
     }
 

@@ -14,6 +14,7 @@ use crate::config::Config;
 use crate::decode::Limits;
 use crate::engine::tally::EventTally;
 use crate::engine::EngineSettings;
+use crate::event::UnixMillis;
 use crate::health::Health;
 use crate::kafka::message::InMessage;
 use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
@@ -28,7 +29,7 @@ use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
 use crate::store::{Delivery, MarkAfterWrite, Store};
-use crate::timefmt::{now_nanos, NANOS_PER_MILLI};
+use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
 const FIRST_RETRY_WAIT: Duration = Duration::from_millis(200);
@@ -85,7 +86,7 @@ pub struct Core {
     metrics: Arc<Metrics>,
     shutdown: Shutdown,
     /// Record timestamps of committed messages not yet covered by a publication.
-    unpublished_ms: Vec<i64>,
+    unpublished_ms: Vec<UnixMillis>,
 }
 
 impl Core {
@@ -231,7 +232,7 @@ impl Core {
                 .entry(reason.code().to_string())
                 .or_default() += n;
         }
-        self.unpublished_ms.extend(batch.timestamps_ms);
+        self.unpublished_ms.extend(batch.timestamps);
         Observation::BatchCommitted {
             messages: batch.messages,
             summary: &summary,
@@ -432,9 +433,8 @@ impl Core {
             seconds: started.elapsed().as_secs_f64(),
         }
         .emit(&self.metrics);
-        let delivered_ms = now_nanos() / NANOS_PER_MILLI;
         if undelivered == 0 {
-            self.latency.record_all(&covered, delivered_ms);
+            self.latency.record_all(&covered, now_nanos().to_millis());
             self.metrics.set_published_watermark(cycle.watermark());
         } else {
             // Not every list reflecting these events went out; keep them for the next cycle.

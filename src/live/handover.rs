@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use anyhow::{bail, Context, Result};
 
 use crate::config::{Config, KafkaConfig};
+use crate::event::UnixMillis;
 use crate::kafka::client::BusContext;
 use crate::kafka::offsets::{OffsetsClient, REQUEST_TIMEOUT};
 use crate::pipeline::apply_and_commit;
@@ -17,7 +18,7 @@ use crate::store::Store;
 pub enum StartRequest {
     /// The first message of each partition whose record timestamp is at or after this
     /// time (Unix milliseconds).
-    AtTime(i64),
+    AtTime(UnixMillis),
     /// These next offsets, by partition; unlisted partitions start at their beginning.
     Offsets(BTreeMap<i32, i64>),
 }

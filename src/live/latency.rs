@@ -2,6 +2,8 @@
 //! first publication cycle after its batch was committed, kept in fixed buckets so a
 //! long run costs constant memory.
 
+use crate::event::UnixMillis;
+
 /// Bucket upper bounds grow by this factor (about 5% resolution).
 const GROWTH: f64 = 1.05;
 /// Number of buckets: 1 ms · 1.05^400 is far beyond any latency worth telling apart.
@@ -38,9 +40,9 @@ fn upper_bound(bucket: usize) -> f64 {
 
 impl LatencyRecorder {
     /// Records the latency of every timestamp against the publication time `done_ms`.
-    pub fn record_all(&mut self, timestamps_ms: &[i64], done_ms: i64) {
-        for &t in timestamps_ms {
-            let ms = (done_ms - t).max(0);
+    pub fn record_all(&mut self, timestamps: &[UnixMillis], done: UnixMillis) {
+        for &t in timestamps {
+            let ms = (done.0 - t.0).max(0);
             self.counts[bucket_of(ms)] += 1;
             self.total += 1;
             self.max_ms = self.max_ms.max(ms);
@@ -72,8 +74,8 @@ mod tests {
     #[test]
     fn quantiles_land_within_one_bucket_of_the_exact_value() {
         let mut r = LatencyRecorder::default();
-        let stamps: Vec<i64> = (0..1000).map(|i| 10_000 - (i + 1)).collect();
-        r.record_all(&stamps, 10_000); // latencies 1..=1000 ms
+        let stamps: Vec<UnixMillis> = (0..1000).map(|i| UnixMillis(10_000 - (i + 1))).collect();
+        r.record_all(&stamps, UnixMillis(10_000)); // latencies 1..=1000 ms
         let p50 = r.quantile_ms(0.5).unwrap();
         let p99 = r.quantile_ms(0.99).unwrap();
         assert!((500.0..=500.0 * GROWTH).contains(&p50), "{p50}");

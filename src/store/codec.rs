@@ -5,6 +5,7 @@ use anyhow::{bail, Result};
 
 use crate::engine::user_state::{PurchaseEntry, RatingEntry, UserState};
 use crate::engine::ItemStatus;
+use crate::event::UnixNanos;
 use crate::model::{DirtyMark, DirtyScope, Neighbor, PublishedList, RatingPairStats};
 use crate::signal::Signal;
 
@@ -105,7 +106,7 @@ const DIRTY_MARK_LEN: usize = 9;
 /// The 9-byte form of a dirty mark.
 pub fn encode_dirty_mark(mark: &DirtyMark) -> [u8; DIRTY_MARK_LEN] {
     let mut k = [0u8; DIRTY_MARK_LEN];
-    k[..8].copy_from_slice(&mark.since.to_le_bytes());
+    k[..8].copy_from_slice(&mark.since.0.to_le_bytes());
     k[8] = u8::from(mark.scope == DirtyScope::WithNeighbors);
     k
 }
@@ -116,7 +117,7 @@ pub fn decode_dirty_mark(bytes: &[u8]) -> Result<DirtyMark> {
         bail!("dirty mark has {} bytes, expected {DIRTY_MARK_LEN}", bytes.len());
     }
     Ok(DirtyMark {
-        since: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
+        since: UnixNanos(i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes"))),
         scope: if bytes[8] != 0 {
             DirtyScope::WithNeighbors
         } else {
@@ -140,8 +141,8 @@ impl Writer {
     fn u64(&mut self, v: u64) {
         self.0.extend_from_slice(&v.to_le_bytes());
     }
-    fn i64(&mut self, v: i64) {
-        self.0.extend_from_slice(&v.to_le_bytes());
+    fn time(&mut self, v: UnixNanos) {
+        self.0.extend_from_slice(&v.0.to_le_bytes());
     }
     fn f64(&mut self, v: f64) {
         self.0.extend_from_slice(&v.to_le_bytes());
@@ -172,8 +173,8 @@ impl Reader<'_> {
     fn u64(&mut self) -> Result<u64> {
         Ok(u64::from_le_bytes(self.take()?))
     }
-    fn i64(&mut self) -> Result<i64> {
-        Ok(i64::from_le_bytes(self.take()?))
+    fn time(&mut self) -> Result<UnixNanos> {
+        Ok(UnixNanos(i64::from_le_bytes(self.take()?)))
     }
     fn f64(&mut self) -> Result<f64> {
         Ok(f64::from_le_bytes(self.take()?))
@@ -196,7 +197,8 @@ impl Reader<'_> {
     }
 }
 
-const NONE_TIME: i64 = i64::MIN;
+/// Stands for "no time" in a fixed-width time field.
+const NONE_TIME: UnixNanos = UnixNanos(i64::MIN);
 
 /// Encodes a user's state. Layout: format, flags (bit 0: erased), erased_at, center,
 /// rating count, ratings (item, value or NaN when withdrawn, at, seq), purchase count,
@@ -207,19 +209,19 @@ pub fn encode_user(u: &UserState) -> Vec<u8> {
     ));
     w.u8(FORMAT_V1);
     w.u8(u8::from(u.erased_at.is_some()));
-    w.i64(u.erased_at.unwrap_or(NONE_TIME));
+    w.time(u.erased_at.unwrap_or(NONE_TIME));
     w.f64(u.center);
     w.u32(u.ratings.len() as u32);
     for e in &u.ratings {
         w.u32(e.item);
         w.f64(e.value.unwrap_or(f64::NAN));
-        w.i64(e.at);
+        w.time(e.at);
         w.u64(e.seq);
     }
     w.u32(u.purchases.len() as u32);
     for e in &u.purchases {
         w.u32(e.item);
-        w.i64(e.at);
+        w.time(e.at);
         w.u64(e.seq);
     }
     w.0
@@ -230,7 +232,7 @@ pub fn decode_user(bytes: &[u8]) -> Result<UserState> {
     let mut r = Reader { bytes, what: "user" };
     r.version()?;
     let erased = r.u8()? & 1 == 1;
-    let erased_at = r.i64()?;
+    let erased_at = r.time()?;
     let center = r.f64()?;
     let n = r.u32()? as usize;
     let mut ratings = Vec::with_capacity(n);
@@ -240,7 +242,7 @@ pub fn decode_user(bytes: &[u8]) -> Result<UserState> {
         ratings.push(RatingEntry {
             item,
             value: (!value.is_nan()).then_some(value),
-            at: r.i64()?,
+            at: r.time()?,
             seq: r.u64()?,
         });
     }
@@ -249,7 +251,7 @@ pub fn decode_user(bytes: &[u8]) -> Result<UserState> {
     for _ in 0..n {
         purchases.push(PurchaseEntry {
             item: r.u32()?,
-            at: r.i64()?,
+            at: r.time()?,
             seq: r.u64()?,
         });
     }
@@ -267,7 +269,7 @@ pub fn encode_status(s: &ItemStatus) -> Vec<u8> {
     let mut w = Writer(Vec::with_capacity(18));
     w.u8(FORMAT_V1);
     w.u8(u8::from(s.available));
-    w.i64(s.at);
+    w.time(s.at);
     w.u64(s.seq);
     w.0
 }
@@ -281,7 +283,7 @@ pub fn decode_status(bytes: &[u8]) -> Result<ItemStatus> {
     r.version()?;
     let s = ItemStatus {
         available: r.u8()? != 0,
-        at: r.i64()?,
+        at: r.time()?,
         seq: r.u64()?,
     };
     r.done()?;
@@ -294,8 +296,8 @@ pub fn encode_published(p: &PublishedList) -> Vec<u8> {
     let mut w = Writer(Vec::with_capacity(33 + p.neighbors.len() * 20));
     w.u8(FORMAT_V1);
     w.u64(p.version);
-    w.i64(p.computed_at);
-    w.i64(p.event_time_watermark.unwrap_or(NONE_TIME));
+    w.time(p.computed_at);
+    w.time(p.event_time_watermark.unwrap_or(NONE_TIME));
     w.u32(p.neighbors.len() as u32);
     for n in &p.neighbors {
         w.u32(n.item);
@@ -313,8 +315,8 @@ pub fn decode_published(bytes: &[u8]) -> Result<PublishedList> {
     };
     r.version()?;
     let version = r.u64()?;
-    let computed_at = r.i64()?;
-    let watermark = r.i64()?;
+    let computed_at = r.time()?;
+    let watermark = r.time()?;
     let n = r.u32()? as usize;
     let mut neighbors = Vec::with_capacity(n);
     for _ in 0..n {
@@ -341,24 +343,24 @@ mod tests {
     fn user_round_trip_keeps_withdrawals_and_erasure() {
         let u = UserState {
             center: 3.25,
-            erased_at: Some(77),
+            erased_at: Some(UnixNanos(77)),
             ratings: vec![
                 RatingEntry {
                     item: 1,
                     value: Some(4.0),
-                    at: 100,
+                    at: UnixNanos(100),
                     seq: 5,
                 },
                 RatingEntry {
                     item: 9,
                     value: None,
-                    at: 120,
+                    at: UnixNanos(120),
                     seq: 6,
                 },
             ],
             purchases: vec![PurchaseEntry {
                 item: 2,
-                at: 130,
+                at: UnixNanos(130),
                 seq: 7,
             }],
         };
@@ -377,7 +379,10 @@ mod tests {
         assert_eq!(decode_rating_pair(&encode_rating_pair(&a)).unwrap(), a);
         assert!(decode_rating_pair(&encode_rating_pair(&a)[1..]).is_err());
         for scope in [DirtyScope::OwnList, DirtyScope::WithNeighbors] {
-            let mark = DirtyMark { since: -7, scope };
+            let mark = DirtyMark {
+                since: UnixNanos(-7),
+                scope,
+            };
             assert_eq!(decode_dirty_mark(&encode_dirty_mark(&mark)).unwrap(), mark);
         }
         for signal in Signal::ALL {
@@ -392,7 +397,7 @@ mod tests {
     fn published_round_trip() {
         let p = PublishedList {
             version: 3,
-            computed_at: 10,
+            computed_at: UnixNanos(10),
             event_time_watermark: None,
             neighbors: vec![Neighbor {
                 item: 4,

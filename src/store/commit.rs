@@ -12,6 +12,7 @@ use super::{
 };
 use crate::engine::user_state::UserState;
 use crate::engine::BatchEffects;
+use crate::event::UnixNanos;
 use crate::model::{DirtyMark, DirtyScope, PublishedList, RatingPairStats};
 use crate::signal::Signal;
 
@@ -42,7 +43,7 @@ pub struct BatchCommit<'a> {
     /// The ledger after this batch.
     pub ledger: Ledger,
     /// Wall-clock time for new dirty marks.
-    pub dirty_since: i64,
+    pub dirty_since: UnixNanos,
 }
 
 /// A list to store after publication, with the dirty mark it clears.
@@ -193,7 +194,7 @@ impl Store {
         &self,
         writes: &[PublicationWrite],
         delivery: Delivery<'_>,
-        now: i64,
+        now: UnixNanos,
     ) -> Result<()> {
         let mut wb = WriteBatch::default();
         let published = self.cf(CF_PUBLISHED);

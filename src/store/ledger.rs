@@ -4,6 +4,8 @@ use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
 
+use crate::event::UnixNanos;
+
 /// How far a file input has been applied.
 #[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
 pub struct FilePosition {
@@ -27,7 +29,7 @@ pub struct Ledger {
     /// Users with at least one active purchase (N of the log-likelihood ratio).
     pub buyers: i64,
     /// Newest event time applied.
-    pub event_time_watermark: Option<i64>,
+    pub event_time_watermark: Option<UnixNanos>,
     /// Accepted events by `kind/outcome`.
     pub events: BTreeMap<String, u64>,
     /// Rejected records by reason code.

@@ -151,7 +151,7 @@ impl Store {
         let secondary = std::env::temp_dir().join(format!(
             "simtide-reader-{}-{}",
             std::process::id(),
-            crate::timefmt::now_nanos()
+            crate::timefmt::now_nanos().0
         ));
         let mut opts = db_options();
         opts.set_max_open_files(-1);

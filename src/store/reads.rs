@@ -13,6 +13,7 @@ use super::{
 };
 use crate::engine::user_state::UserState;
 use crate::engine::ItemStatus;
+use crate::event::UnixNanos;
 use crate::model::{DirtyMark, PublishedList, RatingPairStats};
 use crate::signal::Signal;
 
@@ -203,8 +204,8 @@ impl Store {
     }
 
     /// When the oldest pending change happened (the earliest dirty mark), if any.
-    pub fn oldest_dirty_since(&self) -> Result<Option<i64>> {
-        let mut oldest: Option<i64> = None;
+    pub fn oldest_dirty_since(&self) -> Result<Option<UnixNanos>> {
+        let mut oldest: Option<UnixNanos> = None;
         for entry in self.db.iterator_cf(self.cf(CF_DIRTY), IteratorMode::Start) {
             let (_, value) = entry?;
             let since = codec::decode_dirty_mark(&value)?.since;

@@ -1,8 +1,32 @@
 //! The validated events of the input contract (docs/design.md, "Events"), independent of
 //! their wire format.
 
-/// Event time as nanoseconds since the Unix epoch (UTC).
-pub type UnixNanos = i64;
+use serde::{Deserialize, Serialize};
+
+/// A point in time as nanoseconds since the Unix epoch (UTC): event times and the
+/// wall-clock stamps of lists and dirty marks. A type of its own so that it is never
+/// mixed up with the milliseconds of Kafka record timestamps ([`UnixMillis`]) or with a
+/// count.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
+#[serde(transparent)]
+pub struct UnixNanos(pub i64);
+
+/// A point in time as milliseconds since the Unix epoch, as Kafka record timestamps and
+/// offset-by-time lookups give it.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct UnixMillis(pub i64);
+
+impl UnixNanos {
+    /// Seconds since the epoch, as Prometheus timestamps are given.
+    pub fn as_secs_f64(self) -> f64 {
+        self.0 as f64 / crate::timefmt::NANOS_PER_SECOND as f64
+    }
+
+    /// The same instant in whole milliseconds (rounded toward negative infinity).
+    pub fn to_millis(self) -> UnixMillis {
+        UnixMillis(self.0.div_euclid(crate::timefmt::NANOS_PER_MILLI))
+    }
+}
 
 /// What an event does; field names follow the JSON contract.
 #[derive(Debug, Clone, PartialEq)]

@@ -2,6 +2,8 @@
 //! that a list is out of date, and a published list with its neighbors. They live here,
 //! with the maths that defines them; the store only encodes and decodes them.
 
+use crate::event::UnixNanos;
+
 /// Sums of one rating pair, oriented to its row: (row item, other item). The sufficient
 /// statistics of adjusted cosine over co-raters (docs/design.md, "Adjusted cosine over
 /// co-raters").
@@ -52,8 +54,8 @@ impl DirtyScope {
 /// A pending re-score of an item's list.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct DirtyMark {
-    /// Wall-clock time the list first became out of date (nanoseconds).
-    pub since: i64,
+    /// Wall-clock time the list first became out of date.
+    pub since: UnixNanos,
     /// Which lists the re-score covers.
     pub scope: DirtyScope,
 }
@@ -85,9 +87,9 @@ pub struct PublishedList {
     /// Starts at 1, +1 at every change.
     pub version: u64,
     /// Wall-clock time it was computed.
-    pub computed_at: i64,
+    pub computed_at: UnixNanos,
     /// Newest event time reflected in the store when it was computed.
-    pub event_time_watermark: Option<i64>,
+    pub event_time_watermark: Option<UnixNanos>,
     /// Neighbors, best first; empty means a tombstone.
     pub neighbors: Vec<Neighbor>,
 }
@@ -116,17 +118,17 @@ mod tests {
     #[test]
     fn marks_combine_to_the_earlier_time_and_wider_scope() {
         let a = DirtyMark {
-            since: 5,
+            since: UnixNanos(5),
             scope: DirtyScope::OwnList,
         };
         let b = DirtyMark {
-            since: 9,
+            since: UnixNanos(9),
             scope: DirtyScope::WithNeighbors,
         };
         assert_eq!(
             a.combine(&b),
             DirtyMark {
-                since: 5,
+                since: UnixNanos(5),
                 scope: DirtyScope::WithNeighbors
             }
         );

@@ -9,7 +9,7 @@ use proptest::prelude::*;
 use simtide_core::engine::fixed::to_f64;
 use simtide_core::engine::user_state::UserState;
 use simtide_core::engine::{apply_batch, Action, EngineSettings, ItemStatus, Sequenced};
-use simtide_core::event::{Event, EventBody};
+use simtide_core::event::{Event, EventBody, UnixNanos};
 
 const USERS: u8 = 4;
 const ITEMS: u8 = 6;
@@ -26,7 +26,10 @@ fn event_strategy() -> impl Strategy<Value = Event> {
         3 => (user.clone(), item.clone()).prop_map(|(user, item)| EventBody::Purchase { user, item }),
         1 => user.prop_map(|user| EventBody::EraseUser { user }),
     ];
-    (at, body).prop_map(|(at, body)| Event { at, body })
+    (at, body).prop_map(|(at, body)| Event {
+        at: UnixNanos(at),
+        body,
+    })
 }
 
 /// The model: per user and item, the latest event by (time, stream position).
@@ -41,7 +44,7 @@ fn model(events: &[Event]) -> BTreeMap<String, ModelUser> {
     let mut users: BTreeMap<String, ModelUser> = BTreeMap::new();
     for (pos, e) in events.iter().enumerate() {
         let u = users.entry(e.user().unwrap().to_string()).or_default();
-        if u.erased_at.is_some_and(|t| e.at <= t) {
+        if u.erased_at.is_some_and(|t| e.at.0 <= t) {
             continue;
         }
         match &e.body {
@@ -49,22 +52,22 @@ fn model(events: &[Event]) -> BTreeMap<String, ModelUser> {
             EventBody::Rating { item, value, .. } => {
                 if u.ratings
                     .get(item)
-                    .is_none_or(|old| e.at > old.1 || (e.at == old.1 && old.0 != Some(*value)))
+                    .is_none_or(|old| e.at.0 > old.1 || (e.at.0 == old.1 && old.0 != Some(*value)))
                 {
-                    u.ratings.insert(item.clone(), (Some(*value), e.at, pos));
+                    u.ratings.insert(item.clone(), (Some(*value), e.at.0, pos));
                 }
             }
             EventBody::Unrating { item, .. } => {
                 if u.ratings
                     .get(item)
-                    .is_none_or(|old| e.at > old.1 || (e.at == old.1 && old.0.is_some()))
+                    .is_none_or(|old| e.at.0 > old.1 || (e.at.0 == old.1 && old.0.is_some()))
                 {
-                    u.ratings.insert(item.clone(), (None, e.at, pos));
+                    u.ratings.insert(item.clone(), (None, e.at.0, pos));
                 }
             }
             EventBody::Purchase { item, .. } => {
-                if u.purchases.get(item).is_none_or(|old| e.at > old.0) {
-                    u.purchases.insert(item.clone(), (e.at, pos));
+                if u.purchases.get(item).is_none_or(|old| e.at.0 > old.0) {
+                    u.purchases.insert(item.clone(), (e.at.0, pos));
                 }
             }
             EventBody::EraseUser { .. } => {
@@ -73,7 +76,7 @@ fn model(events: &[Event]) -> BTreeMap<String, ModelUser> {
                     .values()
                     .map(|r| r.1)
                     .chain(u.purchases.values().map(|p| p.0))
-                    .fold(e.at, i64::max);
+                    .fold(e.at.0, i64::max);
                 *u = ModelUser {
                     erased_at: Some(newest),
                     ..ModelUser::default()

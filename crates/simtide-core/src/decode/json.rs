@@ -213,6 +213,6 @@ mod tests {
             &LIMITS,
         )
         .unwrap();
-        assert_eq!(ok.at, 5_000_000_000);
+        assert_eq!(ok.at, UnixNanos(5_000_000_000));
     }
 }

@@ -165,7 +165,7 @@ impl UserState {
             .iter()
             .map(|e| e.at)
             .chain(self.purchases.iter().map(|e| e.at))
-            .fold(at, i64::max);
+            .fold(at, UnixNanos::max);
         *self = UserState {
             center: 0.0,
             erased_at: Some(newest),
@@ -210,18 +210,18 @@ mod tests {
     #[test]
     fn last_write_wins_by_time_then_position() {
         let mut u = UserState::default();
-        assert_eq!(u.rate(7, 4.0, 100, 1), Outcome::Applied);
-        assert_eq!(u.rate(7, 2.0, 50, 2), Outcome::Stale);
-        assert_eq!(u.rate(7, 4.0, 100, 3), Outcome::Duplicate);
+        assert_eq!(u.rate(7, 4.0, UnixNanos(100), 1), Outcome::Applied);
+        assert_eq!(u.rate(7, 2.0, UnixNanos(50), 2), Outcome::Stale);
+        assert_eq!(u.rate(7, 4.0, UnixNanos(100), 3), Outcome::Duplicate);
         assert_eq!(
-            u.rate(7, 5.0, 100, 4),
+            u.rate(7, 5.0, UnixNanos(100), 4),
             Outcome::Applied,
             "same time, later position wins"
         );
-        assert_eq!(u.unrate(7, 90, 5), Outcome::Stale);
-        assert_eq!(u.unrate(7, 120, 6), Outcome::Applied);
+        assert_eq!(u.unrate(7, UnixNanos(90), 5), Outcome::Stale);
+        assert_eq!(u.unrate(7, UnixNanos(120), 6), Outcome::Applied);
         assert_eq!(
-            u.rate(7, 3.0, 110, 7),
+            u.rate(7, 3.0, UnixNanos(110), 7),
             Outcome::Stale,
             "older than the withdrawal"
         );
@@ -232,11 +232,11 @@ mod tests {
     fn cut_keeps_most_recent() {
         let mut u = UserState::default();
         for (item, at) in [(1, 30), (2, 10), (3, 20), (4, 40)] {
-            u.rate(item, 3.0, at, item as u64);
+            u.rate(item, 3.0, UnixNanos(at), item as u64);
         }
         let kept: Vec<u32> = u.active_ratings(2).into_iter().map(|(i, _)| i).collect();
         assert_eq!(kept, vec![1, 4]);
-        u.unrate(4, 50, 9);
+        u.unrate(4, UnixNanos(50), 9);
         let kept: Vec<u32> = u.active_ratings(2).into_iter().map(|(i, _)| i).collect();
         assert_eq!(
             kept,
@@ -248,15 +248,19 @@ mod tests {
     #[test]
     fn erasure_blocks_replays() {
         let mut u = UserState::default();
-        u.rate(1, 5.0, 200, 1);
-        u.purchase(2, 300, 2);
-        assert_eq!(u.erase(100), Outcome::Applied);
+        u.rate(1, 5.0, UnixNanos(200), 1);
+        u.purchase(2, UnixNanos(300), 2);
+        assert_eq!(u.erase(UnixNanos(100)), Outcome::Applied);
         assert!(u.ratings.is_empty() && u.purchases.is_empty());
         assert_eq!(
-            u.rate(1, 5.0, 200, 3),
+            u.rate(1, 5.0, UnixNanos(200), 3),
             Outcome::Stale,
             "replay of a forgotten event"
         );
-        assert_eq!(u.purchase(2, 301, 4), Outcome::Applied, "a genuinely newer event");
+        assert_eq!(
+            u.purchase(2, UnixNanos(301), 4),
+            Outcome::Applied,
+            "a genuinely newer event"
+        );
     }
 }
