@@ -161,6 +161,19 @@ fn seconds_since(at_ns: i64, now_ns: i64) -> f64 {
     }
 }
 
+/// Registers each metric as it is built, so a metric is declared in one place.
+struct Registering(Registry);
+
+impl Registering {
+    /// Registers `metric` and hands it back for the struct field.
+    fn add<M: prometheus::core::Collector + Clone + 'static>(&self, metric: M) -> M {
+        self.0
+            .register(Box::new(metric.clone()))
+            .expect("metric names are unique");
+        metric
+    }
+}
+
 fn counter_vec(name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
     IntCounterVec::new(Opts::new(name, help), labels).expect("valid metric")
 }
@@ -185,65 +198,65 @@ impl Metrics {
     /// Creates and registers every metric. Long by design: one declaration per metric, in
     /// the order of the struct.
     pub fn new() -> Metrics {
-        let registry = Registry::new();
+        let r = Registering(Registry::new());
         let m = Metrics {
-            events: counter_vec(names::EVENTS_TOTAL, "Accepted events by kind and outcome.", &["kind", "outcome"]),
-            rejected: counter_vec(names::REJECTED_EVENTS_TOTAL, "Events refused by validation, by reason.", &["reason"]),
-            dead_letters: counter_vec(
+            events: r.add(counter_vec(names::EVENTS_TOTAL, "Accepted events by kind and outcome.", &["kind", "outcome"])),
+            rejected: r.add(counter_vec(names::REJECTED_EVENTS_TOTAL, "Events refused by validation, by reason.", &["reason"])),
+            dead_letters: r.add(counter_vec(
                 names::DEAD_LETTERS_TOTAL,
                 "Refused events delivered to the dead-letter topic, by reason.",
                 &["reason"],
-            ),
-            batches: IntCounter::new(names::BATCHES_TOTAL, "Micro-batches committed to the store.").expect("valid"),
-            batch_seconds: histogram(
+            )),
+            batches: r.add(IntCounter::new(names::BATCHES_TOTAL, "Micro-batches committed to the store.").expect("valid")),
+            batch_seconds: r.add(histogram(
                 names::BATCH_DURATION_SECONDS,
                 "Time to apply one micro-batch and commit it.",
                 prometheus::exponential_buckets(0.005, 2.0, 12).expect("valid"),
-            ),
-            pair_updates: IntCounter::new(names::PAIR_UPDATES_TOTAL, "Pair contributions added or retracted.")
-                .expect("valid"),
-            recenterings: IntCounter::new(names::RECENTERINGS_TOTAL, "Users whose applied center moved.")
-                .expect("valid"),
-            center_gap_max: Gauge::new(
+            )),
+            pair_updates: r.add(IntCounter::new(names::PAIR_UPDATES_TOTAL, "Pair contributions added or retracted.")
+                .expect("valid")),
+            recenterings: r.add(IntCounter::new(names::RECENTERINGS_TOTAL, "Users whose applied center moved.")
+                .expect("valid")),
+            center_gap_max: r.add(Gauge::new(
                 names::CENTER_GAP_MAX,
                 "Largest |mean − applied center| among the users of the last batch (rating units).",
             )
-            .expect("valid"),
-            center_gap: histogram(
+            .expect("valid")),
+            center_gap: r.add(histogram(
                 names::CENTER_GAP,
                 "|mean − applied center| of each user touched by a batch (rating units).",
                 CENTER_GAP_BUCKETS.to_vec(),
-            ),
-            consumer_lag: IntGaugeVec::new(
+            )),
+            consumer_lag: r.add(IntGaugeVec::new(
                 Opts::new(
                     names::CONSUMER_LAG_MESSAGES,
                     "Messages between the stored position and the end of each input partition.",
                 ),
                 &["partition"],
             )
-            .expect("valid"),
-            cycles: IntCounter::new(names::PUBLISH_CYCLES_TOTAL, "Publication cycles completed.").expect("valid"),
-            cycle_seconds: histogram(
+            .expect("valid")),
+            cycles: r.add(IntCounter::new(names::PUBLISH_CYCLES_TOTAL, "Publication cycles completed.").expect("valid")),
+            cycle_seconds: r.add(histogram(
                 names::PUBLISH_CYCLE_DURATION_SECONDS,
                 "Duration of one publication cycle (rescore, deliver, store).",
                 prometheus::exponential_buckets(0.001, 2.5, 12).expect("valid"),
-            ),
-            lists_published: counter_vec(
+            )),
+            lists_published: r.add(counter_vec(
                 names::LISTS_PUBLISHED_TOTAL,
                 "Changed lists delivered to the output topics (tombstones included), by signal.",
                 &["signal"],
-            ),
-            tombstones: counter_vec(
+            )),
+            tombstones: r.add(counter_vec(
                 names::TOMBSTONES_PUBLISHED_TOTAL,
                 "Tombstones delivered (a list became empty), by signal.",
                 &["signal"],
-            ),
-            delivery_failures: IntCounter::new(
+            )),
+            delivery_failures: r.add(IntCounter::new(
                 names::LIST_DELIVERY_FAILURES_TOTAL,
                 "List deliveries the broker did not acknowledge; each stays dirty and is retried.",
             )
-            .expect("valid"),
-            list_drift: HistogramVec::new(
+            .expect("valid")),
+            list_drift: r.add(HistogramVec::new(
                 HistogramOpts::new(
                     names::LIST_DRIFT_RATIO,
                     "1 − |previous ∩ new| / max(|previous|, |new|) between an item's consecutive lists.",
@@ -251,8 +264,8 @@ impl Metrics {
                 .buckets(RATIO_BUCKETS.to_vec()),
                 &["signal"],
             )
-            .expect("valid"),
-            list_rbo: HistogramVec::new(
+            .expect("valid")),
+            list_rbo: r.add(HistogramVec::new(
                 HistogramOpts::new(
                     names::LIST_RANK_BIASED_OVERLAP_RATIO,
                     "Rank-biased overlap (Webber, Moffat and Zobel 2010, p = 0.9, extrapolated) of an item's consecutive lists.",
@@ -260,56 +273,56 @@ impl Metrics {
                 .buckets(RATIO_BUCKETS.to_vec()),
                 &["signal"],
             )
-            .expect("valid"),
-            store_write_failures: IntCounter::new(
+            .expect("valid")),
+            store_write_failures: r.add(IntCounter::new(
                 names::STORE_WRITE_FAILURES_TOTAL,
                 "Store writes that failed and were retried.",
             )
-            .expect("valid"),
-            entities: IntGaugeVec::new(
+            .expect("valid")),
+            entities: r.add(IntGaugeVec::new(
                 Opts::new(names::ENTITIES, "Items, users and rating pairs (pairs estimated by RocksDB)."),
                 &["entity"],
             )
-            .expect("valid"),
-            store_bytes: IntGauge::new(names::STORE_SIZE_BYTES, "Bytes of the store's SST files.").expect("valid"),
-            pending_compaction_bytes: IntGauge::new(
+            .expect("valid")),
+            store_bytes: r.add(IntGauge::new(names::STORE_SIZE_BYTES, "Bytes of the store's SST files.").expect("valid")),
+            pending_compaction_bytes: r.add(IntGauge::new(
                 names::STORE_PENDING_COMPACTION_BYTES,
                 "RocksDB's estimate of the bytes compaction still has to rewrite.",
             )
-            .expect("valid"),
-            disk_available_bytes: IntGauge::new(
+            .expect("valid")),
+            disk_available_bytes: r.add(IntGauge::new(
                 names::STORE_DISK_AVAILABLE_BYTES,
                 "Free bytes on the filesystem holding the store.",
             )
-            .expect("valid"),
-            broker_up: IntGauge::new(names::BROKER_REACHABLE, "1 while a broker answered recently.").expect("valid"),
-            ready: IntGauge::new(names::READY, "1 while every readiness check passes.").expect("valid"),
-            last_publish: Gauge::new(
+            .expect("valid")),
+            broker_up: r.add(IntGauge::new(names::BROKER_REACHABLE, "1 while a broker answered recently.").expect("valid")),
+            ready: r.add(IntGauge::new(names::READY, "1 while every readiness check passes.").expect("valid")),
+            last_publish: r.add(Gauge::new(
                 names::LAST_PUBLISH_TIMESTAMP_SECONDS,
                 "Unix time at which the last publication cycle completed.",
             )
-            .expect("valid"),
-            staleness: Gauge::new(
+            .expect("valid")),
+            staleness: r.add(Gauge::new(
                 names::STALENESS_SECONDS,
                 "Age of the oldest change not yet reflected in a published list (0 when none).",
             )
-            .expect("valid"),
-            event_time_lag: Gauge::new(
+            .expect("valid")),
+            event_time_lag: r.add(Gauge::new(
                 names::EVENT_TIME_LAG_SECONDS,
                 "Now minus the newest event time reflected in the published lists.",
             )
-            .expect("valid"),
-            batch_stalled: Gauge::new(
+            .expect("valid")),
+            batch_stalled: r.add(Gauge::new(
                 names::BATCH_STALLED_SECONDS,
                 "How long the batch in hand has been failing to commit (dead letters not acknowledged, or the store write failing); 0 when none is.",
             )
-            .expect("valid"),
+            .expect("valid")),
             batch_stalled_since_ns: AtomicI64::new(UNSET),
             lag_total: AtomicI64::new(UNSET),
             oldest_dirty_ns: AtomicI64::new(UNSET),
             published_watermark_ns: AtomicI64::new(UNSET),
             positions: Mutex::new(BTreeMap::new()),
-            registry,
+            registry: r.0.clone(),
         };
         let build = GaugeVec::new(
             Opts::new(names::BUILD_INFO, "Always 1; the labels say which build runs."),
@@ -317,40 +330,7 @@ impl Metrics {
         )
         .expect("valid");
         build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1.0);
-        let collectors: Vec<Box<dyn prometheus::core::Collector>> = vec![
-            Box::new(build),
-            Box::new(m.events.clone()),
-            Box::new(m.rejected.clone()),
-            Box::new(m.dead_letters.clone()),
-            Box::new(m.batches.clone()),
-            Box::new(m.batch_seconds.clone()),
-            Box::new(m.pair_updates.clone()),
-            Box::new(m.recenterings.clone()),
-            Box::new(m.center_gap_max.clone()),
-            Box::new(m.center_gap.clone()),
-            Box::new(m.consumer_lag.clone()),
-            Box::new(m.cycles.clone()),
-            Box::new(m.cycle_seconds.clone()),
-            Box::new(m.lists_published.clone()),
-            Box::new(m.tombstones.clone()),
-            Box::new(m.delivery_failures.clone()),
-            Box::new(m.list_drift.clone()),
-            Box::new(m.list_rbo.clone()),
-            Box::new(m.store_write_failures.clone()),
-            Box::new(m.entities.clone()),
-            Box::new(m.store_bytes.clone()),
-            Box::new(m.pending_compaction_bytes.clone()),
-            Box::new(m.disk_available_bytes.clone()),
-            Box::new(m.broker_up.clone()),
-            Box::new(m.ready.clone()),
-            Box::new(m.last_publish.clone()),
-            Box::new(m.staleness.clone()),
-            Box::new(m.event_time_lag.clone()),
-            Box::new(m.batch_stalled.clone()),
-        ];
-        for c in collectors {
-            m.registry.register(c).expect("metric names are unique");
-        }
+        r.add(build);
         // Every label value exists from the start, so a rate over a quiet counter is 0,
         // not an absent series that alert rules and dashboards cannot tell from a gap.
         for reason in RejectReason::ALL {

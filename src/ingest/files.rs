@@ -10,6 +10,33 @@ use crate::meter::{Display, Meter, Unit};
 use crate::source::{Decoded, InputFile, RecordReader};
 use crate::store::FilePosition;
 
+/// Reads records up to the ordinal `boundary` (or the end of the file) into a batch; true
+/// with it when the file ended.
+fn read_batch(reader: &mut RecordReader, boundary: u64, source: &str) -> Result<(ReadBatch, bool)> {
+    let mut batch = ReadBatch::default();
+    while reader.ordinal() < boundary {
+        let Some(record) = reader.next_record()? else {
+            return Ok((batch, true));
+        };
+        match record.decoded {
+            Decoded::Event(e) => {
+                batch.events.push(e);
+                batch.records += 1;
+            }
+            Decoded::Blank => {}
+            Decoded::Rejected(rejection, raw) => {
+                let origin = RecordOrigin::File {
+                    line: record.line,
+                    record: record.ordinal,
+                };
+                batch.reject(source, origin, &rejection, &raw);
+                batch.records += 1;
+            }
+        }
+    }
+    Ok((batch, false))
+}
+
 /// Replays the request's files to their end, then publishes.
 pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
     let inputs = request
@@ -47,29 +74,7 @@ pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
         reader.skip_to(position.next_record)?;
         loop {
             let boundary = (reader.ordinal() / batch_len + 1) * batch_len;
-            let mut batch = ReadBatch::default();
-            let mut at_end = false;
-            while reader.ordinal() < boundary {
-                let Some(record) = reader.next_record()? else {
-                    at_end = true;
-                    break;
-                };
-                match record.decoded {
-                    Decoded::Event(e) => {
-                        batch.events.push(e);
-                        batch.records += 1;
-                    }
-                    Decoded::Blank => {}
-                    Decoded::Rejected(rejection, raw) => {
-                        let origin = RecordOrigin::File {
-                            line: record.line,
-                            record: record.ordinal,
-                        };
-                        batch.reject(&input.canonical, origin, &rejection, &raw);
-                        batch.records += 1;
-                    }
-                }
-            }
+            let (batch, at_end) = read_batch(&mut reader, boundary, &input.canonical)?;
             // A file that ends exactly on a boundary is only known to be done on the next
             // read, which then commits an empty batch that marks it done.
             let next_record = reader.ordinal();
