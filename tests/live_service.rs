@@ -105,8 +105,9 @@ impl Scenario {
                 .collect();
             assert!(
                 std::time::Instant::now() < deadline,
-                "the service did not consume every partition within {CATCH_UP:?}; its log ends:\n{}",
-                tail.into_iter().rev().collect::<Vec<_>>().join("\n")
+                "the service did not consume every partition within {CATCH_UP:?}; its log ends:\n{}\nthe broker's log ends:\n{}",
+                tail.into_iter().rev().collect::<Vec<_>>().join("\n"),
+                self.broker.log_tail(40)
             );
             std::thread::sleep(Duration::from_millis(200));
         }

@@ -63,6 +63,13 @@ impl Broker {
         format!("127.0.0.1:{}", self.port)
     }
 
+    /// The last `lines` lines the broker wrote since it last started, for failure messages.
+    pub fn log_tail(&self, lines: usize) -> String {
+        let text = std::fs::read_to_string(self.data.path().join("broker.log")).unwrap_or_default();
+        let tail: Vec<&str> = text.lines().rev().take(lines).collect();
+        tail.into_iter().rev().collect::<Vec<_>>().join("\n")
+    }
+
     /// Kills the broker process (its storage stays).
     pub fn stop(&mut self) {
         if let Some(mut child) = self.child.take() {
