@@ -98,6 +98,7 @@ fn run(
             max_items_per_user: 500,
             publish_interval: "1s",
             batch_events: 5000,
+            ..LiveSettings::default()
         },
     );
     let service = Service::start(&config, port, &[]);

@@ -75,6 +75,7 @@ fn defaults() -> LiveSettings {
         max_items_per_user: 500,
         publish_interval: "5s",
         batch_events: 5000,
+        ..LiveSettings::default()
     }
 }
 

@@ -423,7 +423,16 @@ fn a_broker_outage_turns_the_service_not_ready_and_it_completes_exactly_after() 
     let events = sc.unstamped();
     let half = events.len() / 2;
     sc.produce(&events[..half]);
-    let (config, port) = sc.config(&LiveSettings::default());
+    // tansu 0.6.0 loses an idempotent producer's per-partition state when it is killed:
+    // the service's next send then panics its storage task ("more or less than one row"
+    // in idempotent_message_check) and every later request fails. A real Kafka broker keeps
+    // that state; here the service produces without idempotence, which this test's checks
+    // (the last list per key) do not depend on.
+    let settings = LiveSettings {
+        idempotent_producer: false,
+        ..LiveSettings::default()
+    };
+    let (config, port) = sc.config(&settings);
     let mut service = Service::start(&config, port, &[]);
     wait_for("the first half to be consumed", CATCH_UP, || {
         caught_up(&sc.brokers(), 3)

@@ -60,6 +60,12 @@ pub struct KafkaConfig {
     pub topic_partitions: i32,
     /// Replication factor of topics the service creates.
     pub topic_replication: i32,
+    /// Produce lists and dead letters with Kafka's idempotent producer, so a retried send
+    /// never writes a record twice. Off only for a broker that cannot keep producer state
+    /// across its own restart (the test broker's case, see tests/live_service.rs): lists
+    /// are keyed and compacted, so a duplicate list is harmless; a dead letter may then
+    /// appear twice.
+    pub idempotent_producer: bool,
     /// librdkafka properties passed unchanged (SASL, TLS, timeouts…). Values whose key
     /// contains password, secret, token or key are masked wherever simtide prints them.
     pub client: BTreeMap<String, String>,
@@ -78,6 +84,7 @@ impl Default for KafkaConfig {
             create_topics: true,
             topic_partitions: 1,
             topic_replication: 1,
+            idempotent_producer: true,
             client: BTreeMap::new(),
         }
     }

@@ -108,11 +108,11 @@ impl DeliveryReport {
 }
 
 impl RecordProducer {
-    /// Creates the producer. Idempotence and full acknowledgement are forced: they are what
-    /// makes a retried delivery safe.
+    /// Creates the producer. Full acknowledgement is forced and idempotence is on unless
+    /// `kafka.idempotent_producer` turns it off: together they make a retried delivery safe.
     pub fn new(kafka: &KafkaConfig, bus: BusContext) -> Result<RecordProducer> {
         let mut config = base_config(kafka);
-        config.set("enable.idempotence", "true");
+        config.set("enable.idempotence", kafka.idempotent_producer.to_string());
         config.set("acks", "all");
         config.set("compression.type", "none");
         let acks = Arc::new(Acks::default());

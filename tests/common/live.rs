@@ -42,6 +42,8 @@ pub struct LiveSettings {
     pub publish_interval: &'static str,
     /// live.batch_events
     pub batch_events: usize,
+    /// kafka.idempotent_producer
+    pub idempotent_producer: bool,
 }
 
 impl Default for LiveSettings {
@@ -52,6 +54,7 @@ impl Default for LiveSettings {
             max_items_per_user: 0,
             publish_interval: "1s",
             batch_events: 2000,
+            idempotent_producer: true,
         }
     }
 }
@@ -75,6 +78,7 @@ output_topic = "{OUTPUT}"
 purchase_output_topic = "{PURCHASE_OUTPUT}"
 dead_letter_topic = "{DEAD_LETTER}"
 create_topics = false
+idempotent_producer = {idempotent}
 [kafka.client]
 "topic.metadata.refresh.interval.ms" = "2000"
 [live]
@@ -92,6 +96,7 @@ listen = "127.0.0.1:{port}"
         store = store.display(),
         batch = s.batch_events,
         interval = s.publish_interval,
+        idempotent = s.idempotent_producer,
     );
     let path = dir.join(format!("simtide-{port}.toml"));
     std::fs::write(&path, text).unwrap();
