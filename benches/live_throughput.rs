@@ -2,11 +2,12 @@
 //! the default settings, against the file backfill of the same events in the same run.
 //!
 //! 1. Saturation: all events produced up front; time until the service committed them
-//!    all = sustained consumption rate.
-//! 2. Paced: events offered at a fixed rate (`SIMTIDE_BENCH_RATE`, default 3000/s) while
-//!    the consumer lag is sampled every 500 ms; the service's exit summary gives the
-//!    event-to-publication latency (record timestamp → end of the publication cycle
-//!    that covered the event), p50 and p99.
+//!    all = sustained consumption rate, printed beside the reference: a bare rdkafka
+//!    consumer that only reads and discards the same topic on the same broker.
+//! 2. Paced: events offered at a fixed rate (`SIMTIDE_BENCH_RATE`; by default half the
+//!    service's saturation rate) while the consumer lag is sampled every 500 ms; the
+//!    service's exit summary gives the event-to-publication latency (record timestamp →
+//!    end of the publication cycle that covered the event), p50 and p99.
 //! 3. `simtide backfill` of the same events from a CSV file.
 //!
 //! Run with `cargo bench --bench live_throughput` (part of `make bench`).
@@ -21,6 +22,7 @@ use common::live::{
     INPUT,
 };
 use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::message::Message;
 use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
 use rdkafka::{ClientConfig, Offset, TopicPartitionList};
 
@@ -79,7 +81,37 @@ fn defaults() -> LiveSettings {
     }
 }
 
-fn saturation(events: &[(String, String, Option<i64>)]) {
+/// Reads every record of the input topic from the start with a plain consumer that does
+/// nothing with them; returns records per second.
+fn bare_consumer_rate(brokers: &str, expected: usize) -> f64 {
+    let consumer: BaseConsumer = ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .set("group.id", "bench-bare-reader")
+        .set("enable.auto.commit", "false")
+        .create()
+        .unwrap();
+    let mut tpl = TopicPartitionList::new();
+    for p in 0..PARTITIONS {
+        tpl.add_partition_offset(INPUT, p, Offset::Beginning).unwrap();
+    }
+    consumer.assign(&tpl).unwrap();
+    let started = Instant::now();
+    let mut seen = 0usize;
+    while seen < expected {
+        assert!(
+            started.elapsed() < Duration::from_secs(600),
+            "bare consumer stalled at {seen}"
+        );
+        if let Some(Ok(message)) = consumer.poll(Duration::from_millis(100)) {
+            std::hint::black_box(message.payload());
+            seen += 1;
+        }
+    }
+    expected as f64 / started.elapsed().as_secs_f64()
+}
+
+/// Returns the service's sustained events per second.
+fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
     let work = tempfile::tempdir().unwrap();
     let broker = broker_with_topics();
     let t = Instant::now();
@@ -98,13 +130,19 @@ fn saturation(events: &[(String, String, Option<i64>)]) {
     });
     let consume_s = started.elapsed().as_secs_f64();
     let (_, report) = service.terminate(Duration::from_secs(60));
+    let ours = events.len() as f64 / consume_s;
+    let reference = bare_consumer_rate(&broker.bootstrap(), events.len());
     println!(
-        "saturation: produced {} in {produce_s:.1}s ({:.0}/s); consumed and committed in {consume_s:.1}s from process start = {:.0} events/s",
+        "saturation: produced {} in {produce_s:.1}s ({:.0}/s); consumed and committed in {consume_s:.1}s from process start",
         events.len(),
         events.len() as f64 / produce_s,
-        events.len() as f64 / consume_s
+    );
+    println!(
+        "  events/s: ours {ours:.0}, reference (bare rdkafka consumer, same topic and broker) {reference:.0}, ratio {:.3}",
+        ours / reference
     );
     println!("{report}\n");
+    ours
 }
 
 fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
@@ -191,10 +229,6 @@ fn file_backfill() {
 
 fn main() {
     // `cargo bench` passes --bench; any other argument is ignored.
-    let rate: f64 = std::env::var("SIMTIDE_BENCH_RATE")
-        .ok()
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(3000.0);
     let events: Vec<(String, String, Option<i64>)> =
         csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
             .into_iter()
@@ -203,7 +237,11 @@ fn main() {
     println!(
         "simtide live benchmark, MovieLens snapshot, default settings, tansu 0.6.0 broker on 127.0.0.1\n"
     );
-    saturation(&events);
+    let sustained = saturation(&events);
+    let rate: f64 = std::env::var("SIMTIDE_BENCH_RATE")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(sustained / 2.0);
     paced(&events, rate);
     file_backfill();
 }

@@ -1,20 +1,24 @@
 //! One micro-batch from decoded events to a committed store write: intern ids, load the
 //! states the batch touches, run the engine, and persist everything — including the source
-//! position the batch consumed — in one WriteBatch. Backfill and the live consumer both
-//! feed batches through here.
+//! position the batch consumed — in one write. The live consumer commits every batch
+//! ([`apply_and_commit`]); a backfill applies many batches to one [`Pending`] segment in
+//! memory and commits it once, its pair sums ingested as sorted files (docs/design.md,
+//! "Bulk backfill").
 
 use std::collections::{BTreeMap, HashMap};
 
 use anyhow::Result;
 
 use crate::decode::RejectReason;
+use crate::engine::segment::SegmentEffects;
 use crate::engine::tally::EventTally;
-use crate::engine::{apply_batch, Action, EngineSettings, Sequenced};
+use crate::engine::user_state::UserState;
+use crate::engine::{apply_batch, Action, BatchEffects, EngineSettings, ItemStatus, Sequenced};
 use crate::event::{Event, EventBody};
-use crate::store::{BatchCommit, Ledger, Store};
+use crate::store::{BatchCommit, Ledger, PairWrite, Store};
 use crate::timefmt::now_nanos;
 
-/// What one committed batch did.
+/// What one applied batch did.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct BatchSummary {
     /// Accepted events by kind and outcome.
@@ -40,6 +44,14 @@ struct NameIds {
 }
 
 impl NameIds {
+    fn starting_at(next: u32) -> NameIds {
+        NameIds {
+            known: HashMap::new(),
+            next,
+            added: Vec::new(),
+        }
+    }
+
     fn id(&mut self, name: &str, stored: impl Fn(&str) -> Option<u32>) -> u32 {
         if let Some(id) = stored(name).or_else(|| self.known.get(name).copied()) {
             return id;
@@ -52,42 +64,46 @@ impl NameIds {
     }
 }
 
-/// Assigns dense ids to the names a batch uses, remembering the new ones.
+/// Assigns dense ids to the names a batch uses: stored ids first, then the ones the
+/// segment assigned, then new ones from the segment's counters.
 struct Interner<'a> {
     store: &'a Store,
-    users: NameIds,
-    items: NameIds,
+    stored_users: HashMap<String, u32>,
+    users: &'a mut NameIds,
+    items: &'a mut NameIds,
 }
 
 impl<'a> Interner<'a> {
-    fn new(store: &'a Store, events: &[Event]) -> Result<Interner<'a>> {
-        let p = store.ledger();
-        let mut names: Vec<&str> = events.iter().filter_map(Event::user).collect();
+    fn new(
+        store: &'a Store,
+        events: &[Event],
+        users: &'a mut NameIds,
+        items: &'a mut NameIds,
+    ) -> Result<Self> {
+        let mut names: Vec<&str> = events
+            .iter()
+            .filter_map(Event::user)
+            .filter(|n| !users.known.contains_key(*n))
+            .collect();
         names.sort_unstable();
         names.dedup();
         let known = store.user_ids(&names)?;
-        let users = names
+        let stored_users = names
             .iter()
             .zip(known)
             .filter_map(|(n, id)| id.map(|id| (n.to_string(), id)))
             .collect();
         Ok(Interner {
             store,
-            users: NameIds {
-                known: users,
-                next: p.next_user,
-                added: Vec::new(),
-            },
-            items: NameIds {
-                known: HashMap::new(),
-                next: p.next_item,
-                added: Vec::new(),
-            },
+            stored_users,
+            users,
+            items,
         })
     }
 
     fn user(&mut self, name: &str) -> u32 {
-        self.users.id(name, |_| None)
+        let stored = &self.stored_users;
+        self.users.id(name, |n| stored.get(n).copied())
     }
 
     fn item(&mut self, name: &str) -> u32 {
@@ -121,9 +137,182 @@ impl<'a> Interner<'a> {
     }
 }
 
-/// Applies one micro-batch and commits it. `rejects` counts the records of the same batch
-/// that failed validation; `advance` records the source position the batch consumed in
-/// the ledger that is written with it.
+/// Bytes a pending rating pair delta and a purchase pair delta hold, with room for the
+/// merge of two runs and the both-orders index the commit builds (measured against peak
+/// RSS in `make bench`).
+const PENDING_RATING_PAIR_BYTES: usize =
+    2 * std::mem::size_of::<(u32, u32, crate::engine::RatingPairDelta)>() + 32;
+const PENDING_PURCHASE_PAIR_BYTES: usize = 2 * std::mem::size_of::<(u32, u32, i64)>() + 32;
+/// Bytes one applied event may add to the pending user histories and ids (rounded up).
+const PENDING_EVENT_STATE_BYTES: usize = 96;
+
+/// Batches applied in memory and not yet committed: the ids they assigned, the current
+/// state of every user and item status they touched, their summed effects, and the ledger
+/// to write with them. Nothing of it is in the store until [`Pending::commit`].
+pub struct Pending {
+    users: NameIds,
+    items: NameIds,
+    states: HashMap<u32, UserState>,
+    statuses: HashMap<u32, ItemStatus>,
+    effects: SegmentEffects,
+    ledger: Ledger,
+    state_bytes: usize,
+}
+
+impl Pending {
+    /// An empty segment starting from the store's committed state.
+    pub fn new(store: &Store) -> Pending {
+        let ledger = store.ledger().clone();
+        Pending {
+            users: NameIds::starting_at(ledger.next_user),
+            items: NameIds::starting_at(ledger.next_item),
+            states: HashMap::new(),
+            statuses: HashMap::new(),
+            effects: SegmentEffects::default(),
+            ledger,
+            state_bytes: 0,
+        }
+    }
+
+    /// The ledger as it will be committed; the caller records source positions in it.
+    pub fn ledger_mut(&mut self) -> &mut Ledger {
+        &mut self.ledger
+    }
+
+    /// The store-wide position after the last applied event.
+    pub fn next_seq(&self) -> u64 {
+        self.ledger.next_seq
+    }
+
+    /// Memory the segment holds, estimated from its pair deltas and user histories.
+    pub fn estimated_bytes(&self) -> usize {
+        let (rating, purchase) = self.effects.pair_entries();
+        rating * PENDING_RATING_PAIR_BYTES + purchase * PENDING_PURCHASE_PAIR_BYTES + self.state_bytes
+    }
+
+    /// Applies one batch after the ones already pending. `rejects` counts the records of
+    /// the same batch that failed validation.
+    pub fn apply(
+        &mut self,
+        store: &Store,
+        settings: &EngineSettings,
+        events: &[Event],
+        rejects: &BTreeMap<RejectReason, u64>,
+    ) -> Result<BatchSummary> {
+        let mut interner = Interner::new(store, events, &mut self.users, &mut self.items)?;
+        let mut next_seq = self.ledger.next_seq;
+        let sequenced: Vec<Sequenced> = events
+            .iter()
+            .map(|e| {
+                let seq = next_seq;
+                next_seq += 1;
+                Sequenced {
+                    seq,
+                    at: e.at,
+                    action: interner.action(&e.body),
+                }
+            })
+            .collect();
+        let mut unloaded: Vec<u32> = sequenced
+            .iter()
+            .filter_map(|s| s.action.user())
+            .filter(|u| !self.states.contains_key(u))
+            .collect();
+        unloaded.sort_unstable();
+        unloaded.dedup();
+        let status_items: Vec<u32> = sequenced
+            .iter()
+            .filter_map(|s| match s.action {
+                Action::ItemStatus { item, .. } => Some(item),
+                _ => None,
+            })
+            .filter(|i| !self.statuses.contains_key(i))
+            .collect();
+        let loaded = store.load_users(&unloaded)?;
+        self.state_bytes += loaded.values().map(UserState::approx_bytes).sum::<usize>();
+        self.states.extend(loaded);
+        self.statuses.extend(store.load_statuses(&status_items)?);
+        let effects = apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses);
+        // Each event adds at most one entry to a history (plus its share of a new user).
+        self.state_bytes += sequenced.len() * PENDING_EVENT_STATE_BYTES;
+
+        let ledger = &mut self.ledger;
+        ledger.next_seq = next_seq;
+        ledger.next_user = self.users.next;
+        ledger.next_item = self.items.next;
+        ledger.buyers += effects.buyers_delta;
+        ledger.recenterings += effects.recenterings;
+        ledger.pair_updates += effects.pair_updates;
+        if let Some(t) = effects.newest_event_at {
+            ledger.event_time_watermark = Some(ledger.event_time_watermark.map_or(t, |w| w.max(t)));
+        }
+        for (&(kind, outcome), &n) in effects.outcomes.iter() {
+            *ledger.events.entry(EventTally::key(kind, outcome)).or_default() += n;
+        }
+        for (reason, &n) in rejects {
+            *ledger.rejects.entry(reason.code().to_string()).or_default() += n;
+        }
+        let summary = BatchSummary {
+            outcomes: effects.outcomes.clone(),
+            pair_updates: effects.pair_updates,
+            recenterings: effects.recenterings,
+            max_center_gap: effects.max_center_gap,
+            center_gaps: effects.center_gaps.clone(),
+            marked_dirty: !effects.dirty_rating.is_empty() || !effects.dirty_purchase.is_empty(),
+        };
+        self.effects.absorb(effects);
+        Ok(summary)
+    }
+
+    /// Persists the segment: in one WriteBatch, or with its pair sums ingested as sorted
+    /// files first (`PairWrite::Ingested`) and everything else in one WriteBatch after.
+    /// Returns the segment's effects, pair deltas summed and sorted.
+    pub fn commit(self, store: &mut Store, pairs: PairWrite) -> Result<BatchEffects> {
+        let started = std::time::Instant::now();
+        let effects = self.effects.into_effects();
+        let summed = started.elapsed();
+        if pairs == PairWrite::Ingested {
+            store.ingest_pairs(&effects, self.ledger.next_seq)?;
+            tracing::debug!(
+                rating_pairs = effects.rating_pairs.len(),
+                purchase_pairs = effects.purchase_pairs.len(),
+                users = effects.touched_users.len(),
+                sum_seconds = summed.as_secs_f64(),
+                write_seconds = (started.elapsed() - summed).as_secs_f64(),
+                "segment's pair sums written as table files"
+            );
+        }
+        let changed_users: Vec<_> = effects
+            .touched_users
+            .iter()
+            .map(|u| (*u, self.states.get(u).expect("touched users are loaded")))
+            .collect();
+        store.commit(BatchCommit {
+            new_users: self.users.added,
+            new_items: self.items.added,
+            users: changed_users,
+            effects: &effects,
+            pairs,
+            ledger: self.ledger,
+            dirty_since: now_nanos(),
+        })?;
+        Ok(effects)
+    }
+}
+
+#[cfg(test)]
+impl Pending {
+    /// The first half of a bulk commit alone: what a run killed between ingesting a
+    /// segment's table files and committing the rest leaves behind.
+    pub(crate) fn ingest_without_commit(self, store: &Store) -> Result<()> {
+        let end = self.ledger.next_seq;
+        store.ingest_pairs(&self.effects.into_effects(), end)
+    }
+}
+
+/// Applies one micro-batch and commits it in one WriteBatch. `rejects` counts the records
+/// of the same batch that failed validation; `advance` records the source position the
+/// batch consumed in the ledger that is written with it.
 pub fn apply_and_commit(
     store: &mut Store,
     settings: &EngineSettings,
@@ -131,77 +320,9 @@ pub fn apply_and_commit(
     rejects: &BTreeMap<RejectReason, u64>,
     advance: impl FnOnce(&mut Ledger),
 ) -> Result<BatchSummary> {
-    let mut interner = Interner::new(store, events)?;
-    let mut next_seq = store.ledger().next_seq;
-    let sequenced: Vec<Sequenced> = events
-        .iter()
-        .map(|e| {
-            let seq = next_seq;
-            next_seq += 1;
-            Sequenced {
-                seq,
-                at: e.at,
-                action: interner.action(&e.body),
-            }
-        })
-        .collect();
-    let Interner {
-        users: user_ids_table,
-        items: item_ids_table,
-        ..
-    } = interner;
-
-    let mut user_ids: Vec<u32> = sequenced.iter().filter_map(|s| s.action.user()).collect();
-    user_ids.sort_unstable();
-    user_ids.dedup();
-    let status_items: Vec<u32> = sequenced
-        .iter()
-        .filter_map(|s| match s.action {
-            Action::ItemStatus { item, .. } => Some(item),
-            _ => None,
-        })
-        .collect();
-    let mut users = store.load_users(&user_ids)?;
-    let mut statuses = store.load_statuses(&status_items)?;
-    let effects = apply_batch(settings, &sequenced, &mut users, &mut statuses);
-
-    let mut ledger = store.ledger().clone();
-    ledger.next_seq = next_seq;
-    ledger.next_user = user_ids_table.next;
-    ledger.next_item = item_ids_table.next;
-    ledger.buyers += effects.buyers_delta;
-    ledger.recenterings += effects.recenterings;
-    ledger.pair_updates += effects.pair_updates;
-    if let Some(t) = effects.newest_event_at {
-        ledger.event_time_watermark = Some(ledger.event_time_watermark.map_or(t, |w| w.max(t)));
-    }
-    for (&(kind, outcome), &n) in effects.outcomes.iter() {
-        *ledger.events.entry(EventTally::key(kind, outcome)).or_default() += n;
-    }
-    for (reason, &n) in rejects {
-        *ledger.rejects.entry(reason.code().to_string()).or_default() += n;
-    }
-    advance(&mut ledger);
-
-    let changed_users: Vec<_> = effects
-        .touched_users
-        .iter()
-        .map(|u| (*u, users.get(u).expect("touched users are loaded")))
-        .collect();
-    store.commit(BatchCommit {
-        new_users: user_ids_table.added,
-        new_items: item_ids_table.added,
-        users: changed_users,
-        effects: &effects,
-        ledger,
-        dirty_since: now_nanos(),
-    })?;
-    Ok(BatchSummary {
-        outcomes: effects.outcomes.clone(),
-        pair_updates: effects.pair_updates,
-        recenterings: effects.recenterings,
-        max_center_gap: effects.max_center_gap,
-        center_gaps: effects.center_gaps.clone(),
-        marked_dirty: !effects.dirty_rating.is_empty() || !effects.dirty_purchase.is_empty(),
-    })
+    let mut pending = Pending::new(store);
+    let summary = pending.apply(store, settings, events, rejects)?;
+    advance(pending.ledger_mut());
+    pending.commit(store, PairWrite::InBatch)?;
+    Ok(summary)
 }

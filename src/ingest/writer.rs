@@ -1,27 +1,30 @@
 //! The one batch writer of every backfill, whatever it reads: each batch's rejected
-//! records are appended to the rejects file, then its events, counters and source
-//! position are committed in one store write (with the rejects file's new length, so a
-//! crash never leaves rejects of an uncommitted batch behind), and the run's tallies,
-//! metrics and progress move. At the end every dirty list is published.
+//! records are appended to the rejects file and its events applied to a pending segment
+//! in memory; when the segment fills `backfill.memory_budget` (or the input ends) its pair
+//! sums are ingested as sorted table files and everything else — users, ids, counters,
+//! source positions and the rejects file's length — committed in one store write, so a
+//! crash never leaves rejects or sums of an uncommitted segment behind. A run killed
+//! between the two steps finds the segment's marker and replays exactly that segment
+//! (docs/design.md, "Bulk backfill"). At the end every dirty list is published.
 
 use std::collections::BTreeMap;
 use std::fs::{File, OpenOptions};
 use std::io::{Seek, SeekFrom, Write};
 use std::time::Instant;
 
-use anyhow::{Context, Result};
+use anyhow::{bail, Context, Result};
 use serde_json::{json, Value};
 
 use super::summary::BackfillSummary;
 use super::BackfillRequest;
 use crate::decode::{RejectReason, Rejection};
-use crate::engine::EngineSettings;
+use crate::engine::{BatchEffects, EngineSettings};
 use crate::event::Event;
 use crate::meter::{Display, Meter, Unit};
 use crate::observe::Observation;
-use crate::pipeline::apply_and_commit;
+use crate::pipeline::Pending;
 use crate::publish::publish_dirty;
-use crate::store::{rejects_path, Ledger, Store};
+use crate::store::{rejects_path, Ledger, PairRows, PairWrite, SegmentRows, Store};
 use crate::timefmt::now_nanos;
 
 /// Where a refused record came from, as the rejects file names it.
@@ -79,7 +82,7 @@ impl ReadBatch {
     }
 }
 
-/// Commits batches into one store for one backfill run.
+/// Applies batches to one store for one backfill run, segment by segment.
 pub struct BatchWriter<'a> {
     request: &'a BackfillRequest,
     store: Store,
@@ -87,6 +90,14 @@ pub struct BatchWriter<'a> {
     rejects_file: File,
     summary: BackfillSummary,
     started: Instant,
+    pending: Option<Pending>,
+    /// The end of a segment a killed run ingested but did not commit: the next segment
+    /// must end exactly there.
+    unfinished_segment_end: Option<u64>,
+    /// The effects of the last committed segment while it is the only one that wrote
+    /// pairs into the store: its rows are then the store's whole content, and the lists
+    /// are scored from them instead of reading millions of rows back.
+    only_pair_segment: Option<BatchEffects>,
 }
 
 impl<'a> BatchWriter<'a> {
@@ -94,7 +105,15 @@ impl<'a> BatchWriter<'a> {
     pub fn open(request: &'a BackfillRequest) -> Result<BatchWriter<'a>> {
         let started = Instant::now();
         let store = Store::open(&request.store_dir, &request.config)?;
+        store.set_pair_compaction(false)?;
         let rejects_file = open_rejects(&store)?;
+        let unfinished_segment_end = store.uncommitted_segment_end()?;
+        if let Some(end) = unfinished_segment_end {
+            tracing::info!(
+                segment_end = end,
+                "resuming a segment whose pair sums were ingested but not committed"
+            );
+        }
         let summary = BackfillSummary {
             rejects_file: rejects_path(store.dir()),
             ..BackfillSummary::default()
@@ -106,6 +125,9 @@ impl<'a> BatchWriter<'a> {
             rejects_file,
             summary,
             started,
+            pending: None,
+            unfinished_segment_end,
+            only_pair_segment: None,
         })
     }
 
@@ -119,42 +141,68 @@ impl<'a> BatchWriter<'a> {
         self.summary.records() as f64 / self.started.elapsed().as_secs_f64().max(1e-9)
     }
 
-    /// Writes the batch's rejects, then commits it; `advance` records the source position
-    /// it consumed in the progress state written with it.
+    /// Writes the batch's rejects and applies it to the pending segment; `advance` records
+    /// the source position it consumed in the ledger the segment will commit. Commits the
+    /// segment when it is due.
     pub fn commit(&mut self, batch: ReadBatch, advance: impl FnOnce(&mut Ledger)) -> Result<()> {
         self.rejects_file.write_all(batch.reject_lines.as_bytes())?;
         self.rejects_file.flush()?;
         let rejects_len = self.rejects_file.metadata()?.len();
-        let commit_started = Instant::now();
-        let committed = apply_and_commit(
-            &mut self.store,
-            &self.settings,
-            &batch.events,
-            &batch.rejects,
-            |p| {
-                advance(p);
-                p.rejects_file_len = rejects_len;
-            },
-        )?;
-        self.summary.absorb(&committed);
+        let apply_started = Instant::now();
+        let pending = self.pending.get_or_insert_with(|| Pending::new(&self.store));
+        let applied = pending.apply(&self.store, &self.settings, &batch.events, &batch.rejects)?;
+        advance(pending.ledger_mut());
+        pending.ledger_mut().rejects_file_len = rejects_len;
+        self.summary.absorb(&applied);
         if let Some(m) = &self.request.metrics {
             Observation::BatchCommitted {
                 messages: batch.records,
-                summary: &committed,
+                summary: &applied,
                 rejects: &batch.rejects,
-                seconds: commit_started.elapsed().as_secs_f64(),
+                seconds: apply_started.elapsed().as_secs_f64(),
             }
             .emit(m);
         }
         for (reason, n) in batch.rejects {
             *self.summary.rejects.entry(reason).or_default() += n;
         }
+        let due = match self.unfinished_segment_end {
+            Some(end) => pending.next_seq() >= end,
+            None => pending.estimated_bytes() as u64 >= self.request.config.backfill.memory_budget.0,
+        };
+        if due {
+            self.commit_segment()?;
+        }
+        Ok(())
+    }
+
+    /// Commits the pending segment, if any.
+    fn commit_segment(&mut self) -> Result<()> {
+        let Some(pending) = self.pending.take() else {
+            return Ok(());
+        };
+        if let Some(end) = self.unfinished_segment_end.take() {
+            if pending.next_seq() != end {
+                bail!(
+                    "store {} holds pair sums of a segment ending at event {end}, but this run's \
+                     batches end at event {}: rerun with the same inputs and backfill.batch_events \
+                     as the interrupted run",
+                    self.store.dir().display(),
+                    pending.next_seq()
+                );
+            }
+        }
+        let store_had_pairs = self.store.ledger().pair_keys_written;
+        let effects = pending.commit(&mut self.store, PairWrite::Ingested)?;
+        self.only_pair_segment = (!store_had_pairs).then_some(effects);
+        self.summary.segments += 1;
         Ok(())
     }
 
     /// Publishes every dirty list (stored only), with a progress display, and returns
     /// the run's summary.
     pub fn finish(mut self) -> Result<BackfillSummary> {
+        self.commit_segment()?;
         self.summary.apply_seconds = self.started.elapsed().as_secs_f64();
         let publish_started = Instant::now();
         let list_settings = self.request.config.list_settings();
@@ -164,10 +212,24 @@ impl<'a> BatchWriter<'a> {
             Unit::Items,
             Display::when(self.request.show_progress),
         );
-        self.summary.publication = publish_dirty(&self.store, &list_settings, now_nanos(), |done, total| {
-            meter.set_total(total);
-            meter.update(done, "lists");
-        })?;
+        let in_memory = self
+            .only_pair_segment
+            .as_ref()
+            .map(|fx| SegmentRows::new(fx, self.store.item_count(), self.store.ledger().buyers));
+        if in_memory.is_none() && self.summary.segments > 0 {
+            tracing::info!("merging the segments' pair sums before scoring");
+            self.store.compact_pairs();
+        }
+        self.store.set_pair_compaction(true)?;
+        let rows: &dyn PairRows = match &in_memory {
+            Some(rows) => rows,
+            None => &self.store,
+        };
+        self.summary.publication =
+            publish_dirty(&self.store, rows, &list_settings, now_nanos(), |done, total| {
+                meter.set_total(total);
+                meter.update(done, "lists");
+            })?;
         meter.finish();
         self.summary.publish_seconds = publish_started.elapsed().as_secs_f64();
         self.summary.users = u64::from(self.store.ledger().next_user);

@@ -368,11 +368,11 @@ impl Core {
         let started = Instant::now();
         let covered = std::mem::take(&mut self.unpublished_ms);
         let now = now_nanos();
-        let mut cycle = Cycle::plan(&self.store, now)?;
+        let mut cycle = Cycle::plan(&self.store, &self.store, now)?;
         let destination = self.destination();
         let mut undelivered = 0u64;
         let mut delivered = Vec::new();
-        while let Some(rescored) = cycle.next_chunk(&self.store, &self.lists)? {
+        while let Some(rescored) = cycle.next_chunk(&self.store, &self.store, &self.lists)? {
             let (mut writes, drifts): (Vec<_>, Vec<_>) =
                 rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
             let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();

@@ -9,33 +9,109 @@ use crate::event::UnixNanos;
 use crate::model::{DirtyMark, DirtyScope, Neighbor, PublishedList, RatingPairStats};
 use crate::signal::Signal;
 
-/// Encoded length of a [`RatingPairStats`] value.
-pub const RATING_PAIR_LEN: usize = 8 + 3 * 16;
+/// Longest encoded [`RatingPairStats`]: signs byte, n (10-byte varint), and three sums of
+/// a header byte and up to 16 bytes each.
+pub const RATING_PAIR_MAX_LEN: usize = 1 + 10 + 3 * 17;
 
-/// The fixed 56-byte form of a rating pair's sums: n, dot, s_row, s_other.
-pub fn encode_rating_pair(stats: &RatingPairStats) -> [u8; RATING_PAIR_LEN] {
-    let mut out = [0u8; RATING_PAIR_LEN];
-    out[..8].copy_from_slice(&stats.n.to_le_bytes());
-    out[8..24].copy_from_slice(&stats.dot.to_le_bytes());
-    out[24..40].copy_from_slice(&stats.s_row.to_le_bytes());
-    out[40..56].copy_from_slice(&stats.s_other.to_le_bytes());
-    out
+/// Header byte of a sum that needs all 16 bytes (no other header has both nibbles at 15:
+/// a sum's zero bytes and significant bytes add up to at most 16).
+const FULL_WIDTH: u8 = 0xFF;
+
+/// Appends a rating pair's sums in compact form. The sums are fixed-point integers
+/// (`engine::fixed`) of a few significant bytes with zero bytes on both sides (a 2^80
+/// scale leaves the low bytes of a double's product empty), so each magnitude is written
+/// as a header byte — zero bytes dropped at the low end (high nibble) and bytes kept (low
+/// nibble) — and only the kept bytes; the four signs share one byte and n is a varint.
+/// Typically 25–30 bytes where the fixed layout took 56, which is less to write, to keep
+/// in the write-ahead log and to read back.
+pub fn encode_rating_pair(stats: &RatingPairStats, out: &mut Vec<u8>) {
+    let sums = [stats.dot, stats.s_row, stats.s_other];
+    let mut signs = u8::from(stats.n < 0);
+    for (bit, v) in sums.iter().enumerate() {
+        signs |= u8::from(*v < 0) << (bit + 1);
+    }
+    out.push(signs);
+    let mut n = stats.n.unsigned_abs();
+    loop {
+        let low = (n & 0x7F) as u8;
+        n >>= 7;
+        if n == 0 {
+            out.push(low);
+            break;
+        }
+        out.push(low | 0x80);
+    }
+    for v in sums {
+        let m = v.unsigned_abs();
+        let bytes = m.to_le_bytes();
+        if m == 0 {
+            out.push(0);
+            continue;
+        }
+        let low_zeros = (m.trailing_zeros() / 8) as usize;
+        let high_zeros = (m.leading_zeros() / 8) as usize;
+        let kept = 16 - low_zeros - high_zeros;
+        if kept == 16 {
+            out.push(FULL_WIDTH);
+        } else {
+            out.push(((low_zeros as u8) << 4) | kept as u8);
+        }
+        out.extend_from_slice(&bytes[low_zeros..low_zeros + kept]);
+    }
 }
 
 /// Reads [`encode_rating_pair`]'s form.
 pub fn decode_rating_pair(bytes: &[u8]) -> Result<RatingPairStats> {
-    if bytes.len() != RATING_PAIR_LEN {
-        bail!(
-            "rating pair value has {} bytes, expected {RATING_PAIR_LEN}",
-            bytes.len()
-        );
+    let malformed = || anyhow::anyhow!("rating pair value of {} bytes is malformed", bytes.len());
+    let (&signs, mut rest) = bytes.split_first().ok_or_else(malformed)?;
+    let mut n: u64 = 0;
+    let mut shift = 0;
+    loop {
+        let (&b, tail) = rest.split_first().ok_or_else(malformed)?;
+        rest = tail;
+        if shift > 63 {
+            return Err(malformed());
+        }
+        n |= u64::from(b & 0x7F) << shift;
+        shift += 7;
+        if b & 0x80 == 0 {
+            break;
+        }
     }
-    let i128_at = |o: usize| i128::from_le_bytes(bytes[o..o + 16].try_into().expect("16 bytes"));
+    let mut sums = [0i128; 3];
+    for (bit, sum) in sums.iter_mut().enumerate() {
+        let (&header, tail) = rest.split_first().ok_or_else(malformed)?;
+        let (low_zeros, kept) = match header {
+            FULL_WIDTH => (0, 16),
+            h => ((h >> 4) as usize, (h & 0x0F) as usize),
+        };
+        if low_zeros + kept > 16 || tail.len() < kept {
+            return Err(malformed());
+        }
+        let mut le = [0u8; 16];
+        le[low_zeros..low_zeros + kept].copy_from_slice(&tail[..kept]);
+        rest = &tail[kept..];
+        let m = u128::from_le_bytes(le);
+        *sum = if signs & (1 << (bit + 1)) != 0 {
+            (m as i128).wrapping_neg()
+        } else {
+            m as i128
+        };
+    }
+    if !rest.is_empty() {
+        return Err(malformed());
+    }
+    let n = if signs & 1 != 0 {
+        (n as i64).wrapping_neg()
+    } else {
+        n as i64
+    };
+    let [dot, s_row, s_other] = sums;
     Ok(RatingPairStats {
-        n: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
-        dot: i128_at(8),
-        s_row: i128_at(24),
-        s_other: i128_at(40),
+        n,
+        dot,
+        s_row,
+        s_other,
     })
 }
 
@@ -340,6 +416,44 @@ mod tests {
     use super::*;
 
     #[test]
+    fn rating_pairs_round_trip_in_few_bytes() {
+        let typical = RatingPairStats {
+            n: 37,
+            dot: crate::engine::fixed::to_fixed(-1.234_567_891_234_5),
+            s_row: crate::engine::fixed::to_fixed(7.25),
+            s_other: 0,
+        };
+        let extremes = [
+            typical,
+            RatingPairStats {
+                n: i64::MIN + 1,
+                dot: i128::MAX,
+                s_row: -i128::MAX,
+                s_other: 1,
+            },
+            RatingPairStats {
+                n: -1,
+                dot: 1 << 120,
+                s_row: -(255 << 100),
+                s_other: i128::MAX - 255,
+            },
+            RatingPairStats::default(),
+        ];
+        for stats in extremes {
+            let mut out = Vec::new();
+            encode_rating_pair(&stats, &mut out);
+            assert!(out.len() <= RATING_PAIR_MAX_LEN);
+            assert_eq!(decode_rating_pair(&out).unwrap(), stats);
+        }
+        let mut out = Vec::new();
+        encode_rating_pair(&typical, &mut out);
+        assert!(out.len() <= 20, "a typical pair takes {} bytes", out.len());
+        assert!(decode_rating_pair(&out[..out.len() - 1]).is_err());
+        out.push(0);
+        assert!(decode_rating_pair(&out).is_err());
+    }
+
+    #[test]
     fn user_round_trip_keeps_withdrawals_and_erasure() {
         let u = UserState {
             center: 3.25,
@@ -369,15 +483,7 @@ mod tests {
     }
 
     #[test]
-    fn pair_stats_and_marks_round_trip() {
-        let a = RatingPairStats {
-            n: 2,
-            dot: -5,
-            s_row: 1 << 100,
-            s_other: 3,
-        };
-        assert_eq!(decode_rating_pair(&encode_rating_pair(&a)).unwrap(), a);
-        assert!(decode_rating_pair(&encode_rating_pair(&a)[1..]).is_err());
+    fn marks_round_trip() {
         for scope in [DirtyScope::OwnList, DirtyScope::WithNeighbors] {
             let mark = DirtyMark {
                 since: UnixNanos(-7),

@@ -5,7 +5,9 @@
 use anyhow::{bail, Context, Result};
 use rocksdb::{ColumnFamily, WriteBatch, WriteOptions};
 
+use super::ingest::SEGMENT_MARKER_KEY;
 use super::ledger::Ledger;
+use super::oriented::{oriented_rating_stats, OrientedRows};
 use super::{
     codec, Access, Store, CF_DIRTY, CF_IDS, CF_ITEMS, CF_META, CF_PAIRS, CF_PUBLISHED, CF_PURCHASE_PAIRS,
     CF_USERS, META_DELIVERED_TO, META_LEDGER,
@@ -13,11 +15,11 @@ use super::{
 use crate::engine::user_state::UserState;
 use crate::engine::BatchEffects;
 use crate::event::UnixNanos;
-use crate::model::{DirtyMark, DirtyScope, PublishedList, RatingPairStats};
+use crate::model::{DirtyMark, DirtyScope, PublishedList};
 use crate::signal::Signal;
 
 /// Bytes one rating pair merge takes in a WriteBatch: tag, column family, lengths, key, value.
-const RATING_PAIR_RECORD_BYTES: usize = 1 + 4 + 2 + 8 + codec::RATING_PAIR_LEN;
+const RATING_PAIR_RECORD_BYTES: usize = 1 + 4 + 2 + 8 + codec::RATING_PAIR_MAX_LEN;
 
 /// Bytes one co-buyer count merge takes in a WriteBatch (rounded up).
 const COUNT_RECORD_BYTES: usize = 32;
@@ -40,10 +42,22 @@ pub struct BatchCommit<'a> {
     pub users: Vec<(u32, &'a UserState)>,
     /// The engine's deltas, dirty marks and statuses.
     pub effects: &'a BatchEffects,
+    /// How the pair deltas reach the store.
+    pub pairs: PairWrite,
     /// The ledger after this batch.
     pub ledger: Ledger,
     /// Wall-clock time for new dirty marks.
     pub dirty_since: UnixNanos,
+}
+
+/// How a commit's pair deltas reach the store.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum PairWrite {
+    /// In the commit's WriteBatch (a live micro-batch: few pairs, one atomic write).
+    InBatch,
+    /// Already ingested as table files by [`Store::ingest_pairs`] (a bulk segment); the
+    /// commit deletes the segment markers instead.
+    Ingested,
 }
 
 /// A list to store after publication, with the dirty mark it clears.
@@ -116,41 +130,12 @@ impl Store {
         // sorted runs far faster than random ones, and a bulk batch holds millions.
         // Into a store that never held a pair, a put equals a merge and spares RocksDB a
         // merge-operator call for every key on each later read, flush and compaction.
-        let fresh = !self.ledger.pair_keys_written;
-        let pairs = self.cf(CF_PAIRS);
-        for (row, other, d) in oriented_sorted(&c.effects.rating_pairs) {
-            let stats = if row < other {
-                RatingPairStats {
-                    n: d.n,
-                    dot: d.dot,
-                    s_row: d.s_lo,
-                    s_other: d.s_hi,
-                }
-            } else {
-                RatingPairStats {
-                    n: d.n,
-                    dot: d.dot,
-                    s_row: d.s_hi,
-                    s_other: d.s_lo,
-                }
-            };
-            add_pair(
-                &mut wb,
-                pairs,
-                fresh,
-                codec::pair_row_key(row, other),
-                &codec::encode_rating_pair(&stats),
-            );
-        }
-        let purchases = self.cf(CF_PURCHASE_PAIRS);
-        for (row, other, d) in oriented_sorted(&c.effects.purchase_pairs) {
-            add_pair(
-                &mut wb,
-                purchases,
-                fresh,
-                codec::pair_row_key(row, other),
-                &d.to_le_bytes(),
-            );
+        match c.pairs {
+            PairWrite::InBatch => self.write_pairs_in_batch(&mut wb, c.effects),
+            PairWrite::Ingested => {
+                wb.delete_cf(self.cf(CF_PAIRS), SEGMENT_MARKER_KEY);
+                wb.delete_cf(self.cf(CF_PURCHASE_PAIRS), SEGMENT_MARKER_KEY);
+            }
         }
         let items = self.cf(CF_ITEMS);
         for (item, status) in &c.effects.statuses {
@@ -185,6 +170,35 @@ impl Store {
             self.items.names.push(name);
         }
         Ok(())
+    }
+
+    /// Adds the pair deltas to a WriteBatch in key order, under both orders. Keys go in
+    /// sorted: RocksDB's skiplist memtable inserts sorted runs far faster than random ones.
+    /// Into a store that never held a pair, a put equals a merge and spares RocksDB a
+    /// merge-operator call for every key on each later read, flush and compaction.
+    fn write_pairs_in_batch(&self, wb: &mut WriteBatch, effects: &BatchEffects) {
+        let fresh = !self.ledger.pair_keys_written;
+        let pairs = self.cf(CF_PAIRS);
+        let rating = OrientedRows::of(&effects.rating_pairs, 0);
+        let mut value = Vec::with_capacity(codec::RATING_PAIR_MAX_LEN);
+        let _ = rating.for_each_in(0..rating.row_count(), |row, other, d| {
+            value.clear();
+            codec::encode_rating_pair(&oriented_rating_stats(row, other, d), &mut value);
+            add_pair(wb, pairs, fresh, codec::pair_row_key(row, other), &value);
+            Ok::<(), std::convert::Infallible>(())
+        });
+        let purchases = self.cf(CF_PURCHASE_PAIRS);
+        let purchase = OrientedRows::of(&effects.purchase_pairs, 0);
+        let _ = purchase.for_each_in(0..purchase.row_count(), |row, other, d| {
+            add_pair(
+                wb,
+                purchases,
+                fresh,
+                codec::pair_row_key(row, other),
+                &d.to_le_bytes(),
+            );
+            Ok::<(), std::convert::Infallible>(())
+        });
     }
 
     /// Stores recomputed lists and clears the dirty marks they answer, in one write.
@@ -251,19 +265,4 @@ fn add_pair(wb: &mut WriteBatch, cf: &ColumnFamily, fresh: bool, key: [u8; 8], v
     } else {
         wb.merge_cf(cf, key, value);
     }
-}
-
-/// Both orientations (row, other) of every unordered pair (lo, hi) in `deltas`, sorted
-/// by key; a diagonal key (a, a) appears once.
-fn oriented_sorted<T>(deltas: &[(u32, u32, T)]) -> Vec<(u32, u32, &T)> {
-    let mut out = Vec::with_capacity(deltas.len() * 2);
-    for (lo, hi, d) in deltas {
-        let (lo, hi) = (*lo, *hi);
-        out.push((lo, hi, d));
-        if lo != hi {
-            out.push((hi, lo, d));
-        }
-    }
-    out.sort_unstable_by_key(|&(row, other, _)| (row, other));
-    out
 }

@@ -8,7 +8,7 @@ use rocksdb::MergeOperands;
 
 use super::codec::{
     decode_count, decode_dirty_mark, decode_rating_pair, encode_dirty_mark, encode_rating_pair,
-    RATING_PAIR_LEN,
+    RATING_PAIR_MAX_LEN,
 };
 use crate::model::{DirtyMark, RatingPairStats};
 
@@ -22,7 +22,9 @@ pub fn merge_rating_pairs(_key: &[u8], existing: Option<&[u8]>, operands: &Merge
             Err(e) => tracing::error!(error = %e, "skipping malformed rating pair operand"),
         }
     }
-    Some(encode_rating_pair(&total).to_vec())
+    let mut out = Vec::with_capacity(RATING_PAIR_MAX_LEN);
+    encode_rating_pair(&total, &mut out);
+    Some(out)
 }
 
 /// Sums co-buyer counts.
@@ -48,14 +50,18 @@ pub fn merge_dirty(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperand
     combined.map(|m| encode_dirty_mark(&m).to_vec())
 }
 
-/// Drops pairs whose every contribution was retracted (n = 0), so erased users and cut
-/// items leave no empty keys behind after compaction.
-pub fn drop_empty_pairs(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
-    let empty = match value.len() {
-        RATING_PAIR_LEN => decode_rating_pair(value).is_ok_and(|s| s.n == 0),
-        8 => decode_count(value).is_ok_and(|c| c == 0),
-        _ => false,
-    };
+/// Drops rating pairs whose every contribution was retracted (n = 0), so erased users and
+/// cut items leave no empty keys behind after compaction.
+pub fn drop_empty_rating_pairs(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
+    keep_unless(decode_rating_pair(value).is_ok_and(|s| s.n == 0))
+}
+
+/// Drops co-buyer counts that fell to zero.
+pub fn drop_empty_counts(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
+    keep_unless(decode_count(value).is_ok_and(|c| c == 0))
+}
+
+fn keep_unless(empty: bool) -> Decision {
     if empty {
         Decision::Remove
     } else {

@@ -21,22 +21,26 @@ mod commit;
 pub mod errors;
 pub mod fingerprint;
 mod ids;
+mod ingest;
 pub mod ledger;
 pub mod merge;
 mod open;
+mod oriented;
 mod reads;
+mod rows;
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use rocksdb::{ColumnFamily, DB};
 
-pub use commit::{BatchCommit, Delivery, MarkAfterWrite, PublicationWrite};
+pub use commit::{BatchCommit, Delivery, MarkAfterWrite, PairWrite, PublicationWrite};
 pub use errors::OpenError;
 pub use fingerprint::StatsFingerprint;
 use ids::ItemDirectory;
 pub use ledger::{FilePosition, Ledger};
 pub use reads::StoreStats;
+pub use rows::{PairRows, SegmentRows};
 
 const CF_IDS: &str = "ids";
 const CF_USERS: &str = "users";
@@ -63,8 +67,9 @@ const META_FINGERPRINT: &[u8] = b"stats_fingerprint";
 const META_LEDGER: &[u8] = b"progress";
 const META_DELIVERED_TO: &[u8] = b"delivered_to";
 
-/// Layout version of this build's store.
-pub const SCHEMA_VERSION: u32 = 1;
+/// Layout version of this build's store. 2: compact rating pair values
+/// ([`codec::encode_rating_pair`]); version 1 stored them in 56 fixed bytes.
+pub const SCHEMA_VERSION: u32 = 2;
 
 /// An open store.
 pub struct Store {

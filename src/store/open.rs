@@ -37,6 +37,9 @@ fn db_options() -> Options {
     o.create_missing_column_families(true);
     o.increase_parallelism(BACKGROUND_JOBS);
     o.set_max_background_jobs(BACKGROUND_JOBS);
+    // A manual compaction after a bulk backfill splits its key range over this many
+    // threads.
+    o.set_max_subcompactions(BACKGROUND_JOBS as u32);
     o.set_compression_type(DBCompressionType::Lz4);
     o.set_level_compaction_dynamic_level_bytes(true);
     // Small families (meta, users, ids) rarely fill a memtable; without a cap they would
@@ -45,35 +48,38 @@ fn db_options() -> Options {
     o
 }
 
+/// The options of one column family: merge operators, compaction filters, buffers. Table
+/// files written for ingestion use the same.
+pub(super) fn cf_options(name: &str) -> Options {
+    let mut o = Options::default();
+    o.set_compression_type(DBCompressionType::Lz4);
+    match name {
+        CF_PAIRS => {
+            o.set_merge_operator_associative("simtide_rating_pair_sum", merge::merge_rating_pairs);
+            o.set_compaction_filter("simtide_drop_empty_rating_pairs", merge::drop_empty_rating_pairs);
+            o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
+            o.set_max_write_buffer_number(PAIR_WRITE_BUFFERS);
+        }
+        CF_PURCHASE_PAIRS => {
+            o.set_merge_operator_associative("simtide_count_sum", merge::merge_counts);
+            o.set_compaction_filter("simtide_drop_empty_counts", merge::drop_empty_counts);
+            o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
+        }
+        CF_DIRTY => {
+            o.set_merge_operator_associative("simtide_dirty_earliest", merge::merge_dirty);
+        }
+        _ => {}
+    }
+    o
+}
+
 fn cf_descriptors() -> Vec<ColumnFamilyDescriptor> {
     ALL_CFS
         .iter()
-        .map(|&name| {
-            let mut o = Options::default();
-            o.set_compression_type(DBCompressionType::Lz4);
-            match name {
-                CF_PAIRS => {
-                    o.set_merge_operator_associative("simtide_rating_pair_sum", merge::merge_rating_pairs);
-                    o.set_compaction_filter("simtide_drop_empty_pairs", merge::drop_empty_pairs);
-                    o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
-                    o.set_max_write_buffer_number(PAIR_WRITE_BUFFERS);
-                }
-                CF_PURCHASE_PAIRS => {
-                    o.set_merge_operator_associative("simtide_count_sum", merge::merge_counts);
-                    o.set_compaction_filter("simtide_drop_empty_pairs", merge::drop_empty_pairs);
-                    o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
-                }
-                CF_DIRTY => {
-                    o.set_merge_operator_associative("simtide_dirty_earliest", merge::merge_dirty);
-                }
-                _ => {}
-            }
-            ColumnFamilyDescriptor::new(name, o)
-        })
+        .map(|&name| ColumnFamilyDescriptor::new(name, cf_options(name)))
         .collect()
 }
 
-/// The ledger of the last committed batch (the default for a new store).
 pub(super) fn read_ledger(db: &DB) -> Result<Ledger> {
     let meta = db.cf_handle(CF_META).expect("meta family exists");
     Ok(match db.get_cf(meta, META_LEDGER)? {
@@ -133,6 +139,7 @@ impl Store {
                 asked
             }
         };
+        super::ingest::clear_leftovers(dir)?;
         Store::finish_open(db, dir, fingerprint, Access::Primary)
     }
 

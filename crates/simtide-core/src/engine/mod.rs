@@ -6,6 +6,8 @@
 pub mod aggregate;
 pub mod contrib;
 pub mod fixed;
+pub mod runs;
+pub mod segment;
 pub mod tally;
 pub mod user_state;
 
@@ -167,11 +169,19 @@ type Deviation = (f64, i128);
 
 impl PairSum<Deviation> for RatingPairDelta {
     fn add(&mut self, sign: i64, lo: &Deviation, hi: &Deviation) {
-        let s = i128::from(sign);
-        self.n += sign;
-        self.dot += s * fixed::to_fixed(lo.0 * hi.0);
-        self.s_lo += s * lo.1;
-        self.s_hi += s * hi.1;
+        // The sign is ±1: adding or subtracting spares three 128-bit multiplications.
+        let product = fixed::to_fixed(lo.0 * hi.0);
+        if sign > 0 {
+            self.n += 1;
+            self.dot += product;
+            self.s_lo += lo.1;
+            self.s_hi += hi.1;
+        } else {
+            self.n -= 1;
+            self.dot -= product;
+            self.s_lo -= lo.1;
+            self.s_hi -= hi.1;
+        }
     }
 }
 
@@ -321,7 +331,8 @@ fn settle_user(
     fx.buyers_delta += i64::from(!new.purchases.is_empty()) - i64::from(!old.purchases.is_empty());
 }
 
-fn mark_dirty(set: &mut FxHashMap<u32, DirtyScope>, item: u32, scope: DirtyScope) {
+/// Marks `item` dirty in `set`, keeping the widest scope asked for.
+pub(crate) fn mark_dirty(set: &mut FxHashMap<u32, DirtyScope>, item: u32, scope: DirtyScope) {
     let entry = set.entry(item).or_insert(scope);
     *entry = entry.widest(scope);
 }

@@ -105,6 +105,14 @@ fn last_write_wins<E: Copy>(
 }
 
 impl UserState {
+    /// Bytes the state occupies in memory (entries at their capacity), for budgets of
+    /// work that holds many states at once.
+    pub fn approx_bytes(&self) -> usize {
+        std::mem::size_of::<UserState>()
+            + self.ratings.capacity() * std::mem::size_of::<RatingEntry>()
+            + self.purchases.capacity() * std::mem::size_of::<PurchaseEntry>()
+    }
+
     fn erased_since(&self, at: UnixNanos) -> bool {
         self.erased_at.is_some_and(|e| at <= e)
     }
