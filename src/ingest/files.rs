@@ -8,7 +8,7 @@ use super::writer::{BatchWriter, ReadBatch, RecordOrigin};
 use super::{BackfillRequest, BackfillSummary};
 use crate::meter::{Display, Meter, Unit};
 use crate::source::{Decoded, InputFile, RecordReader};
-use crate::store::FilePosition;
+use crate::store::{FilePosition, PairWrite};
 
 /// Reads records up to the ordinal `boundary` (or the end of the file) into a batch; true
 /// with it when the file ended.
@@ -46,7 +46,7 @@ pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
         .collect::<Result<Vec<_>>>()?;
     let limits = request.config.limits();
     let batch_len = request.config.backfill.batch_events;
-    let mut writer = BatchWriter::open(request)?;
+    let mut writer = BatchWriter::open(request, PairWrite::Ingested)?;
     let done =
         |w: &BatchWriter, f: &InputFile| w.store().ledger().files.get(&f.canonical).is_some_and(|p| p.done);
     let pending_bytes: u64 = inputs.iter().filter(|f| !done(&writer, f)).map(|f| f.size).sum();

@@ -7,11 +7,12 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+use super::writer::BatchWriter;
 use super::{backfill_files, BackfillRequest};
 use crate::config::Config;
 use crate::pipeline::Pending;
 use crate::source::{Decoded, InputFile, RecordReader};
-use crate::store::Store;
+use crate::store::{PairWrite, Store};
 
 /// A deterministic little shop: 40 customers rating and buying from 25 items.
 fn write_events(path: &Path, first_user: u32, users: u32) {
@@ -114,6 +115,14 @@ fn a_segment_ingested_but_not_committed_is_finished_once() {
         assert!(store.uncommitted_segment_end().unwrap().is_some());
     }
 
+    // A topic replay cannot cut the same batches, so it refuses to start on that store.
+    let err = BatchWriter::open(&req, PairWrite::InBatch)
+        .err()
+        .expect("refused");
+    assert!(
+        format!("{err:#}").contains("unfinished segment of a file backfill"),
+        "{err:#}"
+    );
     // Batches that end elsewhere (at 98 and 105 records) cannot finish that segment.
     let err = backfill_files(&request(&crashed, &inputs, 7)).unwrap_err();
     assert!(

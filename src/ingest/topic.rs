@@ -15,6 +15,7 @@ use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::replay::{ReplayPlan, TopicReplay};
 use crate::live::batch::PendingBatch;
 use crate::meter::{Display, Meter, Unit};
+use crate::store::PairWrite;
 
 /// Replays the input topic of `request.config` into the store, then publishes.
 pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
@@ -22,7 +23,7 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
     let kafka = &config.kafka;
     let topic = kafka.input_topic.as_str();
     let bus = BusContext::new(Arc::new(BrokerState::default()), Scrubber::of(config).into());
-    let mut writer = BatchWriter::open(request)?;
+    let mut writer = BatchWriter::open(request, PairWrite::InBatch)?;
     let stored = writer
         .store()
         .ledger()

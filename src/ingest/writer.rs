@@ -1,11 +1,12 @@
 //! The one batch writer of every backfill, whatever it reads: each batch's rejected
 //! records are appended to the rejects file and its events applied to a pending segment
 //! in memory; when the segment fills `backfill.memory_budget` (or the input ends) its pair
-//! sums are ingested as sorted table files and everything else — users, ids, counters,
-//! source positions and the rejects file's length — committed in one store write, so a
-//! crash never leaves rejects or sums of an uncommitted segment behind. A run killed
-//! between the two steps finds the segment's marker and replays exactly that segment
-//! (docs/design.md, "Bulk backfill"). At the end every dirty list is published.
+//! sums are ingested as sorted table files (file backfill) or put in the commit itself
+//! (topic backfill), and everything else — users, ids, counters, source positions and the
+//! rejects file's length — committed in one store write, so a crash never leaves rejects
+//! or sums of an uncommitted segment behind. A file run killed between ingestion and
+//! commit finds the segment's marker and replays exactly that segment (docs/design.md,
+//! "Bulk backfill"). At the end every dirty list is published.
 
 use std::collections::BTreeMap;
 use std::fs::{File, OpenOptions};
@@ -91,6 +92,8 @@ pub struct BatchWriter<'a> {
     summary: BackfillSummary,
     started: Instant,
     pending: Option<Pending>,
+    /// How segments write their pair sums.
+    pairs: PairWrite,
     /// The end of a segment a killed run ingested but did not commit: the next segment
     /// must end exactly there.
     unfinished_segment_end: Option<u64>,
@@ -102,13 +105,25 @@ pub struct BatchWriter<'a> {
 
 impl<'a> BatchWriter<'a> {
     /// Opens the request's store and its rejects file.
-    pub fn open(request: &'a BackfillRequest) -> Result<BatchWriter<'a>> {
+    /// Opens the request's store and its rejects file. `pairs` says how segments write
+    /// their pair sums: ingested table files need a reader that cuts the same batches on
+    /// every run (files); a reader whose batches depend on timing (the topic, whose
+    /// partitions interleave as they arrive) writes them in the segment's WriteBatch, so
+    /// a kill can never leave half a segment behind.
+    pub fn open(request: &'a BackfillRequest, pairs: PairWrite) -> Result<BatchWriter<'a>> {
         let started = Instant::now();
         let store = Store::open(&request.store_dir, &request.config)?;
         store.set_pair_compaction(false)?;
         let rejects_file = open_rejects(&store)?;
         let unfinished_segment_end = store.uncommitted_segment_end()?;
         if let Some(end) = unfinished_segment_end {
+            if pairs != PairWrite::Ingested {
+                bail!(
+                    "store {} holds an unfinished segment of a file backfill (up to event {end}): \
+                     rerun that file backfill to finish it before replaying the topic",
+                    store.dir().display()
+                );
+            }
             tracing::info!(
                 segment_end = end,
                 "resuming a segment whose pair sums were ingested but not committed"
@@ -126,6 +141,7 @@ impl<'a> BatchWriter<'a> {
             summary,
             started,
             pending: None,
+            pairs,
             unfinished_segment_end,
             only_pair_segment: None,
         })
@@ -193,7 +209,7 @@ impl<'a> BatchWriter<'a> {
             }
         }
         let store_had_pairs = self.store.ledger().pair_keys_written;
-        let effects = pending.commit(&mut self.store, PairWrite::Ingested)?;
+        let effects = pending.commit(&mut self.store, self.pairs)?;
         self.only_pair_segment = (!store_had_pairs).then_some(effects);
         self.summary.segments += 1;
         Ok(())
