@@ -181,15 +181,14 @@ impl Store {
         let pairs = self.cf(CF_PAIRS);
         let rating = OrientedRows::of(&effects.rating_pairs, 0);
         let mut value = Vec::with_capacity(codec::RATING_PAIR_MAX_LEN);
-        let _ = rating.for_each_in(0..rating.row_count(), |row, other, d| {
+        rating.each(|row, other, d| {
             value.clear();
             codec::encode_rating_pair(&oriented_rating_stats(row, other, d), &mut value);
             add_pair(wb, pairs, fresh, codec::pair_row_key(row, other), &value);
-            Ok::<(), std::convert::Infallible>(())
         });
         let purchases = self.cf(CF_PURCHASE_PAIRS);
         let purchase = OrientedRows::of(&effects.purchase_pairs, 0);
-        let _ = purchase.for_each_in(0..purchase.row_count(), |row, other, d| {
+        purchase.each(|row, other, d| {
             add_pair(
                 wb,
                 purchases,
@@ -197,7 +196,6 @@ impl Store {
                 codec::pair_row_key(row, other),
                 &d.to_le_bytes(),
             );
-            Ok::<(), std::convert::Infallible>(())
         });
     }
 

@@ -103,8 +103,19 @@ impl<'a, T> OrientedRows<'a, T> {
         Some(&self.deltas[entries[at].1 as usize].2)
     }
 
+    /// Calls `f(row, other, delta)` for every entry, in key order.
+    pub(super) fn each(&self, mut f: impl FnMut(u32, u32, &T)) {
+        let all = self.for_each_in(0..self.row_count(), |row, other, d| {
+            f(row, other, d);
+            Ok::<(), std::convert::Infallible>(())
+        });
+        if let Err(never) = all {
+            match never {}
+        }
+    }
+
     /// Calls `f(row, other, delta)` for every entry of the rows in `rows`, in key order,
-    /// fetching deltas ahead into the cache.
+    /// fetching deltas ahead into the cache; stops at the first error.
     pub(super) fn for_each_in<E>(
         &self,
         rows: Range<u32>,
@@ -170,11 +181,7 @@ mod tests {
             vec![(0, 3, 1), (1, 1, 2), (1, 2, 3), (1, 5, 4), (2, 3, 5), (3, 5, 6)];
         let rows = OrientedRows::of(&deltas, 0);
         let mut got: Vec<(u32, u32, i64)> = Vec::new();
-        rows.for_each_in(0..rows.row_count(), |r, o, d| {
-            got.push((r, o, *d));
-            Ok::<(), ()>(())
-        })
-        .unwrap();
+        rows.each(|r, o, d| got.push((r, o, *d)));
         let mut want: Vec<(u32, u32, i64)> = deltas
             .iter()
             .flat_map(|&(a, b, d)| {

@@ -55,11 +55,6 @@ impl SegmentEffects {
         (self.rating_pairs.entries(), self.purchase_pairs.entries())
     }
 
-    /// Users whose state changed in the segment.
-    pub fn touched_users(&self) -> &FxHashSet<u32> {
-        &self.touched_users
-    }
-
     /// The segment as one batch's effects: pair deltas summed and sorted, users sorted.
     /// The per-batch center gaps are not carried (they are reported batch by batch).
     pub fn into_effects(self) -> BatchEffects {
