@@ -2,8 +2,8 @@
 //! states the batch touches, run the engine, and persist everything — including the source
 //! position the batch consumed — in one write. The live consumer commits every batch
 //! ([`apply_and_commit`]); a backfill applies many batches to one [`Pending`] segment in
-//! memory and commits it once, its pair sums ingested as sorted files (docs/design.md,
-//! "Bulk backfill").
+//! memory and commits it once, a file backfill's pair sums ingested as sorted table files
+//! (docs/design.md, "Bulk backfill").
 
 use std::collections::{BTreeMap, HashMap};
 

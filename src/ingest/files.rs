@@ -79,7 +79,7 @@ pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
             // read, which then commits an empty batch that marks it done.
             let next_record = reader.ordinal();
             let canonical = input.canonical.clone();
-            writer.commit(batch, |p| {
+            writer.apply(batch, |p| {
                 p.files.insert(
                     canonical,
                     FilePosition {

@@ -71,7 +71,7 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
             }
             batch.events = taken.events;
             let next_offsets = taken.next_offsets;
-            writer.commit(batch, |p| {
+            writer.apply(batch, |p| {
                 let stored = p.offsets.entry(topic.to_string()).or_default();
                 stored.extend(next_offsets);
             })?;

@@ -160,7 +160,7 @@ impl<'a> BatchWriter<'a> {
     /// Writes the batch's rejects and applies it to the pending segment; `advance` records
     /// the source position it consumed in the ledger the segment will commit. Commits the
     /// segment when it is due.
-    pub fn commit(&mut self, batch: ReadBatch, advance: impl FnOnce(&mut Ledger)) -> Result<()> {
+    pub fn apply(&mut self, batch: ReadBatch, advance: impl FnOnce(&mut Ledger)) -> Result<()> {
         self.rejects_file.write_all(batch.reject_lines.as_bytes())?;
         self.rejects_file.flush()?;
         let rejects_len = self.rejects_file.metadata()?.len();
