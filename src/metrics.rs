@@ -75,10 +75,14 @@ pub mod names {
     pub const STORE_PENDING_COMPACTION_BYTES: &str = "simtide_store_pending_compaction_bytes";
     /// `simtide_store_size_bytes`.
     pub const STORE_SIZE_BYTES: &str = "simtide_store_size_bytes";
+    /// `simtide_store_write_duration_seconds`.
+    pub const STORE_WRITE_DURATION_SECONDS: &str = "simtide_store_write_duration_seconds";
     /// `simtide_store_write_failures_total`.
     pub const STORE_WRITE_FAILURES_TOTAL: &str = "simtide_store_write_failures_total";
     /// `simtide_tombstones_published_total`.
     pub const TOMBSTONES_PUBLISHED_TOTAL: &str = "simtide_tombstones_published_total";
+    /// `simtide_unwritten_changes_bytes`.
+    pub const UNWRITTEN_CHANGES_BYTES: &str = "simtide_unwritten_changes_bytes";
 }
 
 /// "Not known yet" for the instants kept as atomics.
@@ -93,10 +97,14 @@ pub struct Metrics {
     pub rejected: IntCounterVec,
     /// Dead letters acknowledged by the broker, by reason.
     pub dead_letters: IntCounterVec,
-    /// Micro-batches committed.
+    /// Micro-batches applied.
     pub batches: IntCounter,
-    /// Time to apply and commit one batch.
+    /// Time to apply one batch.
     pub batch_seconds: Histogram,
+    /// Time to write the live service's applied batches to the store.
+    pub write_seconds: Histogram,
+    /// Estimated memory of applied changes not yet written to the store.
+    pub unwritten_bytes: IntGauge,
     /// Pair contributions added or retracted.
     pub pair_updates: IntCounter,
     /// Users whose center moved.
@@ -207,12 +215,22 @@ impl Metrics {
                 "Refused events delivered to the dead-letter topic, by reason.",
                 &["reason"],
             )),
-            batches: r.add(IntCounter::new(names::BATCHES_TOTAL, "Micro-batches committed to the store.").expect("valid")),
+            batches: r.add(IntCounter::new(names::BATCHES_TOTAL, "Micro-batches applied.").expect("valid")),
             batch_seconds: r.add(histogram(
                 names::BATCH_DURATION_SECONDS,
-                "Time to apply one micro-batch and commit it.",
+                "Time to apply one micro-batch (a backfill's includes the segment write it ends).",
                 prometheus::exponential_buckets(0.005, 2.0, 12).expect("valid"),
             )),
+            write_seconds: r.add(histogram(
+                names::STORE_WRITE_DURATION_SECONDS,
+                "Time to sum and write the live service's applied batches to the store in one write.",
+                prometheus::exponential_buckets(0.005, 2.0, 12).expect("valid"),
+            )),
+            unwritten_bytes: r.add(IntGauge::new(
+                names::UNWRITTEN_CHANGES_BYTES,
+                "Estimated memory of applied changes not yet written to the store (bounded by live.memory_budget).",
+            )
+            .expect("valid")),
             pair_updates: r.add(IntCounter::new(names::PAIR_UPDATES_TOTAL, "Pair contributions added or retracted.")
                 .expect("valid")),
             recenterings: r.add(IntCounter::new(names::RECENTERINGS_TOTAL, "Users whose applied center moved.")
@@ -230,7 +248,7 @@ impl Metrics {
             consumer_lag: r.add(IntGaugeVec::new(
                 Opts::new(
                     names::CONSUMER_LAG_MESSAGES,
-                    "Messages between the stored position and the end of each input partition.",
+                    "Messages between the applied position and the end of each input partition.",
                 ),
                 &["partition"],
             )

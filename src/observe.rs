@@ -27,15 +27,26 @@ pub struct DeliveredList {
 
 /// Something worth a log line and a metric.
 pub enum Observation<'a> {
-    /// A micro-batch was committed.
-    BatchCommitted {
+    /// A micro-batch was applied (a backfill's or a live one, in memory until written).
+    BatchApplied {
         /// Messages or records it held.
         messages: usize,
         /// What the engine did.
         summary: &'a BatchSummary,
         /// Refused records by reason.
         rejects: &'a BTreeMap<RejectReason, u64>,
-        /// Apply and commit time.
+        /// Apply time (a backfill's includes the segment write it triggered).
+        seconds: f64,
+        /// Estimated memory of the applied changes not yet written to the store.
+        unwritten_bytes: u64,
+    },
+    /// The live service wrote its applied batches to the store in one write.
+    ChangesWritten {
+        /// Batches written.
+        batches: u64,
+        /// Messages they held.
+        messages: u64,
+        /// Time to sum and write them.
         seconds: f64,
     },
     /// Dead letters were acknowledged by the broker.
@@ -119,11 +130,12 @@ impl Observation<'_> {
     /// so every log line and the metrics it moves sit side by side.
     pub fn emit(&self, m: &Metrics) {
         match self {
-            Observation::BatchCommitted {
+            Observation::BatchApplied {
                 messages,
                 summary,
                 rejects,
                 seconds,
+                unwritten_bytes,
             } => {
                 tracing::debug!(
                     messages,
@@ -131,8 +143,10 @@ impl Observation<'_> {
                     recenterings = summary.recenterings,
                     rejected = rejects.values().sum::<u64>(),
                     seconds,
-                    "batch committed"
+                    unwritten_bytes,
+                    "batch applied"
                 );
+                m.unwritten_bytes.set(*unwritten_bytes as i64);
                 for (&(kind, outcome), &n) in summary.outcomes.iter() {
                     m.events
                         .with_label_values(&[kind.as_str(), outcome.as_str()])
@@ -149,6 +163,15 @@ impl Observation<'_> {
                 for &gap in &summary.center_gaps {
                     m.center_gap.observe(gap);
                 }
+            }
+            Observation::ChangesWritten {
+                batches,
+                messages,
+                seconds,
+            } => {
+                tracing::debug!(batches, messages, seconds, "applied batches written to the store");
+                m.write_seconds.observe(*seconds);
+                m.unwritten_bytes.set(0);
             }
             Observation::DeadLettersDelivered { by_reason } => {
                 for (reason, &n) in by_reason.iter() {

@@ -264,39 +264,77 @@ impl Pending {
         Ok(summary)
     }
 
-    /// Persists the segment: in one WriteBatch, or with its pair sums ingested as sorted
-    /// files first (`PairWrite::Ingested`) and everything else in one WriteBatch after.
-    /// Returns the segment's effects, pair deltas summed and sorted.
-    pub fn commit(self, store: &mut Store, pairs: PairWrite) -> Result<BatchEffects> {
+    /// Sums the segment's pair deltas and sorts them: what [`Sealed::write`] persists.
+    pub fn seal(self) -> Sealed {
         let started = std::time::Instant::now();
         let effects = self.effects.into_effects();
-        let summed = started.elapsed();
-        if pairs == PairWrite::Ingested {
-            store.ingest_pairs(&effects, self.ledger.next_seq)?;
-            tracing::debug!(
-                rating_pairs = effects.rating_pairs.len(),
-                purchase_pairs = effects.purchase_pairs.len(),
-                users = effects.touched_users.len(),
-                sum_seconds = summed.as_secs_f64(),
-                write_seconds = (started.elapsed() - summed).as_secs_f64(),
-                "segment's pair sums written as table files"
-            );
+        tracing::debug!(
+            rating_pairs = effects.rating_pairs.len(),
+            purchase_pairs = effects.purchase_pairs.len(),
+            users = effects.touched_users.len(),
+            sum_seconds = started.elapsed().as_secs_f64(),
+            "segment sealed"
+        );
+        Sealed {
+            new_users: self.users.added,
+            new_items: self.items.added,
+            states: self.states,
+            effects,
+            ledger: self.ledger,
         }
-        let changed_users: Vec<_> = effects
+    }
+
+    /// Seals and writes the segment ([`Pending::seal`], [`Sealed::write`]); returns its
+    /// effects, pair deltas summed and sorted.
+    pub fn commit(self, store: &mut Store, pairs: PairWrite) -> Result<BatchEffects> {
+        let sealed = self.seal();
+        sealed.write(store, pairs)?;
+        Ok(sealed.effects)
+    }
+}
+
+/// A segment whose pair deltas are summed: ready to be written, and kept whole when a
+/// write fails so that it can be tried again.
+pub struct Sealed {
+    new_users: Vec<(u32, String)>,
+    new_items: Vec<(u32, String)>,
+    states: HashMap<u32, UserState>,
+    effects: BatchEffects,
+    ledger: Ledger,
+}
+
+impl Sealed {
+    /// Persists the segment: in one WriteBatch (`PairWrite::InBatch`; a failed write
+    /// changed nothing and may be tried again), or with its pair sums ingested as sorted
+    /// files first (`PairWrite::Ingested`) and everything else in one WriteBatch after.
+    pub fn write(&self, store: &mut Store, pairs: PairWrite) -> Result<()> {
+        let started = std::time::Instant::now();
+        if pairs == PairWrite::Ingested {
+            store.ingest_pairs(&self.effects, self.ledger.next_seq)?;
+        }
+        let changed_users: Vec<_> = self
+            .effects
             .touched_users
             .iter()
             .map(|u| (*u, self.states.get(u).expect("touched users are loaded")))
             .collect();
         store.commit(BatchCommit {
-            new_users: self.users.added,
-            new_items: self.items.added,
+            new_users: &self.new_users,
+            new_items: &self.new_items,
             users: changed_users,
-            effects: &effects,
+            effects: &self.effects,
             pairs,
-            ledger: self.ledger,
+            ledger: &self.ledger,
             dirty_since: now_nanos(),
         })?;
-        Ok(effects)
+        tracing::debug!(
+            rating_pairs = self.effects.rating_pairs.len(),
+            purchase_pairs = self.effects.purchase_pairs.len(),
+            ingested = pairs == PairWrite::Ingested,
+            write_seconds = started.elapsed().as_secs_f64(),
+            "segment written"
+        );
+        Ok(())
     }
 }
 

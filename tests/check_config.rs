@@ -82,6 +82,11 @@ fn bad_values_are_refused_by_key() {
         ("[kafka]\ngroup = \"\"\n", "kafka.group"),
         ("[http]\nlisten = \"everywhere\"\n", "http.listen"),
         ("[live]\nbatch_events = 0\n", "live.batch_events"),
+        (
+            "[live]\nmemory_budget = \"512KiB\"\n",
+            "live.memory_budget must be at least 1MiB",
+        ),
+        ("[backfill]\nmemory_budget = \"0B\"\n", "backfill.memory_budget"),
     ] {
         let file = dir.path().join("c.toml");
         std::fs::write(&file, text).unwrap();

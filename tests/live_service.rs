@@ -26,7 +26,8 @@ use std::time::Duration;
 use common::broker::Broker;
 use common::live::{
     broker_with_topics, caught_up, committed_total, csv_events, last_lists_as_export, produce, read_all,
-    wait_for, write_config, LiveSettings, ReadRecord, Service, DEAD_LETTER, INPUT, OUTPUT, PURCHASE_OUTPUT,
+    sample, wait_for, write_config, LiveSettings, ReadRecord, Service, DEAD_LETTER, INPUT, OUTPUT,
+    PURCHASE_OUTPUT,
 };
 use simtide::signal::Signal;
 use simtide::store::Store;
@@ -190,12 +191,17 @@ fn accept_missing_tombstones(records: &mut Vec<ReadRecord>, store_dir: &Path) ->
     emptied.len()
 }
 
+/// Also the check of `--stop-at-end`: the service must leave by itself once it has
+/// applied the end offsets it saw at start, with everything written, published and
+/// committed to the group.
 #[test]
 fn movielens_slice_through_a_real_broker_matches_scipy_exactly() {
     let sc = Scenario::new(SLICE);
     sc.produce(&sc.unstamped());
     let (config, port) = sc.config(&LiveSettings::default());
-    let report = sc.finish(Service::start(&config, port, &[]));
+    let (status, report) = Service::start(&config, port, &["--stop-at-end"]).wait_exit(CATCH_UP);
+    assert!(status.success(), "exit status {status}; report:\n{report}");
+    assert!(caught_up(&sc.brokers(), 3), "group offsets at the end offsets");
     assert!(
         report.contains(&format!("messages committed {SLICE:>10}")),
         "{report}"
@@ -533,14 +539,25 @@ fn sigterm_publishes_pending_lists_before_exit() {
         ..LiveSettings::default()
     });
     let service = Service::start(&config, port, &[]);
-    wait_for("the service to consume everything", CATCH_UP, || {
-        caught_up(&sc.brokers(), 3)
+    // Applied, not yet written: the store (and the group's offsets) move at the first
+    // publication cycle or at exit; the lag gauge follows what was applied.
+    let lag = |p: i32| {
+        let (_, metrics) = service.get("/metrics")?;
+        sample(
+            &metrics,
+            &format!("simtide_consumer_lag_messages{{partition=\"{p}\"}}"),
+        )
+    };
+    wait_for("the service to apply everything", CATCH_UP, || {
+        (0..3).all(|p| lag(p) == Some(0.0))
     });
     assert!(
         read_all(&sc.brokers(), OUTPUT).is_empty(),
         "nothing is published before the first cycle"
     );
-    let report = sc.finish(service);
+    let (status, report) = service.terminate(Duration::from_secs(60));
+    assert!(status.success(), "exit status {status}; report:\n{report}");
+    assert!(caught_up(&sc.brokers(), 3), "group offsets committed at exit");
     assert!(
         report.contains(&format!("publication cycles {:>10}", 1)),
         "{report}"

@@ -96,6 +96,11 @@ pub struct RunArgs {
     /// (PARTITION:OFFSET,…; unlisted partitions start at their beginning).
     #[arg(long, value_name = "LIST")]
     pub start_offsets: Option<String>,
+    /// Consume up to the input topic's end offsets as they are at start, write, publish and
+    /// exit 0 (for one instance that holds every partition, e.g. to bring stores to the
+    /// same positions).
+    #[arg(long)]
+    pub stop_at_end: bool,
 }
 
 /// The flags of `simtide status`.

@@ -1,4 +1,5 @@
-//! `simtide run`: the live service on this thread until SIGTERM or SIGINT, then its report.
+//! `simtide run`: the live service on this thread until SIGTERM or SIGINT (or, with
+//! `--stop-at-end`, the input's end offsets at start), then its report.
 
 use std::io::Write;
 
@@ -26,6 +27,7 @@ pub fn run(args: RunArgs, config: Config, out: &mut dyn Write) -> Result<()> {
         store_dir: args.store,
         start,
         signals: SignalHandling::Listen,
+        stop_at_end: args.stop_at_end,
     };
     let report = run_service(&config, options, Shutdown::new())?;
     writeln!(out, "{report}")?;

@@ -127,9 +127,9 @@ pub struct BackfillConfig {
     pub memory_budget: ByteSize,
 }
 
-/// Smallest accepted `backfill.memory_budget`: with less, every batch is its own segment
-/// anyway (tests use it to cut many segments from small files).
-pub const MIN_BACKFILL_MEMORY_BUDGET: ByteSize = ByteSize(1 << 20);
+/// Smallest accepted `backfill.memory_budget` and `live.memory_budget`: with less, every
+/// batch is written on its own anyway (tests use it to cut many segments from small files).
+pub const MIN_MEMORY_BUDGET: ByteSize = ByteSize(1 << 20);
 
 impl Default for BackfillConfig {
     fn default() -> Self {
@@ -319,11 +319,13 @@ impl Config {
         if self.backfill.batch_events == 0 {
             bail!("backfill.batch_events must be at least 1");
         }
-        if self.backfill.memory_budget < MIN_BACKFILL_MEMORY_BUDGET {
-            bail!(
-                "backfill.memory_budget must be at least {MIN_BACKFILL_MEMORY_BUDGET}, got {}",
-                self.backfill.memory_budget
-            );
+        for (key, budget) in [
+            ("backfill.memory_budget", self.backfill.memory_budget),
+            ("live.memory_budget", self.live.memory_budget),
+        ] {
+            if budget < MIN_MEMORY_BUDGET {
+                bail!("{key} must be at least {MIN_MEMORY_BUDGET}, got {budget}");
+            }
         }
         self.validate_service()
     }

@@ -7,6 +7,7 @@ use std::time::Duration;
 use serde::{Deserialize, Serialize};
 
 use super::duration_text;
+use super::size_text::ByteSize;
 
 /// `[store]`: where the live service keeps its state.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
@@ -106,6 +107,10 @@ pub struct LiveConfig {
     /// attempt counts as failed and is retried.
     #[serde(with = "duration_text")]
     pub delivery_timeout: Duration,
+    /// Memory the applied batches may fill between two store writes. They are written
+    /// before each publication cycle anyway; this bounds memory when a cycle is far off
+    /// or the input arrives faster than usual (a catch-up after downtime).
+    pub memory_budget: ByteSize,
 }
 
 impl Default for LiveConfig {
@@ -115,6 +120,7 @@ impl Default for LiveConfig {
             batch_wait: Duration::from_millis(250),
             shutdown_timeout: Duration::from_secs(30),
             delivery_timeout: Duration::from_secs(10),
+            memory_budget: ByteSize(1 << 30),
         }
     }
 }

@@ -171,11 +171,12 @@ impl<'a> BatchWriter<'a> {
         pending.ledger_mut().rejects_file_len = rejects_len;
         self.summary.absorb(&applied);
         if let Some(m) = &self.request.metrics {
-            Observation::BatchCommitted {
+            Observation::BatchApplied {
                 messages: batch.records,
                 summary: &applied,
                 rejects: &batch.rejects,
                 seconds: apply_started.elapsed().as_secs_f64(),
+                unwritten_bytes: pending.estimated_bytes() as u64,
             }
             .emit(m);
         }

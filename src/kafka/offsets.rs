@@ -57,6 +57,19 @@ impl OffsetsClient {
             .with_context(|| format!("cannot read the offsets of {topic} partition {partition}"))
     }
 
+    /// The high watermark of every partition that holds records; fails when any
+    /// partition does not answer.
+    pub fn end_offsets(&self, topic: &str) -> Result<BTreeMap<i32, i64>> {
+        let mut ends = BTreeMap::new();
+        for p in self.partitions(topic)? {
+            let (low, high) = self.watermarks(topic, p, REQUEST_TIMEOUT)?;
+            if low < high {
+                ends.insert(p, high);
+            }
+        }
+        Ok(ends)
+    }
+
     /// The high watermark of every partition that answered within `timeout`.
     pub fn high_watermarks(&self, topic: &str, timeout: Duration) -> Result<BTreeMap<i32, i64>> {
         Ok(self

@@ -1,6 +1,7 @@
-//! The service's state behind one lock: the store, the batch being collected, and the
-//! producer. Both the consumer loop and the rebalance callback flush batches through
-//! [`Core::flush`], so a batch is committed the same way whoever ends it.
+//! The service's state behind one lock: the store, the batch being collected, the batches
+//! applied in memory since the last store write, and the producer. Both the consumer loop
+//! and the rebalance callback write through [`Core::flush`], so changes reach the store the
+//! same way whoever ends them.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -10,6 +11,7 @@ use anyhow::Result;
 
 use super::batch::PendingBatch;
 use super::latency::LatencyRecorder;
+use super::segment::AppliedSegment;
 use crate::config::Config;
 use crate::decode::Limits;
 use crate::engine::tally::EventTally;
@@ -21,14 +23,13 @@ use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::metrics::Metrics;
 use crate::model::PublishedList;
 use crate::observe::{DeliveredList, Observation};
-use crate::pipeline::apply_and_commit;
 use crate::publish::{Cycle, CycleReport};
 use crate::record::NeighborRecord;
 use crate::retry::Backoff;
 use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
-use crate::store::{Delivery, MarkAfterWrite, Store};
+use crate::store::{Delivery, MarkAfterWrite, PairWrite, Store};
 use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
@@ -40,28 +41,40 @@ const LONGEST_RETRY_WAIT: Duration = Duration::from_secs(30);
 /// Lists produced per delivery when republishing the whole store.
 const REPUBLISH_CHUNK: usize = 2000;
 
-/// What a flush did.
+/// What a flush did to the store.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum Flushed {
-    /// Nothing was pending.
+    /// Nothing was written (nothing pending, or the changes stay in memory for now).
     Nothing,
-    /// The batch is in the store; these are the next offsets of its partitions.
+    /// The applied batches are in the store; these are the next offsets of their
+    /// partitions.
     Committed(BTreeMap<i32, i64>),
-    /// The deadline passed before the batch could be committed; it was dropped and will
-    /// be consumed again from the store's positions.
+    /// The deadline passed before a batch could be applied or written; it was dropped and
+    /// will be consumed again from the store's positions.
+    Abandoned,
+}
+
+/// What applying the collected batch did.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum BatchApply {
+    /// No batch was collected.
+    Nothing,
+    /// The batch is in the segment.
+    Applied,
+    /// The deadline passed first; the batch was dropped.
     Abandoned,
 }
 
 /// Counters of this process's run, for the summary printed at exit.
 #[derive(Debug, Clone, Default)]
 pub struct RunCounters {
-    /// Messages consumed and committed.
+    /// Messages consumed and written to the store.
     pub messages: u64,
     /// Accepted events by kind and outcome.
     pub events: EventTally,
     /// Dead letters delivered, by reason code.
     pub dead_letters: BTreeMap<String, u64>,
-    /// Batches committed.
+    /// Batches written to the store.
     pub batches: u64,
     /// Publication cycles completed.
     pub cycles: u64,
@@ -71,10 +84,25 @@ pub struct RunCounters {
     pub lists_undelivered: u64,
 }
 
+impl RunCounters {
+    /// Adds the consumption counts of `other` (messages, events, dead letters, batches).
+    pub fn absorb(&mut self, other: &RunCounters) {
+        self.messages += other.messages;
+        self.events.absorb(&other.events);
+        for (reason, &n) in &other.dead_letters {
+            *self.dead_letters.entry(reason.clone()).or_default() += n;
+        }
+        self.batches += other.batches;
+    }
+}
+
 /// The service state.
 pub struct Core {
     store: Store,
+    /// The micro-batch being collected.
     pending: PendingBatch,
+    /// Batches applied in memory and not yet written.
+    segment: Option<AppliedSegment>,
     counters: RunCounters,
     latency: LatencyRecorder,
     engine: EngineSettings,
@@ -85,7 +113,7 @@ pub struct Core {
     health: Arc<Health>,
     metrics: Arc<Metrics>,
     shutdown: Shutdown,
-    /// Record timestamps of committed messages not yet covered by a publication.
+    /// Record timestamps of written messages not yet covered by a publication.
     unpublished_ms: Vec<UnixMillis>,
 }
 
@@ -102,6 +130,7 @@ impl Core {
         Core {
             store,
             pending: PendingBatch::default(),
+            segment: None,
             counters: RunCounters::default(),
             latency: LatencyRecorder::default(),
             engine: config.engine_settings(),
@@ -152,16 +181,37 @@ impl Core {
             .unwrap_or_default()
     }
 
-    /// Commits the pending batch if it is full or old enough ([`Core::flush`]).
+    /// Whether every partition's applied position (in memory or stored) reached `ends`.
+    pub fn has_applied(&self, ends: &BTreeMap<i32, i64>) -> bool {
+        let stored = self.store.ledger().offsets.get(&self.config.kafka.input_topic);
+        ends.iter().all(|(p, &end)| {
+            let applied = self.segment.as_ref().and_then(|s| s.offsets.get(p));
+            let position = applied.or_else(|| stored.and_then(|o| o.get(p)));
+            position.is_some_and(|&next| next >= end)
+        })
+    }
+
+    /// Applies the collected batch if it is full or old enough, and writes the applied
+    /// batches to the store when they outgrow `live.memory_budget`.
     pub fn flush_if_due(&mut self) -> Flushed {
-        if self.batch_due() {
-            self.flush(None)
+        if !self.batch_due() {
+            return Flushed::Nothing;
+        }
+        if self.apply_batch(None) == BatchApply::Abandoned {
+            return Flushed::Abandoned;
+        }
+        let over_budget = self
+            .segment
+            .as_ref()
+            .is_some_and(|s| s.pending.estimated_bytes() as u64 >= self.config.live.memory_budget.0);
+        if over_budget {
+            self.write_segment(None)
         } else {
             Flushed::Nothing
         }
     }
 
-    /// Whether the pending batch should be committed now.
+    /// Whether the collected batch should be applied now.
     fn batch_due(&self) -> bool {
         self.pending.messages >= self.config.live.batch_events
             || self
@@ -170,51 +220,57 @@ impl Core {
                 .is_some_and(|t| t.elapsed() >= self.config.live.batch_wait)
     }
 
-    /// When the pending batch becomes due by age.
+    /// When the collected batch becomes due by age.
     pub fn batch_deadline(&self) -> Option<Instant> {
         self.pending.opened.map(|t| t + self.config.live.batch_wait)
     }
 
-    /// Commits the pending batch: dead letters delivered first (a refused message is never
-    /// lost), then events, counters and the next offsets in one store write. Failures are
-    /// retried with backoff until `deadline`; consumption waits meanwhile.
+    /// Applies the collected batch and writes everything applied to the store, with its
+    /// next offsets, in one write (before a publication cycle, a revocation, or exit).
+    /// Failures are retried with backoff until `deadline`; consumption waits meanwhile.
     pub fn flush(&mut self, deadline: Option<Instant>) -> Flushed {
+        // A batch whose dead letters could not be delivered is dropped alone: the batches
+        // applied before it are still written.
+        self.apply_batch(deadline);
+        self.write_segment(deadline)
+    }
+
+    /// Applies the collected batch to the segment in memory: dead letters delivered first
+    /// (a refused message is never lost), then the events.
+    fn apply_batch(&mut self, deadline: Option<Instant>) -> BatchApply {
         if self.pending.is_empty() {
-            return Flushed::Nothing;
+            return BatchApply::Nothing;
         }
         if !self.deliver_dead_letters(deadline) {
-            return self.abandon();
+            self.abandon_batch();
+            return BatchApply::Abandoned;
         }
         let rejects = self.pending.reject_counts();
         if !rejects.is_empty() {
             Observation::DeadLettersDelivered { by_reason: &rejects }.emit(&self.metrics);
         }
         let started = Instant::now();
-        let topic = self.config.kafka.input_topic.clone();
-        let offsets = self.pending.next_offsets.clone();
+        let segment = self
+            .segment
+            .get_or_insert_with(|| AppliedSegment::new(&self.store));
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
+        // Reading histories and ids may fail; a retry of the same batch reuses the ids the
+        // failed attempt assigned.
         let summary = loop {
-            let advance = |p: &mut crate::store::Ledger| {
-                let stored = p.offsets.entry(topic.clone()).or_default();
-                for (&partition, &next) in &offsets {
-                    stored.insert(partition, next);
-                }
-            };
-            match apply_and_commit(
-                &mut self.store,
-                &self.engine,
-                &self.pending.events,
-                &rejects,
-                advance,
-            ) {
+            match segment
+                .pending
+                .apply(&self.store, &self.engine, &self.pending.events, &rejects)
+            {
                 Ok(summary) => break summary,
                 Err(e) => {
-                    let text = format!("store write failed: {e:#}");
+                    let text = format!("store read failed: {e:#}");
                     Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
                     self.metrics.note_batch_stalled();
                     self.health.set_store_error(Some(text));
                     if !backoff.wait(deadline, &self.shutdown) {
-                        return self.abandon();
+                        self.segment = None;
+                        self.abandon_batch();
+                        return BatchApply::Abandoned;
                     }
                 }
             }
@@ -222,32 +278,66 @@ impl Core {
         self.health.set_store_error(None);
         self.metrics.clear_batch_stalled();
         let batch = std::mem::take(&mut self.pending);
-        self.counters.messages += batch.messages as u64;
-        self.counters.batches += 1;
-        self.counters.events.absorb(&summary.outcomes);
+        segment.advance(&self.config.kafka.input_topic, &batch.next_offsets);
+        segment.timestamps.extend(batch.timestamps);
+        let counts = &mut segment.counts;
+        counts.messages += batch.messages as u64;
+        counts.batches += 1;
+        counts.events.absorb(&summary.outcomes);
         for (reason, &n) in &rejects {
-            *self
-                .counters
-                .dead_letters
-                .entry(reason.code().to_string())
-                .or_default() += n;
+            *counts.dead_letters.entry(reason.code().to_string()).or_default() += n;
         }
-        self.unpublished_ms.extend(batch.timestamps);
-        Observation::BatchCommitted {
+        Observation::BatchApplied {
             messages: batch.messages,
             summary: &summary,
             rejects: &rejects,
             seconds: started.elapsed().as_secs_f64(),
+            unwritten_bytes: segment.pending.estimated_bytes() as u64,
         }
         .emit(&self.metrics);
-        self.metrics.set_positions(&offsets);
-        // The cheap gauges only: scanning the dirty marks and RocksDB's properties waits
-        // for the next publication cycle, off the per-batch path.
+        self.metrics.set_positions(&batch.next_offsets);
         if summary.marked_dirty {
             self.metrics.note_unpublished_change(now_nanos());
         }
+        BatchApply::Applied
+    }
+
+    /// Writes the applied batches to the store in one WriteBatch holding their next
+    /// offsets, retrying a failed write with backoff until `deadline`.
+    fn write_segment(&mut self, deadline: Option<Instant>) -> Flushed {
+        let Some(segment) = self.segment.take() else {
+            return Flushed::Nothing;
+        };
+        let started = Instant::now();
+        let sealed = segment.pending.seal();
+        let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
+        while let Err(e) = sealed.write(&mut self.store, PairWrite::InBatch) {
+            let text = format!("store write failed: {e:#}");
+            Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
+            self.metrics.note_batch_stalled();
+            self.health.set_store_error(Some(text));
+            if !backoff.wait(deadline, &self.shutdown) {
+                Observation::BatchAbandoned {
+                    messages: segment.counts.messages as usize,
+                }
+                .emit(&self.metrics);
+                return Flushed::Abandoned;
+            }
+        }
+        self.health.set_store_error(None);
+        self.metrics.clear_batch_stalled();
+        self.counters.absorb(&segment.counts);
+        self.unpublished_ms.extend(segment.timestamps);
+        Observation::ChangesWritten {
+            batches: segment.counts.batches,
+            messages: segment.counts.messages,
+            seconds: started.elapsed().as_secs_f64(),
+        }
+        .emit(&self.metrics);
+        // The cheap gauges only: scanning the dirty marks and RocksDB's properties waits
+        // for the next publication cycle, off the consuming path.
         self.refresh_counts();
-        Flushed::Committed(offsets)
+        Flushed::Committed(segment.offsets)
     }
 
     /// Delivers the pending batch's dead letters, retrying what the broker did not take
@@ -295,13 +385,13 @@ impl Core {
         report
     }
 
-    fn abandon(&mut self) -> Flushed {
+    /// Drops the collected batch; it is consumed again from the stored positions.
+    fn abandon_batch(&mut self) {
         Observation::BatchAbandoned {
             messages: self.pending.messages,
         }
         .emit(&self.metrics);
         self.pending = PendingBatch::default();
-        Flushed::Abandoned
     }
 
     /// Which output topics hold every stored list once they are all delivered.

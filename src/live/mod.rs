@@ -1,9 +1,10 @@
 //! `simtide run`: the long-running service (docs/design.md: "Data flow", "Storage",
 //! "Publication", "Failure model"). Its state machine runs on the calling thread, never on
 //! an async worker: one loop polls the group consumer, collects micro-batches (bounded by
-//! count and age), commits each as one store write holding its next offsets, commits
-//! group offsets after it for external lag tools, and runs a publication cycle every
-//! `publish.interval`. Store writes, blocking deliveries and retry back-offs happen on
+//! count and age) and applies each in memory; before every publication cycle (every
+//! `publish.interval`), and sooner past `live.memory_budget`, it writes the applied batches
+//! as one store write holding their next offsets, then commits group offsets for external
+//! lag tools. Store writes, blocking deliveries and retry back-offs happen on
 //! this thread. A small tokio runtime serves HTTP, signals and the topic checks (the Kafka
 //! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
 //! commits the batch in flight and publishes what is pending.
@@ -13,7 +14,9 @@ pub mod core;
 pub mod handover;
 pub mod latency;
 pub mod positions;
+pub mod segment;
 
+use std::collections::BTreeMap;
 use std::fmt;
 use std::path::PathBuf;
 use std::sync::atomic::Ordering;
@@ -61,6 +64,9 @@ pub struct RunOptions {
     pub start: Option<StartRequest>,
     /// Whether SIGTERM and SIGINT begin shutdown.
     pub signals: SignalHandling,
+    /// Whether to stop once every partition's end offset at start is applied (then write,
+    /// publish and return as after a signal).
+    pub stop_at_end: bool,
 }
 
 /// Whether the service listens for SIGTERM and SIGINT itself.
@@ -224,6 +230,8 @@ pub struct Service {
     admin: Arc<AdminRequests>,
     /// Whether the output topics hold every stored list.
     in_sync: bool,
+    /// With `--stop-at-end`: the input's end offsets at start.
+    stop_at: Option<BTreeMap<i32, i64>>,
 }
 
 /// Opens the store, starts HTTP, the probes and (with [`SignalHandling::Listen`]) the
@@ -273,6 +281,13 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         shutdown.clone(),
     ));
     spawn_broker_probe(config, &bus, metrics.clone(), shutdown.clone())?;
+    let stop_at = if options.stop_at_end {
+        let ends = OffsetsClient::new(&config.kafka, &bus)?.end_offsets(&config.kafka.input_topic)?;
+        tracing::info!(topic = %config.kafka.input_topic, offsets = ?ends, "will stop at these end offsets");
+        Some(ends)
+    } else {
+        None
+    };
 
     let producer = Arc::new(RecordProducer::new(&config.kafka, bus.clone())?);
     let core = Arc::new(Mutex::new(Core::new(
@@ -311,6 +326,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         metrics,
         admin,
         in_sync,
+        stop_at,
     })
 }
 
@@ -385,6 +401,12 @@ impl Service {
             }
             let flushed = self.core().flush_if_due();
             self.commit_group_offsets(flushed);
+            if let Some(ends) = &self.stop_at {
+                if self.core().has_applied(ends) {
+                    tracing::info!("the end offsets seen at start are applied; stopping");
+                    self.shutdown.begin();
+                }
+            }
             if self.admin.compact.swap(false, Ordering::Relaxed) {
                 tracing::info!("compacting the store on request");
                 self.core().compact_store();
@@ -404,9 +426,11 @@ impl Service {
         Ok(())
     }
 
-    /// Republishes everything first when the outputs are not in sync, then runs one
-    /// publication cycle.
+    /// Writes the applied batches to the store, republishes everything first when the
+    /// outputs are not in sync, then runs one publication cycle.
     fn publish(&mut self) -> Result<()> {
+        let flushed = self.core().flush(None);
+        self.commit_group_offsets(flushed);
         let mut c = self.core.lock().expect("core lock");
         if !self.in_sync {
             self.in_sync = c.republish_all()?;
@@ -422,11 +446,11 @@ impl Service {
         }
     }
 
-    /// Stops consuming, commits the batch in flight and publishes what is pending, within
+    /// Stops consuming, writes the applied batches and publishes what is pending, within
     /// `live.shutdown_timeout` (a watchdog ends the process past it); returns what the
     /// run did.
     pub fn drain(mut self) -> Result<RunReport> {
-        tracing::info!("stopping: committing the batch in flight and publishing pending lists");
+        tracing::info!("stopping: writing the applied batches and publishing pending lists");
         self.shutdown.begin();
         self.health.set_stopping();
         let limit = self.config.live.shutdown_timeout;

@@ -35,9 +35,9 @@ const BATCH_SLACK_BYTES: usize = 4096;
 /// Everything one micro-batch writes, persisted atomically by [`Store::commit`].
 pub struct BatchCommit<'a> {
     /// Users first seen in this batch.
-    pub new_users: Vec<(u32, String)>,
+    pub new_users: &'a [(u32, String)],
     /// Items first seen in this batch.
-    pub new_items: Vec<(u32, String)>,
+    pub new_items: &'a [(u32, String)],
     /// Users whose state changed.
     pub users: Vec<(u32, &'a UserState)>,
     /// The engine's deltas, dirty marks and statuses.
@@ -45,7 +45,7 @@ pub struct BatchCommit<'a> {
     /// How the pair deltas reach the store.
     pub pairs: PairWrite,
     /// The ledger after this batch.
-    pub ledger: Ledger,
+    pub ledger: &'a Ledger,
     /// Wall-clock time for new dirty marks.
     pub dirty_since: UnixNanos,
 }
@@ -114,11 +114,11 @@ impl Store {
             + BATCH_SLACK_BYTES;
         let mut wb = WriteBatch::with_capacity_bytes(estimate);
         let ids = self.cf(CF_IDS);
-        for (id, name) in &c.new_users {
+        for (id, name) in c.new_users {
             wb.put_cf(ids, [b"u", name.as_bytes()].concat(), id.to_be_bytes());
             wb.put_cf(ids, [&b"U"[..], &id.to_be_bytes()].concat(), name.as_bytes());
         }
-        for (id, name) in &c.new_items {
+        for (id, name) in c.new_items {
             wb.put_cf(ids, [b"i", name.as_bytes()].concat(), id.to_be_bytes());
             wb.put_cf(ids, [&b"I"[..], &id.to_be_bytes()].concat(), name.as_bytes());
         }
@@ -158,16 +158,16 @@ impl Store {
                 );
             }
         }
-        let mut ledger = c.ledger;
+        let mut ledger = c.ledger.clone();
         ledger.pair_keys_written |=
             !c.effects.rating_pairs.is_empty() || !c.effects.purchase_pairs.is_empty();
         wb.put_cf(self.cf(CF_META), META_LEDGER, serde_json::to_vec(&ledger)?);
         self.write(wb)?;
         self.ledger = ledger;
         for (id, name) in c.new_items {
-            debug_assert_eq!(id as usize, self.items.names.len());
-            self.items.ids.insert(name.clone(), id);
-            self.items.names.push(name);
+            debug_assert_eq!(*id as usize, self.items.names.len());
+            self.items.ids.insert(name.clone(), *id);
+            self.items.names.push(name.clone());
         }
         Ok(())
     }

@@ -4,7 +4,7 @@
 use std::collections::HashMap;
 
 use anyhow::{Context, Result};
-use rocksdb::{Direction, IteratorMode, ReadOptions};
+use rocksdb::{IteratorMode, ReadOptions};
 use rustc_hash::FxHashSet;
 
 use super::{
@@ -74,44 +74,48 @@ impl Store {
         Ok(out)
     }
 
-    fn row_iter(&self, cf: &str, item: u32) -> impl Iterator<Item = Result<(u32, Box<[u8]>)>> + '_ {
+    /// Calls `visit` with (other item, stored value) for every pair in an item's row, in
+    /// key order. A raw iterator lends each key and value in place: a row of thousands of
+    /// pairs costs no allocation per entry.
+    fn visit_row(&self, cf: &str, item: u32, mut visit: impl FnMut(u32, &[u8]) -> Result<()>) -> Result<()> {
         let mut ro = ReadOptions::default();
         if let Some(next) = item.checked_add(1) {
             ro.set_iterate_upper_bound(next.to_be_bytes().to_vec());
         }
-        let start = codec::pair_row_key(item, 0);
-        self.db
-            .iterator_cf_opt(self.cf(cf), ro, IteratorMode::From(&start, Direction::Forward))
-            .map(|entry| {
-                let (key, value) = entry?;
-                let (_, other) = codec::split_pair_key(&key)?;
-                Ok((other, value))
-            })
+        let mut rows = self.db.raw_iterator_cf_opt(self.cf(cf), ro);
+        rows.seek(codec::pair_row_key(item, 0));
+        while let (Some(key), Some(value)) = (rows.key(), rows.value()) {
+            let (_, other) = codec::split_pair_key(key)?;
+            visit(other, value)?;
+            rows.next();
+        }
+        rows.status()?;
+        Ok(())
     }
 
     /// The rating row of an item: every other item with non-empty pair sums.
     pub fn rating_row(&self, item: u32) -> Result<Vec<(u32, RatingPairStats)>> {
         let mut out = Vec::new();
-        for entry in self.row_iter(CF_PAIRS, item) {
-            let (other, value) = entry?;
-            let stats = codec::decode_rating_pair(&value)?;
+        self.visit_row(CF_PAIRS, item, |other, value| {
+            let stats = codec::decode_rating_pair(value)?;
             if stats.n != 0 {
                 out.push((other, stats));
             }
-        }
+            Ok(())
+        })?;
         Ok(out)
     }
 
     /// The purchase row of an item, including its own buyer count under its own id.
     pub fn purchase_row(&self, item: u32) -> Result<Vec<(u32, i64)>> {
         let mut out = Vec::new();
-        for entry in self.row_iter(CF_PURCHASE_PAIRS, item) {
-            let (other, value) = entry?;
-            let count = codec::decode_count(&value)?;
+        self.visit_row(CF_PURCHASE_PAIRS, item, |other, value| {
+            let count = codec::decode_count(value)?;
             if count != 0 {
                 out.push((other, count));
             }
-        }
+            Ok(())
+        })?;
         Ok(out)
     }
 

@@ -141,9 +141,14 @@ impl Service {
     }
 
     /// Sends SIGTERM and waits for the exit; returns the status and stdout.
-    pub fn terminate(mut self, within: Duration) -> (ExitStatus, String) {
+    pub fn terminate(self, within: Duration) -> (ExitStatus, String) {
         let pid = self.child.id().to_string();
         Command::new("kill").args(["-TERM", &pid]).status().unwrap();
+        self.wait_exit(within)
+    }
+
+    /// Waits for the process to exit on its own; returns the status and stdout.
+    pub fn wait_exit(mut self, within: Duration) -> (ExitStatus, String) {
         let deadline = Instant::now() + within;
         loop {
             if let Some(status) = self.child.try_wait().unwrap() {
@@ -158,7 +163,7 @@ impl Service {
             }
             assert!(
                 Instant::now() < deadline,
-                "simtide did not exit within {within:?} of SIGTERM"
+                "simtide did not exit within {within:?}"
             );
             std::thread::sleep(Duration::from_millis(50));
         }
