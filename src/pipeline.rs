@@ -304,6 +304,11 @@ pub struct Sealed {
 }
 
 impl Sealed {
+    /// The segment's effects, pair deltas summed and sorted.
+    pub fn effects(&self) -> &BatchEffects {
+        &self.effects
+    }
+
     /// Persists the segment: in one WriteBatch (`PairWrite::InBatch`; a failed write
     /// changed nothing and may be tried again), or with its pair sums ingested as sorted
     /// files first (`PairWrite::Ingested`) and everything else in one WriteBatch after.

@@ -29,6 +29,7 @@ use crate::retry::Backoff;
 use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
+use crate::store::mirror::{MirroredRows, RowMirror};
 use crate::store::{Delivery, MarkAfterWrite, PairWrite, Store};
 use crate::timefmt::now_nanos;
 
@@ -103,6 +104,8 @@ pub struct Core {
     pending: PendingBatch,
     /// Batches applied in memory and not yet written.
     segment: Option<AppliedSegment>,
+    /// Rating rows kept in memory for publication cycles, equal to the store's.
+    mirror: RowMirror,
     counters: RunCounters,
     latency: LatencyRecorder,
     engine: EngineSettings,
@@ -131,6 +134,7 @@ impl Core {
             store,
             pending: PendingBatch::default(),
             segment: None,
+            mirror: RowMirror::within(config.live.memory_budget.0 as usize),
             counters: RunCounters::default(),
             latency: LatencyRecorder::default(),
             engine: config.engine_settings(),
@@ -324,6 +328,7 @@ impl Core {
                 return Flushed::Abandoned;
             }
         }
+        self.mirror.absorb(sealed.effects());
         self.health.set_store_error(None);
         self.metrics.clear_batch_stalled();
         self.counters.absorb(&segment.counts);
@@ -455,14 +460,23 @@ impl Core {
     /// One publication cycle: rescore dirty items, deliver the lists that changed, and
     /// store as published only what the broker acknowledged; the rest stays dirty.
     pub fn publish(&mut self) -> Result<CycleReport> {
+        // Lent to the cycle, and back whatever it returns (rows kept stay valid).
+        let mut mirror = std::mem::take(&mut self.mirror);
+        let report = self.publish_with(&mut mirror);
+        self.mirror = mirror;
+        report
+    }
+
+    fn publish_with(&mut self, mirror: &mut RowMirror) -> Result<CycleReport> {
         let started = Instant::now();
         let covered = std::mem::take(&mut self.unpublished_ms);
         let now = now_nanos();
-        let mut cycle = Cycle::plan(&self.store, &self.store, now)?;
+        let rows = MirroredRows::new(mirror, &self.store);
+        let mut cycle = Cycle::plan(&self.store, &rows, now)?;
         let destination = self.destination();
         let mut undelivered = 0u64;
         let mut delivered = Vec::new();
-        while let Some(rescored) = cycle.next_chunk(&self.store, &self.store, &self.lists)? {
+        while let Some(rescored) = cycle.next_chunk(&self.store, &rows, &self.lists)? {
             let (mut writes, drifts): (Vec<_>, Vec<_>) =
                 rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
             let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
@@ -512,6 +526,7 @@ impl Core {
                 break;
             }
         }
+        rows.finish();
         self.counters.lists_delivered += delivered.len() as u64;
         self.counters.cycles += 1;
         self.counters.lists_undelivered += undelivered;

@@ -24,6 +24,7 @@ mod ids;
 mod ingest;
 pub mod ledger;
 pub mod merge;
+pub mod mirror;
 mod open;
 mod oriented;
 mod reads;
