@@ -82,6 +82,25 @@ fn defaults() -> LiveSettings {
     }
 }
 
+/// Follows a process's peak resident memory (VmHWM, KiB) until it exits; the handle
+/// returns the last value read.
+fn watch_peak_rss(pid: u32) -> std::thread::JoinHandle<u64> {
+    std::thread::spawn(move || {
+        let mut peak = 0;
+        while let Ok(status) = std::fs::read_to_string(format!("/proc/{pid}/status")) {
+            if let Some(kib) = status
+                .lines()
+                .find_map(|l| l.strip_prefix("VmHWM:"))
+                .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+            {
+                peak = kib;
+            }
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        peak
+    })
+}
+
 /// Reads every record of the input topic from the start with a plain consumer that does
 /// nothing with them; returns records per second.
 fn bare_consumer_rate(brokers: &str, expected: usize) -> f64 {
@@ -128,6 +147,7 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
     );
     let started = Instant::now();
     let service = Service::start(&config, port, &["--stop-at-end"]);
+    let peak_rss = watch_peak_rss(service.pid());
     // Readiness as a whole also fails while the lag is high; these two checks are the
     // moments that matter: partitions assigned, and shutdown begun (every event applied).
     let readiness = || service.get("/readyz").map(|(_, body)| body).unwrap_or_default();
@@ -165,6 +185,10 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
         "  events/s to written and published: ours {end_to_end:.0}, ratio {:.3}",
         end_to_end / reference
     );
+    println!(
+        "  peak RSS of simtide run: {} MiB",
+        peak_rss.join().unwrap() / 1024
+    );
     println!("{report}\n");
     ours
 }
@@ -179,6 +203,7 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
         &defaults(),
     );
     let service = Service::start(&config, port, &[]);
+    let peak_rss = watch_peak_rss(service.pid());
     wait_for("ready", Duration::from_secs(60), || {
         service.get("/readyz").is_some_and(|(s, _)| s == 200)
     });
@@ -218,10 +243,11 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
     });
     let drained_s = started.elapsed().as_secs_f64() - offered_s;
     let (_, report) = service.terminate(Duration::from_secs(60));
+    let peak_rss_mib = peak_rss.join().unwrap() / 1024;
     let max_lag = lags.iter().copied().max().unwrap_or(0);
     let tail = &lags[lags.len().saturating_sub(5)..];
     println!(
-        "paced: offered {} events at {rate:.0}/s over {offered_s:.1}s (achieved {:.0}/s); lag samples {}: max {max_lag}, last five {tail:?}; drained {drained_s:.1}s after the last produce",
+        "paced: offered {} events at {rate:.0}/s over {offered_s:.1}s (achieved {:.0}/s); lag samples {}: max {max_lag}, last five {tail:?}; drained {drained_s:.1}s after the last produce; peak RSS {peak_rss_mib} MiB",
         events.len(),
         events.len() as f64 / offered_s,
         lags.len()
