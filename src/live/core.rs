@@ -272,6 +272,9 @@ impl Core {
                     self.metrics.note_batch_stalled();
                     self.health.set_store_error(Some(text));
                     if !backoff.wait(deadline, &self.shutdown) {
+                        // The failed attempts may have given ids to names of the batch
+                        // now dropped; the whole segment goes with it, and its batches are
+                        // consumed again from the stored positions.
                         self.segment = None;
                         self.abandon_batch();
                         return BatchApply::Abandoned;

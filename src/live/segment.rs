@@ -7,7 +7,6 @@
 //! consumption resumes, so nothing is applied twice.
 
 use std::collections::BTreeMap;
-use std::time::Instant;
 
 use super::core::RunCounters;
 use crate::event::UnixMillis;
@@ -25,8 +24,6 @@ pub struct AppliedSegment {
     /// Messages, batches, events and dead letters of the applied batches; added to the
     /// run's counters once they are in the store.
     pub counts: RunCounters,
-    /// When the first batch was applied.
-    pub opened: Instant,
 }
 
 impl AppliedSegment {
@@ -37,7 +34,6 @@ impl AppliedSegment {
             offsets: BTreeMap::new(),
             timestamps: Vec::new(),
             counts: RunCounters::default(),
-            opened: Instant::now(),
         }
     }
 

@@ -48,6 +48,11 @@ impl RowMirror {
     /// Adds the rating deltas of a write that just landed to the rows kept; rows not kept
     /// stay unknown.
     pub fn absorb(&mut self, effects: &BatchEffects) {
+        // Indexing millions of deltas by row costs a pass over them: only when a kept row
+        // can change.
+        if self.rows.is_empty() || effects.rating_pairs.is_empty() {
+            return;
+        }
         let deltas = OrientedRows::of(&effects.rating_pairs, 0);
         for (&item, row) in self.rows.iter_mut() {
             let mut changes = deltas.row(item).peekable();
