@@ -36,3 +36,5 @@ pub mod shutdown;
 mod source;
 pub mod status;
 pub mod store;
+#[cfg(test)]
+mod test_random;

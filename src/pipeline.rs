@@ -1,9 +1,9 @@
 //! One micro-batch from decoded events to a committed store write: intern ids, load the
 //! states the batch touches, run the engine, and persist everything — including the source
-//! position the batch consumed — in one write. The live consumer commits every batch
-//! ([`apply_and_commit`]); a backfill applies many batches to one [`Pending`] segment in
-//! memory and commits it once, a file backfill's pair sums ingested as sorted table files
-//! (docs/design.md, "Bulk backfill").
+//! position the batch consumed — in one write. The live service and a backfill apply many
+//! batches to one [`Pending`] segment in memory and commit it once, pair sums ingested as
+//! sorted table files (docs/design.md, "Bulk backfill", "Live writes");
+//! [`apply_and_commit`] writes a single batch (the live start positions).
 
 use std::collections::{BTreeMap, HashMap};
 
@@ -304,26 +304,15 @@ pub struct Sealed {
 }
 
 impl Sealed {
-    /// The segment's effects, pair deltas summed and sorted.
-    pub fn effects(&self) -> &BatchEffects {
-        &self.effects
-    }
-
-    /// Persists the segment: in one WriteBatch (`PairWrite::InBatch`; a failed write
-    /// changed nothing and may be tried again), or with its pair sums ingested as sorted
-    /// files first (`PairWrite::Ingested`) and everything else in one WriteBatch after.
-    pub fn write(&self, store: &mut Store, pairs: PairWrite) -> Result<()> {
-        let started = std::time::Instant::now();
-        if pairs == PairWrite::Ingested {
-            store.ingest_pairs(&self.effects, self.ledger.next_seq)?;
-        }
+    /// What the store writes for this segment.
+    fn commit(&self, pairs: PairWrite) -> BatchCommit<'_> {
         let changed_users: Vec<_> = self
             .effects
             .touched_users
             .iter()
             .map(|u| (*u, self.states.get(u).expect("touched users are loaded")))
             .collect();
-        store.commit(BatchCommit {
+        BatchCommit {
             new_users: &self.new_users,
             new_items: &self.new_items,
             users: changed_users,
@@ -331,15 +320,38 @@ impl Sealed {
             pairs,
             ledger: &self.ledger,
             dirty_since: now_nanos(),
-        })?;
+        }
+    }
+
+    /// The segment's effects, pair deltas summed and sorted.
+    pub fn effects(&self) -> &BatchEffects {
+        &self.effects
+    }
+
+    /// Persists the segment: in one WriteBatch (`PairWrite::InBatch`), or with pair sums
+    /// ingested as sorted files first and everything else in one WriteBatch after
+    /// (`PairWrite::Ingested`, `PairWrite::RatingsIngested`). A failed write may be tried
+    /// again: files already ingested are not ingested twice.
+    pub fn write(&self, store: &mut Store, pairs: PairWrite) -> Result<()> {
+        let started = std::time::Instant::now();
+        store.commit(self.commit(pairs))?;
         tracing::debug!(
             rating_pairs = self.effects.rating_pairs.len(),
             purchase_pairs = self.effects.purchase_pairs.len(),
-            ingested = pairs == PairWrite::Ingested,
+            pairs = ?pairs,
             write_seconds = started.elapsed().as_secs_f64(),
             "segment written"
         );
         Ok(())
+    }
+}
+
+#[cfg(test)]
+impl Sealed {
+    /// The first step of a `PairWrite::RatingsIngested` write alone: what a process
+    /// killed between ingesting the rating table files and writing the rest leaves.
+    pub(crate) fn ingest_ratings_only(&self, store: &Store) -> Result<()> {
+        store.ingest_rating_pairs_only(self.commit(PairWrite::RatingsIngested))
     }
 }
 

@@ -17,13 +17,8 @@ use crate::store::{PairWrite, Store};
 /// A deterministic little shop: 40 customers rating and buying from 25 items.
 fn write_events(path: &Path, first_user: u32, users: u32) {
     let mut text = String::from("user,item,value,at\n");
-    let mut state = u64::from(first_user) * 7919 + 1;
-    let mut next = move |n: u64| {
-        state = state
-            .wrapping_mul(6364136223846793005)
-            .wrapping_add(1442695040888963407);
-        (state >> 33) % n
-    };
+    let mut random = crate::test_random::TestRandom::seeded(u64::from(first_user) * 7919 + 1);
+    let mut next = move |n: u64| random.below(n);
     for u in first_user..first_user + users {
         for k in 0..(3 + next(10)) {
             let item = next(25);

@@ -1,10 +1,11 @@
 //! Producing records and knowing which ones the broker acknowledged. One idempotent
 //! producer serves the output and dead-letter topics; [`RecordProducer::deliver`] produces
 //! a set of records and waits, within a deadline, for the broker's answer on each, so the
-//! caller only records as delivered what really was.
+//! caller only records as delivered what really was; [`RecordProducer::send`] lets the
+//! caller work while the broker answers.
 
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::{Arc, Mutex};
+use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
@@ -130,16 +131,21 @@ impl RecordProducer {
         })
     }
 
-    /// Produces every record and waits up to `timeout` for the broker's answers. Records
-    /// not acknowledged by then are reported failed; those not yet sent are withdrawn, the
-    /// ones already in flight may still arrive (every record simtide produces is safe to
-    /// see twice).
+    /// Produces every record and waits up to `timeout` for the broker's answers
+    /// ([`RecordProducer::send`] then [`Sending::settle`]).
     pub fn deliver(&self, records: &[OutRecord], timeout: Duration) -> DeliveryReport {
-        let _one_call_at_a_time = self.serial.lock().expect("producer call lock");
+        self.send(records, timeout).settle()
+    }
+
+    /// Hands every record to librdkafka and returns at once; the caller may work while
+    /// the broker answers, then settles. One sending at a time: a second waits for the
+    /// first to be settled.
+    pub fn send(&self, records: &[OutRecord], timeout: Duration) -> Sending<'_> {
+        let guard = self.serial.lock().expect("producer call lock");
         let generation = self.acks.generation.fetch_add(1, Ordering::AcqRel) + 1;
         self.acks.state.lock().expect("ack lock").answered = vec![None; records.len()];
         let deadline = Instant::now() + timeout;
-        let mut report = DeliveryReport::default();
+        let mut failed = Vec::new();
         let mut not_sent = vec![false; records.len()];
         for (index, r) in records.iter().enumerate() {
             let opaque = ((generation << INDEX_BITS) as usize) | index;
@@ -166,24 +172,50 @@ impl RecordProducer {
                         std::thread::sleep(Duration::from_millis(5));
                     }
                     Err((e, _)) => {
-                        report.failed.push((index, e.to_string()));
+                        failed.push((index, e.to_string()));
                         not_sent[index] = true;
                         break;
                     }
                 }
             }
         }
-        let left = deadline.saturating_duration_since(Instant::now());
+        Sending {
+            producer: self,
+            _one_at_a_time: guard,
+            deadline,
+            failed,
+            not_sent,
+        }
+    }
+}
+
+/// Records handed to librdkafka whose answers are not yet collected.
+pub struct Sending<'a> {
+    producer: &'a RecordProducer,
+    _one_at_a_time: MutexGuard<'a, ()>,
+    deadline: Instant,
+    failed: Vec<(usize, String)>,
+    not_sent: Vec<bool>,
+}
+
+impl Sending<'_> {
+    /// Waits until the deadline for the broker's answers; records not acknowledged by
+    /// then are reported failed, those not yet sent are withdrawn, the ones already in
+    /// flight may still arrive (every record simtide produces is safe to see twice).
+    pub fn settle(self) -> DeliveryReport {
+        let producer = self.producer;
+        let left = self.deadline.saturating_duration_since(Instant::now());
         // A flush that times out leaves the unanswered records to be reported below. The
         // ones librdkafka still holds unsent (a missing topic keeps them queued) are
         // purged: the caller sends them again, and a queued copy delivered later as well
         // would make a duplicate of every retry.
-        if self.producer.flush(left).is_err() {
-            self.producer.purge(PurgeConfig::default().queue());
+        if producer.producer.flush(left).is_err() {
+            producer.producer.purge(PurgeConfig::default().queue());
         }
-        let state = self.acks.state.lock().expect("ack lock");
+        let mut report = DeliveryReport { failed: self.failed };
+        let state = producer.acks.state.lock().expect("ack lock");
         for (index, answer) in state.answered.iter().enumerate() {
-            if not_sent[index] {
+            if self.not_sent[index] {
                 continue;
             }
             match answer {

@@ -19,18 +19,18 @@ use crate::engine::EngineSettings;
 use crate::event::UnixMillis;
 use crate::health::Health;
 use crate::kafka::message::InMessage;
-use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
+use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer, Sending};
 use crate::metrics::Metrics;
 use crate::model::PublishedList;
 use crate::observe::{DeliveredList, Observation};
-use crate::publish::{Cycle, CycleReport};
+use crate::publish::{Cycle, CycleReport, ListDrift};
 use crate::record::NeighborRecord;
 use crate::retry::Backoff;
 use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
 use crate::store::mirror::{MirroredRows, RowMirror};
-use crate::store::{Delivery, MarkAfterWrite, PairWrite, Store};
+use crate::store::{Delivery, MarkAfterWrite, PairWrite, PublicationWrite, Store};
 use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
@@ -95,6 +95,27 @@ impl RunCounters {
         }
         self.batches += other.batches;
     }
+}
+
+/// A publication chunk whose changed lists are with the broker.
+struct ChunkInFlight {
+    /// The chunk's store writes, in plan order.
+    writes: Vec<PublicationWrite>,
+    /// Drift of each write's list from the one it replaces.
+    drifts: Vec<Option<ListDrift>>,
+    /// Which writes hold a changed list, in the order of `records`.
+    changed: Vec<usize>,
+    /// The records sent for them.
+    records: Vec<OutRecord>,
+}
+
+/// What a publication cycle's deliveries did so far.
+#[derive(Default)]
+struct CycleDeliveries {
+    /// Lists the broker acknowledged.
+    delivered: Vec<DeliveredList>,
+    /// Lists it did not, left dirty for the next cycle.
+    undelivered: u64,
 }
 
 /// The service state.
@@ -231,6 +252,8 @@ impl Core {
 
     /// Applies the collected batch and writes everything applied to the store, with its
     /// next offsets, in one write (before a publication cycle, a revocation, or exit).
+    /// The write goes in two steps, rating table files then a WriteBatch, that a store
+    /// reopened after a kill between them finishes (`PairWrite::RatingsIngested`).
     /// Failures are retried with backoff until `deadline`; consumption waits meanwhile.
     pub fn flush(&mut self, deadline: Option<Instant>) -> Flushed {
         // A batch whose dead letters could not be delivered is dropped alone: the batches
@@ -309,7 +332,7 @@ impl Core {
         BatchApply::Applied
     }
 
-    /// Writes the applied batches to the store in one WriteBatch holding their next
+    /// Writes the applied batches to the store in one write holding their next
     /// offsets, retrying a failed write with backoff until `deadline`.
     fn write_segment(&mut self, deadline: Option<Instant>) -> Flushed {
         let Some(segment) = self.segment.take() else {
@@ -318,7 +341,7 @@ impl Core {
         let started = Instant::now();
         let sealed = segment.pending.seal();
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
-        while let Err(e) = sealed.write(&mut self.store, PairWrite::InBatch) {
+        while let Err(e) = sealed.write(&mut self.store, PairWrite::RatingsIngested) {
             let text = format!("store write failed: {e:#}");
             Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
             self.metrics.note_batch_stalled();
@@ -382,6 +405,12 @@ impl Core {
     /// Produces `records` and tells readiness, per topic, whether the broker took them.
     fn deliver(&self, records: &[OutRecord]) -> DeliveryReport {
         let report = self.producer.deliver(records, self.config.live.delivery_timeout);
+        self.note_delivery(records, &report);
+        report
+    }
+
+    /// Tells readiness, per topic of `records`, whether the broker took them.
+    fn note_delivery(&self, records: &[OutRecord], report: &DeliveryReport) {
         let mut outcome: BTreeMap<&str, Option<&str>> =
             records.iter().map(|r| (r.topic.as_str(), None)).collect();
         for (i, reason) in &report.failed {
@@ -390,7 +419,6 @@ impl Core {
         for (topic, failure) in outcome {
             self.health.note_delivery(topic, failure);
         }
-        report
     }
 
     /// Drops the collected batch; it is consumed again from the stored positions.
@@ -477,11 +505,23 @@ impl Core {
         let rows = MirroredRows::new(mirror, &self.store);
         let mut cycle = Cycle::plan(&self.store, &rows, now)?;
         let destination = self.destination();
-        let mut undelivered = 0u64;
-        let mut delivered = Vec::new();
-        while let Some(rescored) = cycle.next_chunk(&self.store, &rows, &self.lists)? {
-            let (mut writes, drifts): (Vec<_>, Vec<_>) =
-                rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
+        let mut outcome = CycleDeliveries::default();
+        // The broker stores one chunk while the next is scored: a chunk is sent, the next
+        // computed, then the first one's answers are collected and its lists stored.
+        let producer = self.producer.clone();
+        let mut in_flight: Option<(ChunkInFlight, Sending<'_>)> = None;
+        loop {
+            let next = cycle.next_chunk(&self.store, &rows, &self.lists)?;
+            if let Some((chunk, sending)) = in_flight.take() {
+                let report = sending.settle();
+                if !self.settle_chunk(chunk, report, &destination, now, &mut outcome)? {
+                    // The broker is away: end the cycle; what was not stored keeps its
+                    // dirty marks (marks that expand to a whole row are cleared last).
+                    break;
+                }
+            }
+            let Some(rescored) = next else { break };
+            let (writes, drifts): (Vec<_>, Vec<_>) = rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
             let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
             if changed.is_empty() {
                 self.store
@@ -499,36 +539,19 @@ impl Core {
                     )
                 })
                 .collect();
-            let report = self.deliver(&records);
-            let mut failed = vec![false; changed.len()];
-            for (k, _) in &report.failed {
-                failed[*k] = true;
-                writes[changed[*k]].mark = MarkAfterWrite::Renew;
-            }
-            for (k, &i) in changed.iter().enumerate().filter(|(k, _)| !failed[*k]) {
-                delivered.push(DeliveredList {
-                    signal: writes[i].signal,
-                    tombstone: records[k].value.is_none(),
-                    drift: drifts[i],
-                });
-            }
-            if !report.all_delivered() {
-                Observation::DeliveryFailed {
-                    what: "lists",
-                    count: report.failed.len(),
-                    first_reason: &report.failed[0].1,
-                }
-                .emit(&self.metrics);
-            }
-            undelivered += report.failed.len() as u64;
-            self.store
-                .write_publications(&writes, Delivery::Delivered(&destination), now)?;
-            if report.failed.len() == records.len() {
-                // The broker is away: end the cycle; what was not rescored keeps its
-                // dirty marks (marks that expand to a whole row are cleared last).
-                break;
-            }
+            let sending = producer.send(&records, self.config.live.delivery_timeout);
+            let chunk = ChunkInFlight {
+                writes,
+                drifts,
+                changed,
+                records,
+            };
+            in_flight = Some((chunk, sending));
         }
+        let CycleDeliveries {
+            delivered,
+            undelivered,
+        } = outcome;
         rows.finish();
         self.counters.lists_delivered += delivered.len() as u64;
         self.counters.cycles += 1;
@@ -550,6 +573,49 @@ impl Core {
         }
         self.refresh_store_gauges();
         Ok(report)
+    }
+
+    /// Stores a delivered chunk's lists: those the broker acknowledged as published, the
+    /// others marked dirty again. False when the broker took none of them.
+    fn settle_chunk(
+        &self,
+        chunk: ChunkInFlight,
+        report: DeliveryReport,
+        destination: &str,
+        now: crate::event::UnixNanos,
+        outcome: &mut CycleDeliveries,
+    ) -> Result<bool> {
+        let ChunkInFlight {
+            mut writes,
+            drifts,
+            changed,
+            records,
+        } = chunk;
+        self.note_delivery(&records, &report);
+        let mut failed = vec![false; changed.len()];
+        for (k, _) in &report.failed {
+            failed[*k] = true;
+            writes[changed[*k]].mark = MarkAfterWrite::Renew;
+        }
+        for (k, &i) in changed.iter().enumerate().filter(|(k, _)| !failed[*k]) {
+            outcome.delivered.push(DeliveredList {
+                signal: writes[i].signal,
+                tombstone: records[k].value.is_none(),
+                drift: drifts[i],
+            });
+        }
+        if !report.all_delivered() {
+            Observation::DeliveryFailed {
+                what: "lists",
+                count: report.failed.len(),
+                first_reason: &report.failed[0].1,
+            }
+            .emit(&self.metrics);
+        }
+        outcome.undelivered += report.failed.len() as u64;
+        self.store
+            .write_publications(&writes, Delivery::Delivered(destination), now)?;
+        Ok(report.failed.len() < records.len())
     }
 
     /// Items and users, from memory.

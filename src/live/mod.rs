@@ -3,7 +3,8 @@
 //! an async worker: one loop polls the group consumer, collects micro-batches (bounded by
 //! count and age) and applies each in memory; before every publication cycle (every
 //! `publish.interval`), and sooner past `live.memory_budget`, it writes the applied batches
-//! as one store write holding their next offsets, then commits group offsets for external
+//! with their next offsets (one write that a reopened store finishes if it was cut in
+//! two), then commits group offsets for external
 //! lag tools. Store writes, blocking deliveries and retry back-offs happen on
 //! this thread. A small tokio runtime serves HTTP, signals and the topic checks (the Kafka
 //! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
@@ -374,6 +375,14 @@ async fn begin_shutdown_on_signal(shutdown: Shutdown) {
     shutdown.begin();
 }
 
+/// When the next publication cycle starts: one interval after this one started, so lists
+/// are refreshed at the configured rate however long the write and the cycle took, but
+/// never sooner than a quarter interval after this one ended, so that consumption goes on
+/// when cycles take most of the interval.
+fn next_cycle_start(started: Instant, ended: Instant, interval: Duration) -> Instant {
+    (started + interval).max(ended + interval / 4)
+}
+
 impl Service {
     fn core(&self) -> std::sync::MutexGuard<'_, Core> {
         self.core.lock().expect("core lock")
@@ -419,8 +428,9 @@ impl Service {
                 next_publish = Instant::now();
             }
             if Instant::now() >= next_publish {
+                let started = Instant::now();
                 self.publish()?;
-                next_publish = Instant::now() + interval;
+                next_publish = next_cycle_start(started, Instant::now(), interval);
             }
         }
         Ok(())
@@ -474,4 +484,26 @@ pub fn run_service(config: &Config, options: RunOptions, shutdown: Shutdown) -> 
     let mut service = start(config, options, shutdown)?;
     service.run()?;
     service.drain()
+}
+
+#[cfg(test)]
+mod tests {
+    use std::time::{Duration, Instant};
+
+    use super::next_cycle_start;
+
+    #[test]
+    fn cycles_start_one_interval_apart_unless_a_cycle_ran_long() {
+        let t0 = Instant::now();
+        let interval = Duration::from_secs(5);
+        // A 2 s cycle: the next starts 5 s after this one started, 3 s after it ended.
+        let next = next_cycle_start(t0, t0 + Duration::from_secs(2), interval);
+        assert_eq!(next, t0 + interval);
+        // A 4.5 s cycle: consumption still gets a quarter interval before the next.
+        let ended = t0 + Duration::from_millis(4500);
+        assert_eq!(next_cycle_start(t0, ended, interval), ended + interval / 4);
+        // A 9 s cycle: the same, not a cycle right after the other.
+        let ended = t0 + Duration::from_secs(9);
+        assert_eq!(next_cycle_start(t0, ended, interval), ended + interval / 4);
+    }
 }

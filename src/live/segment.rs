@@ -1,7 +1,8 @@
 //! The micro-batches applied in memory since the service last wrote to the store
 //! (docs/design.md, "Live writes"): the engine's pending segment, the input positions it
 //! reached, the record timestamps it covers and what it counted. The service writes it as
-//! one WriteBatch — pair deltas summed, next offsets in the same write — before each
+//! one write — pair deltas summed, next offsets in the same write (rating pair sums as
+//! table files whose marker carries the rest, see `PairWrite::RatingsIngested`) — before each
 //! publication cycle, before partitions are revoked, at shutdown, and when it outgrows
 //! `live.memory_budget`. A crash loses only this memory; the store's positions say where
 //! consumption resumes, so nothing is applied twice.

@@ -55,9 +55,16 @@ pub struct BatchCommit<'a> {
 pub enum PairWrite {
     /// In the commit's WriteBatch (a live micro-batch: few pairs, one atomic write).
     InBatch,
-    /// Already ingested as table files by [`Store::ingest_pairs`] (a bulk segment); the
-    /// commit deletes the segment markers instead.
+    /// Both families ingested as table files first ([`Store::ingest_pairs`], a file
+    /// backfill's segment); the commit deletes the segment markers. A kill between the two
+    /// steps is finished by a rerun that cuts the same batches.
     Ingested,
+    /// Rating pair sums ingested as table files whose segment marker carries the rest of
+    /// the write (the WriteBatch's bytes, co-buyer counts included); the commit writes
+    /// that batch, which deletes the marker. A kill between the two steps is finished
+    /// when the store next opens, whatever the next run consumes (the live service,
+    /// whose batches depend on timing).
+    RatingsIngested,
 }
 
 /// A list to store after publication, with the dirty mark it clears.
@@ -99,9 +106,42 @@ impl Store {
     /// in key order): ids, user states, pair deltas (as merges, under
     /// both orders), statuses, dirty marks and the ledger.
     pub fn commit(&mut self, c: BatchCommit<'_>) -> Result<()> {
+        let (wb, ledger) = self.commit_batch(&c)?;
+        match c.pairs {
+            PairWrite::InBatch => {}
+            PairWrite::Ingested => self.ingest_pairs(c.effects, c.ledger.next_seq)?,
+            PairWrite::RatingsIngested => {
+                self.ingest_rating_pairs(c.effects, c.ledger.next_seq, wb.data())?
+            }
+        }
+        self.write(wb)?;
+        self.ledger = ledger;
+        for (id, name) in c.new_items {
+            debug_assert_eq!(*id as usize, self.items.names.len());
+            self.items.ids.insert(name.clone(), *id);
+            self.items.names.push(name.clone());
+        }
+        Ok(())
+    }
+
+    /// The first step of a [`PairWrite::RatingsIngested`] commit alone: what a process
+    /// killed between ingesting the table files and writing the batch leaves behind.
+    #[cfg(test)]
+    pub(crate) fn ingest_rating_pairs_only(&self, c: BatchCommit<'_>) -> Result<()> {
+        let (wb, _) = self.commit_batch(&c)?;
+        self.ingest_rating_pairs(c.effects, c.ledger.next_seq, wb.data())
+    }
+
+    /// The WriteBatch of a commit (everything but the pair sums that go in as table
+    /// files) and the ledger the store holds after it.
+    fn commit_batch(&self, c: &BatchCommit<'_>) -> Result<(WriteBatch, Ledger)> {
         // Reserve the batch's bytes up front: a bulk batch holds millions of pair merges and
         // growing the buffer by doubling would copy it over and over.
-        let estimate = c.effects.rating_pairs.len() * 2 * RATING_PAIR_RECORD_BYTES
+        let rating_pairs_in_batch = match c.pairs {
+            PairWrite::InBatch => c.effects.rating_pairs.len(),
+            PairWrite::Ingested | PairWrite::RatingsIngested => 0,
+        };
+        let estimate = rating_pairs_in_batch * 2 * RATING_PAIR_RECORD_BYTES
             + c.effects.purchase_pairs.len() * 2 * COUNT_RECORD_BYTES
             + c.users
                 .iter()
@@ -131,10 +171,17 @@ impl Store {
         // Into a store that never held a pair, a put equals a merge and spares RocksDB a
         // merge-operator call for every key on each later read, flush and compaction.
         match c.pairs {
-            PairWrite::InBatch => self.write_pairs_in_batch(&mut wb, c.effects),
+            PairWrite::InBatch => {
+                self.write_rating_pairs(&mut wb, c.effects);
+                self.write_purchase_pairs(&mut wb, c.effects);
+            }
             PairWrite::Ingested => {
                 wb.delete_cf(self.cf(CF_PAIRS), SEGMENT_MARKER_KEY);
                 wb.delete_cf(self.cf(CF_PURCHASE_PAIRS), SEGMENT_MARKER_KEY);
+            }
+            PairWrite::RatingsIngested => {
+                wb.delete_cf(self.cf(CF_PAIRS), SEGMENT_MARKER_KEY);
+                self.write_purchase_pairs(&mut wb, c.effects);
             }
         }
         let items = self.cf(CF_ITEMS);
@@ -162,21 +209,15 @@ impl Store {
         ledger.pair_keys_written |=
             !c.effects.rating_pairs.is_empty() || !c.effects.purchase_pairs.is_empty();
         wb.put_cf(self.cf(CF_META), META_LEDGER, serde_json::to_vec(&ledger)?);
-        self.write(wb)?;
-        self.ledger = ledger;
-        for (id, name) in c.new_items {
-            debug_assert_eq!(*id as usize, self.items.names.len());
-            self.items.ids.insert(name.clone(), *id);
-            self.items.names.push(name.clone());
-        }
-        Ok(())
+        Ok((wb, ledger))
     }
 
-    /// Adds the pair deltas to a WriteBatch in key order, under both orders. Keys go in
-    /// sorted: RocksDB's skiplist memtable inserts sorted runs far faster than random ones.
-    /// Into a store that never held a pair, a put equals a merge and spares RocksDB a
-    /// merge-operator call for every key on each later read, flush and compaction.
-    fn write_pairs_in_batch(&self, wb: &mut WriteBatch, effects: &BatchEffects) {
+    /// Adds the rating pair deltas to a WriteBatch in key order, under both orders. Keys
+    /// go in sorted: RocksDB's skiplist memtable inserts sorted runs far faster than
+    /// random ones. Into a store that never held a pair, a put equals a merge and spares
+    /// RocksDB a merge-operator call for every key on each later read, flush and
+    /// compaction.
+    fn write_rating_pairs(&self, wb: &mut WriteBatch, effects: &BatchEffects) {
         let fresh = !self.ledger.pair_keys_written;
         let pairs = self.cf(CF_PAIRS);
         let rating = OrientedRows::of(&effects.rating_pairs, 0);
@@ -186,6 +227,11 @@ impl Store {
             codec::encode_rating_pair(&oriented_rating_stats(row, other, d), &mut value);
             add_pair(wb, pairs, fresh, codec::pair_row_key(row, other), &value);
         });
+    }
+
+    /// Adds the co-buyer count deltas to a WriteBatch, as [`Store::write_rating_pairs`].
+    fn write_purchase_pairs(&self, wb: &mut WriteBatch, effects: &BatchEffects) {
+        let fresh = !self.ledger.pair_keys_written;
         let purchases = self.cf(CF_PURCHASE_PAIRS);
         let purchase = OrientedRows::of(&effects.purchase_pairs, 0);
         purchase.each(|row, other, d| {

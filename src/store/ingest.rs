@@ -13,15 +13,58 @@ use std::ops::Range;
 use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
-use rocksdb::{IngestExternalFileOptions, SstFileWriter};
+use rocksdb::{IngestExternalFileOptions, SstFileWriter, WriteBatch, DB};
 
-use super::open::cf_options;
+use super::open::{cf_options, read_ledger};
 use super::oriented::{oriented_rating_stats, OrientedRows};
 use super::{codec, Store, CF_PAIRS, CF_PURCHASE_PAIRS};
 use crate::engine::{BatchEffects, RatingPairDelta};
 
 /// Key of the segment marker: sorts after every pair key (rows are ids below u32::MAX).
 pub(super) const SEGMENT_MARKER_KEY: [u8; 9] = [0xFF; 9];
+
+/// The value under [`SEGMENT_MARKER_KEY`]: the segment's end position, then (for a
+/// [`PairWrite::RatingsIngested`](super::PairWrite::RatingsIngested) write) the bytes of
+/// the WriteBatch that completes it.
+struct SegmentMarker<'a> {
+    end: u64,
+    rest: &'a [u8],
+}
+
+impl<'a> SegmentMarker<'a> {
+    fn encode(&self) -> Vec<u8> {
+        [&(self.end as i64).to_le_bytes()[..], self.rest].concat()
+    }
+
+    fn decode(bytes: &'a [u8]) -> Result<SegmentMarker<'a>> {
+        if bytes.len() < 8 {
+            bail!("segment marker has {} bytes, expected at least 8", bytes.len());
+        }
+        let (end, rest) = bytes.split_at(8);
+        Ok(SegmentMarker {
+            end: codec::decode_count(end)? as u64,
+            rest,
+        })
+    }
+}
+
+/// Finishes a [`PairWrite::RatingsIngested`](super::PairWrite::RatingsIngested) write
+/// that a killed process left half done: its table files are in, its batch (carried by
+/// the marker) is not. Writes that batch, which deletes the marker, before anything else
+/// reads or writes the store. Returns the segment end when it did.
+pub(super) fn finish_carried_write(db: &DB) -> Result<Option<u64>> {
+    let pairs = db.cf_handle(CF_PAIRS).expect("pair family exists");
+    let Some(bytes) = db.get_cf(pairs, SEGMENT_MARKER_KEY)? else {
+        return Ok(None);
+    };
+    let marker = SegmentMarker::decode(&bytes)?;
+    if marker.rest.is_empty() || marker.end <= read_ledger(db)?.next_seq {
+        return Ok(None);
+    }
+    db.write(WriteBatch::from_data(marker.rest))
+        .context("cannot finish the store write a stopped process left half done")?;
+    Ok(Some(marker.end))
+}
 
 /// Where table files are written before RocksDB takes them over.
 fn ingest_dir(store_dir: &Path) -> PathBuf {
@@ -74,7 +117,7 @@ impl Store {
         let Some(bytes) = self.db.get_cf(self.cf(family), SEGMENT_MARKER_KEY)? else {
             return Ok(None);
         };
-        Ok(Some(codec::decode_count(&bytes)? as u64))
+        Ok(Some(SegmentMarker::decode(&bytes)?.end))
     }
 
     /// Writes the segment's pair sums as table files and ingests them, family by family,
@@ -85,13 +128,31 @@ impl Store {
             rows: OrientedRows::of(&effects.rating_pairs, 0),
             encode: encode_rating,
         };
-        self.ingest_family(rating, segment_end)?;
+        self.ingest_family(rating, segment_end, &[])?;
         let purchase = FamilyRows {
             family: CF_PURCHASE_PAIRS,
             rows: OrientedRows::of(&effects.purchase_pairs, 0),
             encode: encode_count,
         };
-        self.ingest_family(purchase, segment_end)
+        self.ingest_family(purchase, segment_end, &[])
+    }
+
+    /// Writes the segment's rating pair sums as table files and ingests them, the marker
+    /// carrying `rest`: the bytes of the WriteBatch that completes the segment
+    /// ([`PairWrite::RatingsIngested`](super::PairWrite::RatingsIngested)). Skipped when
+    /// the family already holds this segment (a retry after the batch's write failed).
+    pub(super) fn ingest_rating_pairs(
+        &self,
+        effects: &BatchEffects,
+        segment_end: u64,
+        rest: &[u8],
+    ) -> Result<()> {
+        let rating = FamilyRows {
+            family: CF_PAIRS,
+            rows: OrientedRows::of(&effects.rating_pairs, 0),
+            encode: encode_rating,
+        };
+        self.ingest_family(rating, segment_end, rest)
     }
 
     /// Pauses (`false`) or resumes (`true`) RocksDB's background compaction of the pair
@@ -133,7 +194,7 @@ impl Store {
         }
     }
 
-    fn ingest_family<T: Sync>(&self, family: FamilyRows<'_, T>, segment_end: u64) -> Result<()> {
+    fn ingest_family<T: Sync>(&self, family: FamilyRows<'_, T>, segment_end: u64, rest: &[u8]) -> Result<()> {
         if family.rows.len() == 0 || self.segment_marker(family.family)? == Some(segment_end) {
             return Ok(());
         }
@@ -152,7 +213,10 @@ impl Store {
                 .zip(&paths)
                 .enumerate()
                 .map(|(i, (rows, path))| {
-                    let marker = (i == last).then_some(segment_end);
+                    let marker = (i == last).then_some(SegmentMarker {
+                        end: segment_end,
+                        rest,
+                    });
                     scope.spawn(move || write_table(family, rows, path, fresh, marker))
                 })
                 .collect();
@@ -210,7 +274,7 @@ fn write_table<T>(
     rows: Range<u32>,
     path: &Path,
     fresh: bool,
-    marker: Option<u64>,
+    marker: Option<SegmentMarker<'_>>,
 ) -> Result<()> {
     let opts = cf_options(family.family);
     let mut writer = SstFileWriter::create(&opts);
@@ -228,8 +292,8 @@ fn write_table<T>(
             writer.merge(key, &value)
         }
     })?;
-    if let Some(end) = marker {
-        writer.put(SEGMENT_MARKER_KEY, (end as i64).to_le_bytes())?;
+    if let Some(marker) = marker {
+        writer.put(SEGMENT_MARKER_KEY, marker.encode())?;
     }
     writer
         .finish()

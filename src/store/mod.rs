@@ -16,6 +16,8 @@
 //! Opening (`open`), ids (`ids`), writes (`commit`) and reads (`reads`) are split by
 //! responsibility; `codec` and `merge` hold the byte formats and merge operators.
 
+#[cfg(test)]
+mod carried_write_tests;
 pub mod codec;
 mod commit;
 pub mod errors;

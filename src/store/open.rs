@@ -140,6 +140,12 @@ impl Store {
             }
         };
         super::ingest::clear_leftovers(dir)?;
+        if let Some(end) = super::ingest::finish_carried_write(&db)? {
+            tracing::info!(
+                segment_end = end,
+                "finished a store write that a stopped process left after its table files"
+            );
+        }
         Store::finish_open(db, dir, fingerprint, Access::Primary)
     }
 
