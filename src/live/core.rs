@@ -1,15 +1,20 @@
 //! The service's state behind one lock: the store, the batch being collected, the batches
-//! applied in memory since the last store write, and the producer. Both the consumer loop
-//! and the rebalance callback write through [`Core::flush`], so changes reach the store the
-//! same way whoever ends them.
+//! applied in memory since the last store write, the running publication cycle, and the
+//! producer. Both the consumer loop and the rebalance callback write through
+//! [`Core::flush`], so changes reach the store the same way whoever ends them, and a write
+//! always waits for the running cycle first.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
+use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
 
 use super::batch::PendingBatch;
+use super::cycle::{
+    count_catalogue, destination, list_record, measure_store, note_delivery, CycleOutcome, CycleRun,
+};
 use super::latency::LatencyRecorder;
 use super::segment::AppliedSegment;
 use crate::config::Config;
@@ -19,18 +24,16 @@ use crate::engine::EngineSettings;
 use crate::event::UnixMillis;
 use crate::health::Health;
 use crate::kafka::message::InMessage;
-use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer, Sending};
+use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::metrics::Metrics;
 use crate::model::PublishedList;
-use crate::observe::{DeliveredList, Observation};
-use crate::publish::{Cycle, CycleReport, ListDrift};
-use crate::record::NeighborRecord;
+use crate::observe::Observation;
 use crate::retry::Backoff;
 use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
-use crate::store::mirror::{MirroredRows, RowMirror};
-use crate::store::{Delivery, MarkAfterWrite, PairWrite, PublicationWrite, Store};
+use crate::store::mirror::RowMirror;
+use crate::store::{PairWrite, Store};
 use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
@@ -97,36 +100,22 @@ impl RunCounters {
     }
 }
 
-/// A publication chunk whose changed lists are with the broker.
-struct ChunkInFlight {
-    /// The chunk's store writes, in plan order.
-    writes: Vec<PublicationWrite>,
-    /// Drift of each write's list from the one it replaces.
-    drifts: Vec<Option<ListDrift>>,
-    /// Which writes hold a changed list, in the order of `records`.
-    changed: Vec<usize>,
-    /// The records sent for them.
-    records: Vec<OutRecord>,
-}
-
-/// What a publication cycle's deliveries did so far.
-#[derive(Default)]
-struct CycleDeliveries {
-    /// Lists the broker acknowledged.
-    delivered: Vec<DeliveredList>,
-    /// Lists it did not, left dirty for the next cycle.
-    undelivered: u64,
-}
-
 /// The service state.
 pub struct Core {
-    store: Store,
+    /// Shared with a running publication cycle, which only reads and stores lists; a
+    /// store write waits for the cycle to end.
+    store: Arc<Store>,
     /// The micro-batch being collected.
     pending: PendingBatch,
     /// Batches applied in memory and not yet written.
     segment: Option<AppliedSegment>,
-    /// Rating rows kept in memory for publication cycles, equal to the store's.
+    /// Rating rows kept in memory for publication cycles, equal to the store's; lent to
+    /// the running cycle.
     mirror: RowMirror,
+    /// The publication cycle running beside consumption, if any.
+    cycle: Option<JoinHandle<CycleOutcome>>,
+    /// Why the last cycle stopped, until the service asks.
+    cycle_failure: Option<anyhow::Error>,
     counters: RunCounters,
     latency: LatencyRecorder,
     engine: EngineSettings,
@@ -152,10 +141,12 @@ impl Core {
         shutdown: Shutdown,
     ) -> Core {
         Core {
-            store,
+            store: Arc::new(store),
             pending: PendingBatch::default(),
             segment: None,
             mirror: RowMirror::within(config.live.memory_budget.0 as usize),
+            cycle: None,
+            cycle_failure: None,
             counters: RunCounters::default(),
             latency: LatencyRecorder::default(),
             engine: config.engine_settings(),
@@ -338,10 +329,14 @@ impl Core {
         let Some(segment) = self.segment.take() else {
             return Flushed::Nothing;
         };
+        // A write must not land while a cycle clears dirty marks, and the rows kept come
+        // back with the cycle.
+        self.finish_cycle();
         let started = Instant::now();
         let sealed = segment.pending.seal();
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
-        while let Err(e) = sealed.write(&mut self.store, PairWrite::RatingsIngested) {
+        let store = Arc::get_mut(&mut self.store).expect("no cycle holds the store once it has ended");
+        while let Err(e) = sealed.write(store, PairWrite::RatingsIngested) {
             let text = format!("store write failed: {e:#}");
             Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
             self.metrics.note_batch_stalled();
@@ -405,20 +400,8 @@ impl Core {
     /// Produces `records` and tells readiness, per topic, whether the broker took them.
     fn deliver(&self, records: &[OutRecord]) -> DeliveryReport {
         let report = self.producer.deliver(records, self.config.live.delivery_timeout);
-        self.note_delivery(records, &report);
+        note_delivery(&self.health, records, &report);
         report
-    }
-
-    /// Tells readiness, per topic of `records`, whether the broker took them.
-    fn note_delivery(&self, records: &[OutRecord], report: &DeliveryReport) {
-        let mut outcome: BTreeMap<&str, Option<&str>> =
-            records.iter().map(|r| (r.topic.as_str(), None)).collect();
-        for (i, reason) in &report.failed {
-            outcome.insert(records[*i].topic.as_str(), Some(reason.as_str()));
-        }
-        for (topic, failure) in outcome {
-            self.health.note_delivery(topic, failure);
-        }
     }
 
     /// Drops the collected batch; it is consumed again from the stored positions.
@@ -430,39 +413,16 @@ impl Core {
         self.pending = PendingBatch::default();
     }
 
-    /// Which output topics hold every stored list once they are all delivered.
-    fn destination(&self) -> String {
-        let k = &self.config.kafka;
-        format!("{} {} {}", k.brokers, k.output_topic, k.purchase_output_topic)
-    }
-
-    fn list_record(&self, signal: Signal, item: u32, list: &PublishedList) -> OutRecord {
-        let k = &self.config.kafka;
-        let topic = match signal {
-            Signal::Rating => &k.output_topic,
-            Signal::Purchase => &k.purchase_output_topic,
-        };
-        let value = (!list.neighbors.is_empty()).then(|| {
-            serde_json::to_vec(&NeighborRecord::from_stored(&self.store, signal, item, list))
-                .expect("a record serializes")
-        });
-        OutRecord {
-            topic: topic.clone(),
-            key: self.store.item_name(item).as_bytes().to_vec(),
-            value,
-            headers: Vec::new(),
-        }
-    }
-
     /// Whether the output topics are known to hold every stored list (false after a
     /// backfill or a change of topics or cluster).
     pub fn outputs_in_sync(&self) -> Result<bool> {
-        Ok(self.store.delivered_to()?.as_deref() == Some(self.destination().as_str()))
+        Ok(self.store.delivered_to()?.as_deref() == Some(destination(&self.config.kafka).as_str()))
     }
 
     /// Produces every stored list (tombstones for empty ones) and records the outputs as
     /// in sync. Returns false when some delivery failed; it is tried again later.
     pub fn republish_all(&mut self) -> Result<bool> {
+        self.finish_cycle();
         let stored: Vec<(Signal, u32, PublishedList)> = self.store.all_published().collect::<Result<_>>()?;
         tracing::info!(
             lists = stored.len(),
@@ -471,7 +431,9 @@ impl Core {
         for chunk in stored.chunks(REPUBLISH_CHUNK) {
             let records: Vec<OutRecord> = chunk
                 .iter()
-                .map(|(signal, item, list)| self.list_record(*signal, *item, list))
+                .map(|(signal, item, list)| {
+                    list_record(&self.store, &self.config.kafka, *signal, *item, list)
+                })
                 .collect();
             let report = self.deliver(&records);
             if !report.all_delivered() {
@@ -484,163 +446,75 @@ impl Core {
             }
             self.counters.lists_delivered += records.len() as u64;
         }
-        self.store.set_delivered_to(&self.destination())?;
+        self.store.set_delivered_to(&destination(&self.config.kafka))?;
         Ok(true)
     }
 
-    /// One publication cycle: rescore dirty items, deliver the lists that changed, and
-    /// store as published only what the broker acknowledged; the rest stays dirty.
-    pub fn publish(&mut self) -> Result<CycleReport> {
-        // Lent to the cycle, and back whatever it returns (rows kept stay valid).
-        let mut mirror = std::mem::take(&mut self.mirror);
-        let report = self.publish_with(&mut mirror);
-        self.mirror = mirror;
-        report
+    /// Starts a publication cycle beside consumption: rescore dirty items, deliver the
+    /// lists that changed, and store as published only what the broker acknowledged (the
+    /// rest stays dirty). A cycle still running is waited for first.
+    pub fn start_cycle(&mut self) {
+        self.finish_cycle();
+        let run = CycleRun {
+            store: self.store.clone(),
+            lists: self.lists,
+            kafka: self.config.kafka.clone(),
+            delivery_timeout: self.config.live.delivery_timeout,
+            producer: self.producer.clone(),
+            health: self.health.clone(),
+            metrics: self.metrics.clone(),
+            covered: std::mem::take(&mut self.unpublished_ms),
+        };
+        self.cycle = Some(run.spawn(std::mem::take(&mut self.mirror)));
     }
 
-    fn publish_with(&mut self, mirror: &mut RowMirror) -> Result<CycleReport> {
-        let started = Instant::now();
-        let covered = std::mem::take(&mut self.unpublished_ms);
-        let now = now_nanos();
-        let rows = MirroredRows::new(mirror, &self.store);
-        let mut cycle = Cycle::plan(&self.store, &rows, now)?;
-        let destination = self.destination();
-        let mut outcome = CycleDeliveries::default();
-        // The broker stores one chunk while the next is scored: a chunk is sent, the next
-        // computed, then the first one's answers are collected and its lists stored.
-        let producer = self.producer.clone();
-        let mut in_flight: Option<(ChunkInFlight, Sending<'_>)> = None;
-        loop {
-            let next = cycle.next_chunk(&self.store, &rows, &self.lists)?;
-            if let Some((chunk, sending)) = in_flight.take() {
-                let report = sending.settle();
-                if !self.settle_chunk(chunk, report, &destination, now, &mut outcome)? {
-                    // The broker is away: end the cycle; what was not stored keeps its
-                    // dirty marks (marks that expand to a whole row are cleared last).
-                    break;
+    /// Waits for the running cycle, if any, and takes back what it lent and did.
+    pub fn finish_cycle(&mut self) {
+        let Some(handle) = self.cycle.take() else {
+            return;
+        };
+        let Ok(outcome) = handle.join() else {
+            // The rows kept went with the thread; they are read again.
+            self.mirror = RowMirror::within(self.config.live.memory_budget.0 as usize);
+            self.cycle_failure = Some(anyhow::anyhow!("the publication cycle panicked"));
+            return;
+        };
+        self.mirror = outcome.mirror;
+        match outcome.result {
+            Ok(tally) => {
+                self.counters.cycles += 1;
+                self.counters.lists_delivered += tally.delivered;
+                self.counters.lists_undelivered += tally.undelivered;
+                if tally.undelivered == 0 {
+                    self.latency.record_all(&outcome.covered, outcome.ended);
+                } else {
+                    // Not every list reflecting these events went out; keep them for the
+                    // next cycle.
+                    self.unpublished_ms.extend(outcome.covered);
                 }
             }
-            let Some(rescored) = next else { break };
-            let (writes, drifts): (Vec<_>, Vec<_>) = rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
-            let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
-            if changed.is_empty() {
-                self.store
-                    .write_publications(&writes, Delivery::Delivered(&destination), now)?;
-                continue;
+            Err(e) => {
+                self.unpublished_ms.extend(outcome.covered);
+                self.cycle_failure = Some(e);
             }
-            let records: Vec<OutRecord> = changed
-                .iter()
-                .map(|&i| {
-                    let w = &writes[i];
-                    self.list_record(
-                        w.signal,
-                        w.item,
-                        w.list.as_ref().expect("changed lists hold a list"),
-                    )
-                })
-                .collect();
-            let sending = producer.send(&records, self.config.live.delivery_timeout);
-            let chunk = ChunkInFlight {
-                writes,
-                drifts,
-                changed,
-                records,
-            };
-            in_flight = Some((chunk, sending));
         }
-        let CycleDeliveries {
-            delivered,
-            undelivered,
-        } = outcome;
-        rows.finish();
-        self.counters.lists_delivered += delivered.len() as u64;
-        self.counters.cycles += 1;
-        self.counters.lists_undelivered += undelivered;
-        let report = cycle.report();
-        Observation::CycleCompleted {
-            report: &report,
-            delivered: &delivered,
-            undelivered,
-            seconds: started.elapsed().as_secs_f64(),
-        }
-        .emit(&self.metrics);
-        if undelivered == 0 {
-            self.latency.record_all(&covered, now_nanos().to_millis());
-            self.metrics.set_published_watermark(cycle.watermark());
-        } else {
-            // Not every list reflecting these events went out; keep them for the next cycle.
-            self.unpublished_ms = covered;
-        }
-        self.refresh_store_gauges();
-        Ok(report)
     }
 
-    /// Stores a delivered chunk's lists: those the broker acknowledged as published, the
-    /// others marked dirty again. False when the broker took none of them.
-    fn settle_chunk(
-        &self,
-        chunk: ChunkInFlight,
-        report: DeliveryReport,
-        destination: &str,
-        now: crate::event::UnixNanos,
-        outcome: &mut CycleDeliveries,
-    ) -> Result<bool> {
-        let ChunkInFlight {
-            mut writes,
-            drifts,
-            changed,
-            records,
-        } = chunk;
-        self.note_delivery(&records, &report);
-        let mut failed = vec![false; changed.len()];
-        for (k, _) in &report.failed {
-            failed[*k] = true;
-            writes[changed[*k]].mark = MarkAfterWrite::Renew;
+    /// The error that stopped the last cycle, once.
+    pub fn take_cycle_failure(&mut self) -> Result<()> {
+        match self.cycle_failure.take() {
+            Some(e) => Err(e),
+            None => Ok(()),
         }
-        for (k, &i) in changed.iter().enumerate().filter(|(k, _)| !failed[*k]) {
-            outcome.delivered.push(DeliveredList {
-                signal: writes[i].signal,
-                tombstone: records[k].value.is_none(),
-                drift: drifts[i],
-            });
-        }
-        if !report.all_delivered() {
-            Observation::DeliveryFailed {
-                what: "lists",
-                count: report.failed.len(),
-                first_reason: &report.failed[0].1,
-            }
-            .emit(&self.metrics);
-        }
-        outcome.undelivered += report.failed.len() as u64;
-        self.store
-            .write_publications(&writes, Delivery::Delivered(destination), now)?;
-        Ok(report.failed.len() < records.len())
     }
 
     /// Items and users, from memory.
     fn refresh_counts(&self) {
-        Observation::CatalogueCounted {
-            items: self.store.item_count() as u64,
-            users: u64::from(self.store.ledger().next_user),
-        }
-        .emit(&self.metrics);
+        count_catalogue(&self.store, &self.metrics);
     }
 
-    /// Brings the store-derived gauges up to date: pending changes (a scan of the dirty
-    /// marks), sizes and counts. At start-up and after each publication cycle.
+    /// Brings the store-derived gauges up to date ([`measure_store`]).
     fn refresh_store_gauges(&self) {
-        let m = &self.metrics;
-        match self.store.oldest_dirty_since() {
-            Ok(oldest) => m.set_oldest_dirty(oldest),
-            Err(e) => Observation::PendingChangesUnreadable {
-                error: &format!("{e:#}"),
-            }
-            .emit(m),
-        }
-        if let Ok(stats) = self.store.stats() {
-            Observation::StoreMeasured { stats: &stats }.emit(m);
-        }
-        self.refresh_counts();
+        measure_store(&self.store, &self.metrics);
     }
 }

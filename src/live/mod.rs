@@ -4,14 +4,16 @@
 //! count and age) and applies each in memory; before every publication cycle (every
 //! `publish.interval`), and sooner past `live.memory_budget`, it writes the applied batches
 //! with their next offsets (one write that a reopened store finishes if it was cut in
-//! two), then commits group offsets for external
-//! lag tools. Store writes, blocking deliveries and retry back-offs happen on
-//! this thread. A small tokio runtime serves HTTP, signals and the topic checks (the Kafka
+//! two), commits group offsets for external lag tools, and starts the publication cycle
+//! on a thread of its own (`cycle`) while it goes on consuming; the next write waits for
+//! that cycle. Store writes, dead-letter deliveries and retry back-offs happen on this
+//! thread. A small tokio runtime serves HTTP, signals and the topic checks (the Kafka
 //! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
 //! commits the batch in flight and publishes what is pending.
 
 pub mod batch;
 pub mod core;
+mod cycle;
 pub mod handover;
 pub mod latency;
 pub mod positions;
@@ -375,10 +377,11 @@ async fn begin_shutdown_on_signal(shutdown: Shutdown) {
     shutdown.begin();
 }
 
-/// When the next publication cycle starts: one interval after this one started, so lists
-/// are refreshed at the configured rate however long the write and the cycle took, but
-/// never sooner than a quarter interval after this one ended, so that consumption goes on
-/// when cycles take most of the interval.
+/// When the next publication starts: one interval after this one started, so lists are
+/// refreshed at the configured rate however long the write before the cycle took, but
+/// never sooner than a quarter interval after that write ended (the cycle itself runs
+/// beside consumption), so that consumption goes on when writes take most of the
+/// interval.
 fn next_cycle_start(started: Instant, ended: Instant, interval: Duration) -> Instant {
     (started + interval).max(ended + interval / 4)
 }
@@ -442,10 +445,12 @@ impl Service {
         let flushed = self.core().flush(None);
         self.commit_group_offsets(flushed);
         let mut c = self.core.lock().expect("core lock");
+        c.finish_cycle();
+        c.take_cycle_failure()?;
         if !self.in_sync {
             self.in_sync = c.republish_all()?;
         }
-        c.publish()?;
+        c.start_cycle();
         Ok(())
     }
 
@@ -468,7 +473,12 @@ impl Service {
         let flushed = self.core().flush(Some(Instant::now() + limit));
         self.commit_group_offsets(flushed);
         self.publish()?;
-        let report = self.core().report(self.started.elapsed().as_secs_f64());
+        let report = {
+            let mut c = self.core();
+            c.finish_cycle();
+            c.take_cycle_failure()?;
+            c.report(self.started.elapsed().as_secs_f64())
+        };
         let Service {
             runtime, consumer, ..
         } = self;
