@@ -10,6 +10,7 @@
 //!    service's exit summary gives the event-to-publication latency (record timestamp →
 //!    end of the publication cycle that covered the event), p50 and p99.
 //! 3. `simtide backfill` of the same events from a CSV file.
+//! 4. Saturation again on the first 300,000 ratings of the power-law set.
 //!
 //! Run with `cargo bench --bench live_throughput` (part of `make bench`).
 
@@ -294,4 +295,27 @@ fn main() {
         .unwrap_or(sustained / 2.0);
     paced(&events, rate);
     file_backfill();
+    powerlaw_saturation();
+}
+
+/// Ratings of the power-law set taken for its saturation run: enough for several
+/// publication intervals at the rates measured here.
+const POWERLAW_SLICE: usize = 300_000;
+
+/// Saturation on the first ratings of the 5-million-rating power-law set (written by
+/// scripts/gen_powerlaw.py through scripts/bench.sh, which `make bench` runs first), in
+/// the file's order: user by user, so heavy users arrive as bursts.
+fn powerlaw_saturation() {
+    let path = common::cache_dir().join("datasets/powerlaw-5m.csv");
+    assert!(
+        path.exists(),
+        "{} is missing: `make bench` writes it (scripts/bench.sh) before this benchmark",
+        path.display()
+    );
+    let events: Vec<(String, String, Option<i64>)> = csv_events(&path, POWERLAW_SLICE)
+        .into_iter()
+        .map(|(k, v, _)| (k, v, None))
+        .collect();
+    println!("power-law set, first {POWERLAW_SLICE} ratings in file order, default settings\n");
+    saturation(&events);
 }
