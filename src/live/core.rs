@@ -331,7 +331,7 @@ impl Core {
         };
         // A write must not land while a cycle clears dirty marks, and the rows kept come
         // back with the cycle.
-        self.finish_cycle();
+        self.join_cycle();
         let started = Instant::now();
         let sealed = segment.pending.seal();
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
@@ -422,7 +422,7 @@ impl Core {
     /// Produces every stored list (tombstones for empty ones) and records the outputs as
     /// in sync. Returns false when some delivery failed; it is tried again later.
     pub fn republish_all(&mut self) -> Result<bool> {
-        self.finish_cycle();
+        self.join_cycle();
         let stored: Vec<(Signal, u32, PublishedList)> = self.store.all_published().collect::<Result<_>>()?;
         tracing::info!(
             lists = stored.len(),
@@ -454,7 +454,7 @@ impl Core {
     /// lists that changed, and store as published only what the broker acknowledged (the
     /// rest stays dirty). A cycle still running is waited for first.
     pub fn start_cycle(&mut self) {
-        self.finish_cycle();
+        self.join_cycle();
         let run = CycleRun {
             store: self.store.clone(),
             lists: self.lists,
@@ -468,8 +468,19 @@ impl Core {
         self.cycle = Some(run.spawn(std::mem::take(&mut self.mirror)));
     }
 
-    /// Waits for the running cycle, if any, and takes back what it lent and did.
-    pub fn finish_cycle(&mut self) {
+    /// Waits for the running cycle, if any; Err when it (or one joined earlier, before a
+    /// store write) failed.
+    pub fn end_cycle(&mut self) -> Result<()> {
+        self.join_cycle();
+        match self.cycle_failure.take() {
+            Some(e) => Err(e),
+            None => Ok(()),
+        }
+    }
+
+    /// Waits for the running cycle, if any, and takes back what it lent and did; a
+    /// failure is kept for [`Core::end_cycle`].
+    fn join_cycle(&mut self) {
         let Some(handle) = self.cycle.take() else {
             return;
         };
@@ -497,14 +508,6 @@ impl Core {
                 self.unpublished_ms.extend(outcome.covered);
                 self.cycle_failure = Some(e);
             }
-        }
-    }
-
-    /// The error that stopped the last cycle, once.
-    pub fn take_cycle_failure(&mut self) -> Result<()> {
-        match self.cycle_failure.take() {
-            Some(e) => Err(e),
-            None => Ok(()),
         }
     }
 

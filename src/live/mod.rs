@@ -445,8 +445,7 @@ impl Service {
         let flushed = self.core().flush(None);
         self.commit_group_offsets(flushed);
         let mut c = self.core.lock().expect("core lock");
-        c.finish_cycle();
-        c.take_cycle_failure()?;
+        c.end_cycle()?;
         if !self.in_sync {
             self.in_sync = c.republish_all()?;
         }
@@ -475,8 +474,7 @@ impl Service {
         self.publish()?;
         let report = {
             let mut c = self.core();
-            c.finish_cycle();
-            c.take_cycle_failure()?;
+            c.end_cycle()?;
             c.report(self.started.elapsed().as_secs_f64())
         };
         let Service {
@@ -503,16 +501,17 @@ mod tests {
     use super::next_cycle_start;
 
     #[test]
-    fn cycles_start_one_interval_apart_unless_a_cycle_ran_long() {
+    fn publications_start_one_interval_apart_unless_a_write_ran_long() {
         let t0 = Instant::now();
         let interval = Duration::from_secs(5);
-        // A 2 s cycle: the next starts 5 s after this one started, 3 s after it ended.
+        // A 2 s write: the next publication starts 5 s after this one started, 3 s after
+        // the write ended.
         let next = next_cycle_start(t0, t0 + Duration::from_secs(2), interval);
         assert_eq!(next, t0 + interval);
-        // A 4.5 s cycle: consumption still gets a quarter interval before the next.
+        // A 4.5 s write: consumption still gets a quarter interval before the next.
         let ended = t0 + Duration::from_millis(4500);
         assert_eq!(next_cycle_start(t0, ended, interval), ended + interval / 4);
-        // A 9 s cycle: the same, not a cycle right after the other.
+        // A 9 s write: the same, not a publication right after the other.
         let ended = t0 + Duration::from_secs(9);
         assert_eq!(next_cycle_start(t0, ended, interval), ended + interval / 4);
     }
