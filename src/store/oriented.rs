@@ -30,8 +30,21 @@ impl<'a, T> OrientedRows<'a, T> {
     /// A counting sort by row, without comparisons: walking the deltas in (lo, hi) order
     /// reaches, for each row r, first the pairs (lo < r, r) with lo ascending and only
     /// then the pairs (r, hi ≥ r) with hi ascending, which is exactly row r's key order.
-    /// A diagonal pair (a, a) appears once.
-    pub(super) fn of(deltas: &'a [(u32, u32, T)], min_rows: usize) -> Self {
+    /// A diagonal pair (a, a) appears once. Large writes are counted and placed by one
+    /// thread per core, each over a consecutive share of the deltas (the index was a
+    /// single-threaded step of every large write, built twice in a fresh backfill).
+    pub(super) fn of(deltas: &'a [(u32, u32, T)], min_rows: usize) -> Self
+    where
+        T: Sync,
+    {
+        Self::indexed_in_chunks(deltas, min_rows, chunk_len(deltas.len()))
+    }
+
+    /// [`OrientedRows::of`] with the deltas shared among threads `chunk` at a time.
+    fn indexed_in_chunks(deltas: &'a [(u32, u32, T)], min_rows: usize, chunk: usize) -> Self
+    where
+        T: Sync,
+    {
         debug_assert!(deltas.windows(2).all(|w| (w[0].0, w[0].1) < (w[1].0, w[1].1)));
         let rows = deltas
             .iter()
@@ -39,27 +52,30 @@ impl<'a, T> OrientedRows<'a, T> {
             .max()
             .unwrap_or(0)
             .max(min_rows);
+        let chunks: Vec<&[(u32, u32, T)]> = deltas.chunks(chunk.max(1)).collect();
+        let counts: Vec<Vec<usize>> = std::thread::scope(|scope| {
+            let counters: Vec<_> = chunks
+                .iter()
+                .map(|chunk| scope.spawn(move || count_per_row(chunk, rows)))
+                .collect();
+            counters
+                .into_iter()
+                .map(|c| c.join().expect("row counting does not panic"))
+                .collect()
+        });
         let mut starts = vec![0usize; rows + 1];
-        for (lo, hi, _) in deltas {
-            starts[*lo as usize + 1] += 1;
-            if lo != hi {
-                starts[*hi as usize + 1] += 1;
-            }
-        }
         for r in 0..rows {
-            starts[r + 1] += starts[r];
+            starts[r + 1] = starts[r] + counts.iter().map(|c| c[r]).sum::<usize>();
         }
-        let mut fill = starts.clone();
         let mut entries = vec![(0u32, 0u32); starts[rows]];
-        for (index, (lo, hi, _)) in deltas.iter().enumerate() {
-            let (lo, hi, index) = (*lo as usize, *hi as usize, index as u32);
-            entries[fill[hi]] = (lo as u32, index);
-            fill[hi] += 1;
-            if lo != hi {
-                entries[fill[lo]] = (hi as u32, index);
-                fill[lo] += 1;
+        let mut slots = chunk_slots(&mut entries, &starts, &counts);
+        std::thread::scope(|scope| {
+            let mut first = 0u32;
+            for (chunk, rows_of_chunk) in chunks.iter().zip(slots.iter_mut()) {
+                scope.spawn(move || fill_rows(chunk, first, rows_of_chunk));
+                first += chunk.len() as u32;
             }
-        }
+        });
         OrientedRows {
             deltas,
             starts,
@@ -141,6 +157,68 @@ impl<'a, T> OrientedRows<'a, T> {
     }
 }
 
+/// Deltas per counting thread below which one thread indexes them all (spawning costs
+/// more than it saves on small writes).
+const DELTAS_PER_THREAD_MIN: usize = 1 << 18;
+
+/// How many deltas each indexing thread takes: one share per core for large writes.
+fn chunk_len(deltas: usize) -> usize {
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let threads = (deltas / DELTAS_PER_THREAD_MIN).clamp(1, cores);
+    deltas.div_ceil(threads)
+}
+
+/// Entries each row receives from `chunk` (a pair (lo, hi) lands in rows lo and hi).
+fn count_per_row<T>(chunk: &[(u32, u32, T)], rows: usize) -> Vec<usize> {
+    let mut counts = vec![0usize; rows];
+    for (lo, hi, _) in chunk {
+        counts[*lo as usize] += 1;
+        if lo != hi {
+            counts[*hi as usize] += 1;
+        }
+    }
+    counts
+}
+
+/// Cuts `entries` into, per chunk, one slot per row: row r's span holds first the entries
+/// of chunk 0, then of chunk 1, and so on. Because the deltas are sorted and the chunks
+/// consecutive, each chunk's entries of a row follow the earlier chunks' in key order.
+fn chunk_slots<'e>(
+    entries: &'e mut [(u32, u32)],
+    starts: &[usize],
+    counts: &[Vec<usize>],
+) -> Vec<Vec<&'e mut [(u32, u32)]>> {
+    let rows = starts.len() - 1;
+    let mut slots: Vec<Vec<&mut [(u32, u32)]>> = counts.iter().map(|_| Vec::with_capacity(rows)).collect();
+    let mut rest = entries;
+    for r in 0..rows {
+        for (chunk_slots, chunk_counts) in slots.iter_mut().zip(counts) {
+            let (slot, after) = std::mem::take(&mut rest).split_at_mut(chunk_counts[r]);
+            chunk_slots.push(slot);
+            rest = after;
+        }
+    }
+    slots
+}
+
+/// Writes (other, index of the delta) for every delta of `chunk`, whose first delta has
+/// index `first`, into its rows' slots, consuming each slot from the front.
+fn fill_rows<T>(chunk: &[(u32, u32, T)], first: u32, slots: &mut [&mut [(u32, u32)]]) {
+    let mut put = |row: u32, entry: (u32, u32)| {
+        let slot = std::mem::take(&mut slots[row as usize]);
+        let (head, tail) = slot.split_first_mut().expect("rows were counted");
+        *head = entry;
+        slots[row as usize] = tail;
+    };
+    for (at, (lo, hi, _)) in chunk.iter().enumerate() {
+        let index = first + at as u32;
+        put(*hi, (*lo, index));
+        if lo != hi {
+            put(*lo, (*hi, index));
+        }
+    }
+}
+
 /// Asks the processor to start loading `value` into the cache (a hint, no effect on
 /// results).
 fn prefetch<V>(value: &V) {
@@ -201,6 +279,40 @@ mod tests {
         assert_eq!(
             (rows.get(1, 1), rows.get(5, 3), rows.get(5, 4)),
             (Some(&2), Some(&6), None)
+        );
+    }
+
+    #[test]
+    fn any_sharing_among_threads_gives_the_same_index() {
+        let mut random = crate::test_random::TestRandom::seeded(11);
+        let mut keys: Vec<(u32, u32)> = (0..5_000)
+            .map(|_| {
+                let (a, b) = (random.below(300) as u32, random.below(300) as u32);
+                (a.min(b), a.max(b))
+            })
+            .collect();
+        keys.sort_unstable();
+        keys.dedup();
+        let deltas: Vec<(u32, u32, u64)> = keys
+            .iter()
+            .enumerate()
+            .map(|(i, &(a, b))| (a, b, i as u64))
+            .collect();
+        let whole = OrientedRows::indexed_in_chunks(&deltas, 310, deltas.len());
+        for chunk in [1, 2, 7, 1_000, deltas.len() / 2 + 1] {
+            let shared = OrientedRows::indexed_in_chunks(&deltas, 310, chunk);
+            assert_eq!(shared.starts, whole.starts, "chunk {chunk}");
+            assert_eq!(shared.entries, whole.entries, "chunk {chunk}");
+        }
+        let mut walked = Vec::new();
+        whole.each(|r, o, d| walked.push((r, o, *d)));
+        assert!(
+            walked.windows(2).all(|w| (w[0].0, w[0].1) < (w[1].0, w[1].1)),
+            "key order"
+        );
+        assert_eq!(
+            walked.len(),
+            2 * deltas.len() - deltas.iter().filter(|d| d.0 == d.1).count()
         );
     }
 }

@@ -4,7 +4,9 @@
 //! Instead the batch's items are renumbered densely, an inverted index lists where each
 //! item occurs, and each row `a` is accumulated in a dense array over its partners `b > a`
 //! (Gustavson's row-wise sparse product, which is how sparse matrix libraries form AᵀA).
-//! The output comes out sorted by (a, b), ready for the store.
+//! The output comes out sorted by (a, b), ready for the store. Rows are independent, so a
+//! large batch shares them among one thread per core in consecutive ranges of equal work
+//! (a fresh backfill of a heavy-user data set is one such batch, and was single-threaded).
 
 use super::contrib::ContributionSet;
 
@@ -35,7 +37,18 @@ struct Occurrence {
 
 /// Deltas of every pair the sets touch, as (lo, hi, delta) sorted by (lo, hi), zero deltas
 /// left out, and the number of pair contributions summed.
-pub fn aggregate_pairs<T: Copy, S: PairSum<T>>(sets: &[ContributionSet<T>]) -> (Vec<(u32, u32, S)>, u64) {
+pub fn aggregate_pairs<T: Copy + Sync, S: PairSum<T> + Send>(
+    sets: &[ContributionSet<T>],
+) -> (Vec<(u32, u32, S)>, u64) {
+    aggregate_pairs_sharing(sets, sharing_threads)
+}
+
+/// [`aggregate_pairs`] with the rows shared among `threads(work)` threads, `work` being
+/// the partner scans the batch needs.
+fn aggregate_pairs_sharing<T: Copy + Sync, S: PairSum<T> + Send>(
+    sets: &[ContributionSet<T>],
+    threads: fn(u64) -> usize,
+) -> (Vec<(u32, u32, S)>, u64) {
     let mut items: Vec<u32> = sets.iter().flat_map(|s| s.items.iter().copied()).collect();
     items.sort_unstable();
     items.dedup();
@@ -75,39 +88,131 @@ pub fn aggregate_pairs<T: Copy, S: PairSum<T>>(sets: &[ContributionSet<T>]) -> (
         set_start = set_end;
     }
 
-    let mut acc = vec![S::default(); items.len()];
-    let mut touched = vec![false; items.len()];
-    let mut row: Vec<u32> = Vec::new();
-    let mut out = Vec::new();
-    let mut updates = 0u64;
-    for a in 0..items.len() {
-        for occ in &occurrences[starts[a]..starts[a + 1]] {
-            let (at, end) = (occ.at as usize, occ.set_end as usize);
-            let this = &flat[at];
-            for b in &flat[at + 1..end] {
-                if this.changed || b.changed {
-                    let bl = b.local as usize;
-                    if !touched[bl] {
-                        touched[bl] = true;
-                        row.push(b.local);
-                    }
-                    acc[bl].add(occ.sign, &this.value, &b.value);
-                    updates += 1;
-                }
-            }
-        }
-        row.sort_unstable();
-        for &b in &row {
-            let b = b as usize;
-            if acc[b] != S::default() {
-                out.push((items[a], items[b], acc[b]));
-            }
-            acc[b] = S::default();
-            touched[b] = false;
-        }
-        row.clear();
+    let index = PartnerIndex {
+        items: &items,
+        starts: &starts,
+        occurrences: &occurrences,
+        flat: &flat,
+    };
+    let work = index.total_work();
+    let ranges = index.split_rows(work, threads(work));
+    let mut parts: Vec<SummedRows<S>> = if ranges.len() == 1 {
+        vec![index.sum_rows::<S>(ranges[0].clone())]
+    } else {
+        std::thread::scope(|scope| {
+            let index = &index;
+            let workers: Vec<_> = ranges
+                .into_iter()
+                .map(|rows| scope.spawn(move || index.sum_rows::<S>(rows)))
+                .collect();
+            workers
+                .into_iter()
+                .map(|w| w.join().expect("pair summing does not panic"))
+                .collect()
+        })
+    };
+    let (mut out, mut updates) = parts.remove(0);
+    out.reserve(parts.iter().map(|p| p.0.len()).sum());
+    for (more, n) in parts {
+        out.extend(more);
+        updates += n;
     }
     (out, updates)
+}
+
+/// Deltas of a range of rows, sorted by (lo, hi), and the pair contributions summed.
+type SummedRows<S> = (Vec<(u32, u32, S)>, u64);
+
+/// Pair contributions below which one thread sums a batch (spawning costs more than it
+/// saves on a live micro-batch).
+const UPDATES_PER_THREAD_MIN: u64 = 1 << 20;
+
+/// Threads to share rows of `work` partner scans among: one per core for large batches.
+fn sharing_threads(work: u64) -> usize {
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get()) as u64;
+    (work / UPDATES_PER_THREAD_MIN).clamp(1, cores) as usize
+}
+
+/// The flattened sets and where each item occurs in them: what summing a row reads.
+struct PartnerIndex<'a, T> {
+    items: &'a [u32],
+    starts: &'a [usize],
+    occurrences: &'a [Occurrence],
+    flat: &'a [FlatItem<T>],
+}
+
+impl<T: Copy> PartnerIndex<'_, T> {
+    /// Partners scanned for row `a` (an upper bound of its pair contributions).
+    fn row_work(&self, a: usize) -> u64 {
+        self.occurrences[self.starts[a]..self.starts[a + 1]]
+            .iter()
+            .map(|o| u64::from(o.set_end - o.at - 1))
+            .sum()
+    }
+
+    fn total_work(&self) -> u64 {
+        (0..self.items.len()).map(|a| self.row_work(a)).sum()
+    }
+
+    /// Consecutive row ranges of about equal work (of `total` in all), `parts` at most,
+    /// covering every row. Rows are independent and each range's output is sorted, so the
+    /// ranges' outputs joined in order are sorted too.
+    fn split_rows(&self, total: u64, parts: usize) -> Vec<std::ops::Range<usize>> {
+        let rows = self.items.len();
+        if parts <= 1 {
+            return std::iter::once(0..rows).collect();
+        }
+        let share = total.div_ceil(parts as u64).max(1);
+        let mut ranges = Vec::with_capacity(parts);
+        let (mut start, mut work) = (0usize, 0u64);
+        for a in 0..rows {
+            work += self.row_work(a);
+            if work >= share && ranges.len() + 1 < parts {
+                ranges.push(start..a + 1);
+                (start, work) = (a + 1, 0);
+            }
+        }
+        ranges.push(start..rows);
+        ranges
+    }
+
+    /// Sums rows `rows` (Gustavson: row `a` accumulated densely over its partners).
+    fn sum_rows<S: PairSum<T>>(&self, rows: std::ops::Range<usize>) -> SummedRows<S> {
+        let items = self.items;
+        let mut acc = vec![S::default(); items.len()];
+        let mut touched = vec![false; items.len()];
+        let mut row: Vec<u32> = Vec::new();
+        let mut out = Vec::new();
+        let mut updates = 0u64;
+        for a in rows {
+            for occ in &self.occurrences[self.starts[a]..self.starts[a + 1]] {
+                let (at, end) = (occ.at as usize, occ.set_end as usize);
+                let this = &self.flat[at];
+                for b in &self.flat[at + 1..end] {
+                    if this.changed || b.changed {
+                        let bl = b.local as usize;
+                        if !touched[bl] {
+                            touched[bl] = true;
+                            row.push(b.local);
+                        }
+                        acc[bl].add(occ.sign, &this.value, &b.value);
+                        updates += 1;
+                    }
+                }
+            }
+            row.sort_unstable();
+            for &b in &row {
+                let b = b as usize;
+                if acc[b] != S::default() {
+                    out.push((items[a], items[b], acc[b]));
+                }
+                acc[b] = S::default();
+                touched[b] = false;
+            }
+            row.clear();
+        }
+        (out, updates)
+    }
 }
 
 #[cfg(test)]
@@ -156,6 +261,41 @@ mod tests {
             }
             acc.retain(|_, v| *v != Products(0, 0));
             assert_eq!(acc, direct(&after), "all_changed = {all}");
+        }
+    }
+
+    #[test]
+    fn rows_shared_among_threads_sum_the_same() {
+        let mut sets = Vec::new();
+        let mut seed = 7u64;
+        let mut next = |n: u64| {
+            seed = seed
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (seed >> 33) % n
+        };
+        for _ in 0..40 {
+            let mut state: Vec<(u32, i64)> = (0..1 + next(30))
+                .map(|_| (next(200) as u32, next(9) as i64 - 4))
+                .collect();
+            state.sort_unstable();
+            state.dedup_by_key(|e| e.0);
+            let mut after = state.clone();
+            after.retain(|_| next(4) != 0);
+            after.push((200 + next(20) as u32, 3));
+            after.sort_unstable();
+            after.dedup_by_key(|e| e.0);
+            sets.extend(difference(&state, &after, next(2) == 0).unwrap());
+        }
+        let whole = aggregate_pairs_sharing::<i64, Products>(&sets, |_| 1);
+        assert!(whole.0.len() > 1_000, "enough pairs to split: {}", whole.0.len());
+        let sharings: [fn(u64) -> usize; 4] = [|_| 2, |_| 3, |_| 5, |_| 64];
+        for (k, threads) in sharings.into_iter().enumerate() {
+            assert_eq!(
+                aggregate_pairs_sharing::<i64, Products>(&sets, threads),
+                whole,
+                "sharing {k}"
+            );
         }
     }
 
