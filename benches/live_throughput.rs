@@ -4,7 +4,8 @@
 //! 1. Saturation: all events produced up front, then `simtide run --stop-at-end`; events
 //!    over the time from partition assignment to every event applied = sustained consumption rate
 //!    (and to exit, with the last write and publication), printed beside the reference: a
-//!    bare rdkafka consumer that only reads and discards the same topic on the same broker.
+//!    bare rdkafka consumer that only reads and discards the same topic on the same broker,
+//!    with the cores each side and the broker kept busy meanwhile.
 //! 2. Paced: events offered at a fixed rate (`SIMTIDE_BENCH_RATE`; by default half the
 //!    service's saturation rate) while the consumer lag is sampled every 500 ms; the
 //!    service's exit summary gives the event-to-publication latency (record timestamp →
@@ -102,9 +103,62 @@ fn watch_peak_rss(pid: u32) -> std::thread::JoinHandle<u64> {
     })
 }
 
+/// Processor seconds (user + system) that process `pid` has used so far; 0 once it is gone.
+/// Fields 14 and 15 of /proc/PID/stat, in clock ticks of 1/100 s (proc(5); the tick is
+/// 100 on Linux for every common architecture — from memory, `getconf CLK_TCK` prints it).
+fn cpu_seconds(pid: u32) -> f64 {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap_or_default();
+    // The command name (field 2) may hold spaces; the fields after it start past its ')'.
+    let fields: Vec<&str> = stat
+        .rsplit_once(')')
+        .map(|(_, rest)| rest.split_whitespace().collect())
+        .unwrap_or_default();
+    let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(0.0);
+    // Field 14 (utime) is the 12th after the name; field 15 (stime) the 13th.
+    (ticks(11) + ticks(12)) / 100.0
+}
+
+/// Processor seconds (user + system) of every child process reaped so far: around the
+/// reaping of one child, the difference is that child's whole run.
+fn reaped_children_cpu_seconds() -> f64 {
+    // SAFETY: getrusage only writes the zeroed struct it is given.
+    let usage = unsafe {
+        let mut usage: libc::rusage = std::mem::zeroed();
+        libc::getrusage(libc::RUSAGE_CHILDREN, &mut usage);
+        usage
+    };
+    let seconds = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 / 1e6;
+    seconds(usage.ru_utime) + seconds(usage.ru_stime)
+}
+
+/// Cores a set of processes kept busy over a span: processor seconds used over wall seconds.
+struct CoresBusy {
+    pids: Vec<u32>,
+    cpu_at_start: f64,
+    started: Instant,
+}
+
+impl CoresBusy {
+    fn start(pids: Vec<u32>) -> CoresBusy {
+        let cpu_at_start = pids.iter().map(|&p| cpu_seconds(p)).sum();
+        CoresBusy {
+            pids,
+            cpu_at_start,
+            started: Instant::now(),
+        }
+    }
+
+    fn now(&self) -> f64 {
+        let used: f64 = self.pids.iter().map(|&p| cpu_seconds(p)).sum::<f64>() - self.cpu_at_start;
+        used / self.started.elapsed().as_secs_f64()
+    }
+}
+
 /// Reads every record of the input topic from the start with a plain consumer that does
-/// nothing with them; returns records per second.
-fn bare_consumer_rate(brokers: &str, expected: usize) -> f64 {
+/// nothing with them; returns records per second and the cores that the consumer and the
+/// broker kept busy meanwhile (the machine's ceiling for anything that also reads them).
+fn bare_consumer_rate(broker: &common::broker::Broker, expected: usize) -> (f64, f64, f64) {
+    let brokers = broker.bootstrap();
     let consumer: BaseConsumer = ClientConfig::new()
         .set("bootstrap.servers", brokers)
         .set("group.id", "bench-bare-reader")
@@ -116,6 +170,8 @@ fn bare_consumer_rate(brokers: &str, expected: usize) -> f64 {
         tpl.add_partition_offset(INPUT, p, Offset::Beginning).unwrap();
     }
     consumer.assign(&tpl).unwrap();
+    let broker_busy = CoresBusy::start(broker.pid().into_iter().collect());
+    let reader_busy = CoresBusy::start(vec![std::process::id()]);
     let started = Instant::now();
     let mut seen = 0usize;
     while seen < expected {
@@ -128,7 +184,8 @@ fn bare_consumer_rate(brokers: &str, expected: usize) -> f64 {
             seen += 1;
         }
     }
-    expected as f64 / started.elapsed().as_secs_f64()
+    let rate = expected as f64 / started.elapsed().as_secs_f64();
+    (rate, reader_busy.now(), broker_busy.now())
 }
 
 /// Returns the service's sustained events per second: `simtide run --stop-at-end` over the
@@ -149,6 +206,8 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
     let started = Instant::now();
     let service = Service::start(&config, port, &["--stop-at-end"]);
     let peak_rss = watch_peak_rss(service.pid());
+    let service_busy = CoresBusy::start(vec![service.pid()]);
+    let broker_busy = CoresBusy::start(broker.pid().into_iter().collect());
     // Readiness as a whole also fails while the lag is high; these two checks are the
     // moments that matter: partitions assigned, and shutdown begun (every event applied).
     let readiness = || service.get("/readyz").map(|(_, body)| body).unwrap_or_default();
@@ -163,7 +222,10 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
         body.is_empty() || body.contains("shutting down")
     });
     let applied_s = started.elapsed().as_secs_f64() - ready;
+    let busy = (service_busy.now(), broker_busy.now());
+    let reaped_before = reaped_children_cpu_seconds();
     let (status, report) = service.wait_exit(Duration::from_secs(600));
+    let service_cpu = reaped_children_cpu_seconds() - reaped_before;
     assert!(status.success(), "simtide run --stop-at-end failed: {status}");
     let exit_s = started.elapsed().as_secs_f64() - ready;
     assert!(
@@ -171,7 +233,7 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
         "group offsets at the end"
     );
     let ours = events.len() as f64 / applied_s;
-    let reference = bare_consumer_rate(&broker.bootstrap(), events.len());
+    let (reference, reader_cores, reader_broker_cores) = bare_consumer_rate(&broker, events.len());
     println!(
         "saturation: produced {} in {produce_s:.1}s ({:.0}/s); partitions assigned {ready:.1}s after start, every event applied {applied_s:.1}s later, written and published {exit_s:.1}s after assignment",
         events.len(),
@@ -180,6 +242,22 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
     println!(
         "  events/s applied: ours {ours:.0}, reference (bare rdkafka consumer, same topic and broker) {reference:.0}, ratio {:.3}",
         ours / reference
+    );
+    println!(
+        "  cores busy while reading: ours {:.2} (simtide) + {:.2} (broker); reference {reader_cores:.2} (bare consumer) + {reader_broker_cores:.2} (broker)",
+        busy.0, busy.1
+    );
+    // The most this machine allows: the cores the broker leaves while serving at the
+    // reference rate, over what simtide spends per event (its whole run: applying,
+    // writing, publishing) at that rate.
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get()) as f64;
+    let per_event = service_cpu / events.len() as f64;
+    let ceiling = (cores - reader_broker_cores) / (per_event * reference);
+    println!(
+        "  processor time of simtide's whole run: {:.1} µs per event; at the reference rate that needs {:.2} cores where {:.2} are left beside the broker: ratio ceiling on this machine {ceiling:.2}",
+        per_event * 1e6,
+        per_event * reference,
+        cores - reader_broker_cores
     );
     let end_to_end = events.len() as f64 / exit_s;
     println!(

@@ -63,6 +63,11 @@ impl Broker {
         format!("127.0.0.1:{}", self.port)
     }
 
+    /// The broker's process id while it runs (for benchmarks that read its processor time).
+    pub fn pid(&self) -> Option<u32> {
+        self.child.as_ref().map(Child::id)
+    }
+
     /// The last `lines` lines the broker wrote since it last started, for failure messages.
     pub fn log_tail(&self, lines: usize) -> String {
         let text = std::fs::read_to_string(self.data.path().join("broker.log")).unwrap_or_default();
