@@ -183,8 +183,9 @@ fn default_tolerance_in_micro_batches_stays_within_its_bound() {
     );
     // The bound above is for single pairs; the mean is far smaller because ε_u takes both
     // signs across users. The floors below are regression guards, not derived bounds, set
-    // at about twice the measured mean error and ten times the measured loss of overlap
-    // (measured values in the eprintln above and in the README).
-    assert!(mean_err < 0.01, "mean |error| {mean_err}");
-    assert!(overlap > 0.9, "mean top-50 overlap {overlap}");
+    // at about twice the measured mean error (0.0122) and three times the measured loss of
+    // overlap (1 − 0.9839) under the per-event re-centering rule (docs/design.md,
+    // "Re-centering", which also gives the figures of the earlier once-per-batch rule).
+    assert!(mean_err < 0.025, "mean |error| {mean_err}");
+    assert!(overlap > 0.95, "mean top-50 overlap {overlap}");
 }

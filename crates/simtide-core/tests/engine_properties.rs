@@ -203,6 +203,85 @@ impl MemoryState {
     }
 }
 
+/// Applies `events` to a fresh in-memory state in batches of `sizes` (repeated), calling
+/// `after_batch` with the state and the end of each batch.
+fn apply_in_batches(
+    events: &[Event],
+    sizes: &[usize],
+    settings: &EngineSettings,
+    mut after_batch: impl FnMut(&MemoryState, usize) -> Result<(), TestCaseError>,
+) -> Result<MemoryState, TestCaseError> {
+    let mut state = MemoryState::default();
+    let mut start = 0;
+    let mut sizes = sizes.iter().cycle();
+    while start < events.len() {
+        let end = (start + sizes.next().unwrap()).min(events.len());
+        state.apply(settings, &events[start..end]);
+        start = end;
+        after_batch(&state, end)?;
+    }
+    Ok(state)
+}
+
+/// The re-centering rule run on the model (docs/design.md, "Re-centering"): after each of
+/// a user's events, the center moves to the mean of the active ratings when the two are
+/// more than `tolerance` apart; an applied erasure resets it to 0. Ratings here are
+/// halves, so every sum of them is exact and the means do not depend on summing order.
+fn model_centers(events: &[Event], tolerance: f64, cut: usize) -> BTreeMap<String, f64> {
+    let mut centers: BTreeMap<String, f64> = BTreeMap::new();
+    for k in 1..=events.len() {
+        let event = &events[k - 1];
+        let name = event.user().unwrap().to_string();
+        let center = centers.entry(name.clone()).or_insert(0.0);
+        if matches!(event.body, EventBody::EraseUser { .. }) {
+            let erased_before = model(&events[..k - 1]).get(&name).and_then(|u| u.erased_at);
+            if erased_before.is_none_or(|t| event.at.0 > t) {
+                *center = 0.0;
+            }
+        }
+        let active = active_ratings(&model(&events[..k])[&name], cut);
+        if !active.is_empty() {
+            let mean = active.iter().map(|(_, v)| v).sum::<f64>() / active.len() as f64;
+            if (mean - *center).abs() > tolerance {
+                *center = mean;
+            }
+        }
+    }
+    centers
+}
+
+/// What a batching must not change: every nonzero pair sum (exact integers), every
+/// co-buyer count, the buyers and every user's center, bit for bit.
+type ExactResult = (
+    BTreeMap<(u32, u32), (i64, i128, i128, i128)>,
+    BTreeMap<(u32, u32), i64>,
+    i64,
+    BTreeMap<u32, u64>,
+);
+
+fn exact_result(state: &MemoryState) -> ExactResult {
+    (
+        state
+            .rating_pairs
+            .iter()
+            .filter(|(_, s)| **s != (0, 0, 0, 0))
+            .map(|(k, v)| (*k, *v))
+            .collect(),
+        state
+            .co_buyers
+            .iter()
+            .filter(|(_, c)| **c != 0)
+            .map(|(k, v)| (*k, *v))
+            .collect(),
+        state.buyers,
+        state
+            .states
+            .iter()
+            .map(|(u, s)| (*u, s.center.to_bits()))
+            .collect(),
+    )
+}
+
 fn run_case(
     events: Vec<Event>,
     batch_sizes: Vec<usize>,
@@ -213,13 +292,7 @@ fn run_case(
         recenter_tolerance: tolerance,
         max_items_per_user: cut,
     };
-    let mut state = MemoryState::default();
-    let mut start = 0;
-    let mut sizes = batch_sizes.into_iter().cycle();
-    while start < events.len() {
-        let end = (start + sizes.next().unwrap()).min(events.len());
-        state.apply(&settings, &events[start..end]);
-        start = end;
+    let state = apply_in_batches(&events, &batch_sizes, &settings, |state, end| {
         // After every batch: |mean − center| ≤ tolerance for every user.
         for (name, u) in model(&events[..end]) {
             let active = active_ratings(&u, cut);
@@ -233,6 +306,16 @@ fn run_case(
                 "user {name}: mean {mean}, center {center}"
             );
         }
+        Ok(())
+    })?;
+    // The centers are the per-event rule's, exactly.
+    for (name, center) in model_centers(&events, tolerance, cut) {
+        prop_assert_eq!(
+            state.center(&name).to_bits(),
+            center.to_bits(),
+            "center of {}",
+            name
+        );
     }
 
     // Recompute every pair directly from the model's final active sets, centered at the
@@ -316,5 +399,24 @@ proptest! {
         cut in 2usize..4,
     ) {
         run_case(events, sizes, tolerance, cut)?;
+    }
+
+    /// The sums depend only on the events consumed: one batch, and batches of any sizes,
+    /// hold the same integers and centers at every tolerance.
+    #[test]
+    fn batching_never_changes_the_sums(
+        events in prop::collection::vec(event_strategy(), 1..80),
+        sizes in prop::collection::vec(1usize..12, 1..6),
+        other_sizes in prop::collection::vec(1usize..30, 1..4),
+        tolerance in prop_oneof![Just(0.05), Just(0.3)],
+        cut in 0usize..4,
+    ) {
+        let settings = EngineSettings { recenter_tolerance: tolerance, max_items_per_user: cut };
+        let whole = apply_in_batches(&events, &[events.len()], &settings, |_, _| Ok(()))?;
+        let expected = exact_result(&whole);
+        for sizes in [&sizes, &other_sizes] {
+            let split = apply_in_batches(&events, sizes, &settings, |_, _| Ok(()))?;
+            prop_assert_eq!(exact_result(&split), expected.clone(), "batches {:?}", sizes);
+        }
     }
 }

@@ -20,12 +20,12 @@ use crate::model::DirtyScope;
 use aggregate::{aggregate_pairs, PairSum};
 use contrib::{difference, ContributionSet};
 use tally::EventTally;
-use user_state::{mean_rating, Outcome, UserState};
+use user_state::{Outcome, UserState};
 
 /// The settings that shape the statistics (part of the store's fingerprint).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct EngineSettings {
-    /// Largest |mean − applied center| left after a batch; 0 re-centers on every change.
+    /// Largest |mean − applied center| left after each event; 0 re-centers on every change.
     pub recenter_tolerance: f64,
     /// Items per user taking part in pairs, most recent first; 0 means no cut.
     pub max_items_per_user: usize,
@@ -152,7 +152,7 @@ pub struct BatchEffects {
     pub statuses: Vec<(u32, ItemStatus)>,
     /// Users whose state changed, to store.
     pub touched_users: Vec<u32>,
-    /// Users whose center was moved.
+    /// Users whose applied center differs after the batch (one shift of their pairs each).
     pub recenterings: u64,
     /// Pair contributions added or retracted.
     pub pair_updates: u64,
@@ -245,13 +245,17 @@ pub fn apply_batch(
                 before
                     .entry(user)
                     .or_insert_with(|| (contribution(state, settings), state.center));
-                match action {
+                let outcome = match action {
                     Action::Rate { item, value, .. } => state.rate(item, value, ev.at, ev.seq),
                     Action::Unrate { item, .. } => state.unrate(item, ev.at, ev.seq),
                     Action::Purchase { item, .. } => state.purchase(item, ev.at, ev.seq),
                     Action::Erase { .. } => state.erase(ev.at),
                     Action::ItemStatus { .. } => unreachable!("handled above"),
+                };
+                if outcome == Outcome::Applied {
+                    state.follow_mean(settings.recenter_tolerance, settings.max_items_per_user);
                 }
+                outcome
             }
         };
         fx.outcomes.add(ev.action.kind(), outcome, 1);
@@ -263,7 +267,7 @@ pub fn apply_batch(
     touched.sort_unstable();
     let mut sets = BatchSets::default();
     for user in &touched {
-        let state = users.get_mut(user).expect("touched users were inserted");
+        let state = users.get(user).expect("touched users were inserted");
         let (old, old_center) = before.remove(user).expect("before view recorded");
         settle_user(settings, state, old, old_center, &mut sets, &mut fx);
     }
@@ -289,22 +293,19 @@ pub fn apply_batch(
     fx
 }
 
-/// Re-centers the user if its mean left the tolerance, then records the difference of its
-/// contributions for the batch's aggregation.
+/// Records the difference of the user's contributions before and after the batch for
+/// the batch's aggregation. The center was kept by the per-event rule while the events
+/// were applied; only its final value reaches the pairs, so a user's pairs shift at most
+/// once per batch whatever the number of its events.
 fn settle_user(
     settings: &EngineSettings,
-    state: &mut UserState,
+    state: &UserState,
     old: Contribution,
     old_center: f64,
     sets: &mut BatchSets,
     fx: &mut BatchEffects,
 ) {
-    let active = state.active_ratings(settings.max_items_per_user);
-    if let Some(mean) = mean_rating(&active) {
-        if (mean - state.center).abs() > settings.recenter_tolerance {
-            state.center = mean;
-            fx.recenterings += 1;
-        }
+    if let Some(mean) = state.active_mean(settings.max_items_per_user) {
         let gap = (mean - state.center).abs();
         fx.max_center_gap = fx.max_center_gap.max(gap);
         fx.center_gaps.push(gap);
@@ -312,6 +313,7 @@ fn settle_user(
     let new = contribution(state, settings);
     // Bitwise comparison: any change of center changes every deviation.
     let center_moved = state.center.to_bits() != old_center.to_bits();
+    fx.recenterings += u64::from(center_moved);
     if let Some(sides) = difference(&old.ratings, &new.ratings, center_moved) {
         if sides.iter().any(|s| s.pair_count() > 0) {
             for item in sides.iter().flat_map(|s| &s.items) {

@@ -183,6 +183,33 @@ impl UserState {
         Outcome::Applied
     }
 
+    /// The mean of the ratings that take part in pairs (see [`UserState::active_ratings`]),
+    /// `None` for none. Equal, bit for bit, to `mean_rating(&self.active_ratings(limit))`,
+    /// without building the list when every rating takes part (checked after each event).
+    pub fn active_mean(&self, limit: usize) -> Option<f64> {
+        let values = self.ratings.iter().filter_map(|e| e.value);
+        let count = values.clone().count();
+        if count == 0 {
+            return None;
+        }
+        if limit > 0 && count > limit {
+            return mean_rating(&self.active_ratings(limit));
+        }
+        Some(values.sum::<f64>() / count as f64)
+    }
+
+    /// The per-event re-centering rule (docs/design.md, "Re-centering"): moves the applied
+    /// center to the mean of the active ratings when they are more than `tolerance` apart.
+    /// Run after each of the user's events in their order, it makes the center depend only
+    /// on the events consumed, never on where micro-batches begin and end.
+    pub fn follow_mean(&mut self, tolerance: f64, limit: usize) {
+        if let Some(mean) = self.active_mean(limit) {
+            if (mean - self.center).abs() > tolerance {
+                self.center = mean;
+            }
+        }
+    }
+
     /// The ratings that take part in pairs: the `limit` most recent non-withdrawn ones
     /// (0 = all), sorted by item, as (item, rating).
     pub fn active_ratings(&self, limit: usize) -> Vec<(u32, f64)> {
@@ -204,7 +231,7 @@ impl UserState {
 }
 
 /// Mean of the given ratings, `None` for none.
-pub fn mean_rating(active: &[(u32, f64)]) -> Option<f64> {
+fn mean_rating(active: &[(u32, f64)]) -> Option<f64> {
     if active.is_empty() {
         return None;
     }
@@ -214,6 +241,24 @@ pub fn mean_rating(active: &[(u32, f64)]) -> Option<f64> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_quick_mean_equals_the_mean_of_the_active_list() {
+        let mut state = UserState::default();
+        for (i, value) in [3.5, 4.0, 0.5, 5.0, 2.5, 1.0, 4.5].into_iter().enumerate() {
+            state.rate(7 - i as u32, value, UnixNanos(i as i64), i as u64);
+        }
+        state.unrate(5, UnixNanos(20), 20);
+        for limit in [0, 2, 5, 6, 7, 100] {
+            let slow = mean_rating(&state.active_ratings(limit));
+            assert_eq!(
+                state.active_mean(limit).map(f64::to_bits),
+                slow.map(f64::to_bits),
+                "limit {limit}"
+            );
+        }
+        assert_eq!(UserState::default().active_mean(0), None);
+    }
 
     #[test]
     fn last_write_wins_by_time_then_position() {
