@@ -5,6 +5,7 @@ use std::fmt::Write as _;
 
 use anyhow::{bail, Result};
 
+use crate::cluster::owner;
 use crate::config::PurchaseScore;
 use crate::score::{
     damp, purchase_list_score, purchase_raw_score, rating_list_score, ListSettings, RatingSums,
@@ -20,8 +21,28 @@ fn item_or_fail(store: &Store, name: &str) -> Result<u32> {
     }
 }
 
+/// Refuses, naming the owner, when none of `names` belongs to the store's shard: their
+/// lists and sums are kept by another shard (docs/design.md, "Shards").
+fn owned_here_or_fail(store: &Store, names: &[&str]) -> Result<()> {
+    let shard = store.shard();
+    if !shard.is_sharded() || names.iter().any(|n| shard.owns(n)) {
+        return Ok(());
+    }
+    let owners: Vec<String> = names
+        .iter()
+        .map(|n| format!("{n:?} belongs to shard {}", owner(n, shard.shards)))
+        .collect();
+    bail!(
+        "{}; store {} holds {}: ask that shard's store",
+        owners.join(", "),
+        store.dir().display(),
+        shard
+    )
+}
+
 /// A table of the item's published lists, one per signal (or only `only`).
 pub fn neighbors_table(store: &Store, item_name: &str, only: Option<Signal>) -> Result<String> {
+    owned_here_or_fail(store, &[item_name])?;
     let item = item_or_fail(store, item_name)?;
     let mut out = String::new();
     for signal in Signal::ALL.into_iter().filter(|s| only.is_none_or(|o| o == *s)) {
@@ -89,6 +110,7 @@ fn published_rank(store: &Store, signal: Signal, a: u32, b: u32) -> Result<Strin
 /// The pair's sums and the arithmetic from them to the published score. Long by design:
 /// the explanation is written in the order a reader checks it.
 pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSettings) -> Result<String> {
+    owned_here_or_fail(store, &[a_name, b_name])?;
     let a = item_or_fail(store, a_name)?;
     let b = item_or_fail(store, b_name)?;
     let fp = store.fingerprint();
@@ -105,7 +127,7 @@ pub fn explain_pair(store: &Store, a_name: &str, b_name: &str, settings: &ListSe
             writeln!(out, "  Σ d_b² (co-raters)   sb  = {:.6}", s.norm_b)?;
             writeln!(
                 out,
-                "  d = rating − the user's applied center c_u; |mean − c_u| ≤ {} after every batch{}",
+                "  d = rating − the user's applied center c_u; |mean − c_u| ≤ {} after every event{}",
                 fp.recenter_tolerance,
                 if fp.recenter_tolerance == 0.0 {
                     " (exact)"

@@ -9,6 +9,7 @@
 
 pub use simtide_core::{decode, drift, engine, event, model, predict, score, signal, timefmt, topk};
 
+pub mod cluster;
 pub mod config;
 pub mod demo;
 mod diskspace;

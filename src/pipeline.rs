@@ -9,6 +9,7 @@ use std::collections::{BTreeMap, HashMap};
 
 use anyhow::Result;
 
+use crate::cluster::ShardSpec;
 use crate::decode::RejectReason;
 use crate::engine::segment::SegmentEffects;
 use crate::engine::tally::EventTally;
@@ -157,6 +158,9 @@ pub struct Pending {
     effects: SegmentEffects,
     ledger: Ledger,
     state_bytes: usize,
+    /// The store's shard, and per item id whether it owns the item (filled as ids appear).
+    shard: ShardSpec,
+    owned: Vec<bool>,
 }
 
 impl Pending {
@@ -171,6 +175,22 @@ impl Pending {
             effects: SegmentEffects::default(),
             ledger,
             state_bytes: 0,
+            shard: store.shard(),
+            owned: Vec::new(),
+        }
+    }
+
+    /// Extends [`Pending::owned`] to every item id assigned so far.
+    fn note_owners(&mut self, store: &Store) {
+        let stored = store.item_count() as u32;
+        let first_new = self.items.added.first().map_or(self.items.next, |(id, _)| *id);
+        for id in self.owned.len() as u32..self.items.next {
+            let name = if id < stored {
+                store.item_name(id)
+            } else {
+                &self.items.added[(id - first_new) as usize].1
+            };
+            self.owned.push(self.shard.owns(name));
         }
     }
 
@@ -232,7 +252,12 @@ impl Pending {
         self.state_bytes += loaded.values().map(UserState::approx_bytes).sum::<usize>();
         self.states.extend(loaded);
         self.statuses.extend(store.load_statuses(&status_items)?);
-        let effects = apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses);
+        let mut effects = apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses);
+        if self.shard.is_sharded() {
+            self.note_owners(store);
+            let owned = &self.owned;
+            effects.keep_shard(|item| owned[item as usize]);
+        }
         // Each event adds at most one entry to a history (plus its share of a new user).
         self.state_bytes += sequenced.len() * PENDING_EVENT_STATE_BYTES;
 

@@ -99,7 +99,8 @@ fn targets(store: &Store, rows: &dyn PairRows, signal: Signal) -> Result<Vec<(u3
             Signal::Rating => rows.rating_row(*item)?.into_iter().map(|(o, _)| o).collect(),
             Signal::Purchase => rows.purchase_row(*item)?.into_iter().map(|(o, _)| o).collect(),
         };
-        for m in members {
+        // In a shard, a row may list another shard's items: their lists are not ours.
+        for m in members.into_iter().filter(|&m| store.owns(m)) {
             plain.entry(m).or_insert(MarkAfterWrite::Keep);
         }
     }
@@ -119,6 +120,9 @@ fn compute_in_parallel(
     excluded: &Exclusions,
     names: &NameOrder,
 ) -> Result<Vec<ScoredRow>> {
+    if chunk.is_empty() {
+        return Ok(Vec::new());
+    }
     let workers = std::thread::available_parallelism()
         .map_or(1, |n| n.get())
         .min(chunk.len())
@@ -224,9 +228,32 @@ impl Cycle {
         let excluded = Exclusions {
             unavailable: &self.unavailable,
         };
-        let lists = compute_in_parallel(rows, chunk, settings, &excluded, &self.names)?;
+        // A shard holds "with neighbors" marks of other shards' items so that their rows
+        // reach its own lists; those items' own lists are not scored here, their marks
+        // only cleared (after the rows they expanded to, which come first).
+        let owned: Vec<bool> = chunk.iter().map(|&(_, item, _)| store.owns(item)).collect();
+        let to_score: Vec<(Signal, u32, MarkAfterWrite)> = chunk
+            .iter()
+            .zip(&owned)
+            .filter(|(_, own)| **own)
+            .map(|(c, _)| *c)
+            .collect();
+        let mut lists = compute_in_parallel(rows, &to_score, settings, &excluded, &self.names)?.into_iter();
         let mut writes: Vec<Rescored> = Vec::with_capacity(chunk.len());
-        for (&(signal, item, mark), scored) in chunk.iter().zip(lists) {
+        for (&(signal, item, mark), own) in chunk.iter().zip(owned) {
+            if !own {
+                writes.push(Rescored {
+                    write: PublicationWrite {
+                        signal,
+                        item,
+                        list: None,
+                        mark,
+                    },
+                    drift: None,
+                });
+                continue;
+            }
+            let scored = lists.next().expect("one list per owned item");
             self.report.rating_pairs_seen += scored.row_len as u64;
             let neighbors = scored.neighbors;
             let previous = store.published(signal, item)?;

@@ -87,12 +87,37 @@ fn bad_values_are_refused_by_key() {
             "live.memory_budget must be at least 1MiB",
         ),
         ("[backfill]\nmemory_budget = \"0B\"\n", "backfill.memory_budget"),
+        (
+            "[cluster]\nshards = 3\nshard = 3\n",
+            "cluster.shard is 3, but cluster.shards is 3",
+        ),
+        ("[cluster]\nshards = 0\n", "cluster.shards must be at least 1"),
     ] {
         let file = dir.path().join("c.toml");
         std::fs::write(&file, text).unwrap();
         let (ok, _, err) = simtide(&["check-config", file.to_str().unwrap()], &[]);
         assert!(!ok && err.contains(key), "{text:?} → {err}");
     }
+}
+
+#[test]
+fn the_live_service_says_it_does_not_run_sharded_yet() {
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("c.toml");
+    std::fs::write(&file, "[cluster]\nshards = 3\nshard = 1\n").unwrap();
+    let store = dir.path().join("store");
+    let (ok, _, err) = simtide(
+        &[
+            "run",
+            "--config",
+            file.to_str().unwrap(),
+            "--store",
+            store.to_str().unwrap(),
+        ],
+        &[],
+    );
+    assert!(!ok && err.contains("cluster.shards is 3"), "{err}");
+    assert!(!store.exists(), "nothing was created");
 }
 
 #[test]

@@ -6,6 +6,7 @@ use std::io::Write;
 use anyhow::{Context, Result};
 
 use super::args::EvaluateArgs;
+use simtide::config::cluster::ClusterConfig;
 use simtide::config::Config;
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
 use simtide::report::write_report;
@@ -33,7 +34,9 @@ fn split_of(args: &EvaluateArgs) -> Result<Split> {
 }
 
 /// Runs the evaluation, writes the report and prints one line per setting.
-pub fn run(args: EvaluateArgs, config: Config, out: &mut dyn Write) -> Result<()> {
+pub fn run(args: EvaluateArgs, mut config: Config, out: &mut dyn Write) -> Result<()> {
+    // Settings are judged on the whole catalogue: the training stores are never shards.
+    config.cluster = ClusterConfig::default();
     let request = EvaluationRequest {
         split: split_of(&args)?,
         inputs: args.input,

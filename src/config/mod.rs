@@ -5,6 +5,7 @@
 //! `SIMTIDE_SIMILARITY__NEIGHBORS=20`. Unknown keys are refused by name, so a typo never
 //! silently falls back to a default.
 
+pub mod cluster;
 pub mod duration_text;
 mod renamed;
 pub mod secrets;
@@ -56,6 +57,8 @@ pub struct Config {
     pub readiness: ReadinessConfig,
     /// Log line format.
     pub log: LogConfig,
+    /// Which item shard this instance is.
+    pub cluster: cluster::ClusterConfig,
 }
 
 /// `[similarity]`: the maths (docs/design.md, "Adjusted cosine over co-raters") and the shape of
@@ -264,11 +267,12 @@ impl Config {
         renamed::refuse_old_names(&table, origin)?;
         // The path of the offending key goes into the message: toml's own error loses it
         // once environment overrides have been merged into the table.
-        let config: Config = serde_path_to_error::deserialize(toml::Value::Table(table)).map_err(
+        let mut config: Config = serde_path_to_error::deserialize(toml::Value::Table(table)).map_err(
             |e: serde_path_to_error::Error<toml::de::Error>| {
                 anyhow::anyhow!("{origin}: {}: {}", e.path(), e.inner().message())
             },
         )?;
+        config.cluster.resolve(crate::cluster::host_name().as_deref())?;
         config.validate()?;
         Ok(config)
     }

@@ -3,6 +3,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::cluster::ShardSpec;
 use crate::config::Config;
 
 /// The settings that shape stored statistics. A store remembers them; reopening it with
@@ -17,6 +18,16 @@ pub struct StatsFingerprint {
     pub recenter_tolerance: f64,
     /// similarity.max_items_per_user
     pub max_items_per_user: usize,
+    /// cluster.shards (stores written before shards existed hold every item: 1)
+    #[serde(default = "one_shard")]
+    pub shards: u32,
+    /// cluster.shard
+    #[serde(default)]
+    pub shard: u32,
+}
+
+fn one_shard() -> u32 {
+    1
 }
 
 impl StatsFingerprint {
@@ -28,11 +39,33 @@ impl StatsFingerprint {
             rating_max: s.rating_max,
             recenter_tolerance: s.recenter_tolerance,
             max_items_per_user: s.max_items_per_user,
+            shards: config.cluster.spec().shards,
+            shard: config.cluster.spec().shard,
+        }
+    }
+
+    /// The shard whose items the store holds.
+    pub fn shard_spec(&self) -> ShardSpec {
+        ShardSpec {
+            shards: self.shards,
+            shard: self.shard,
         }
     }
 
     /// One sentence per setting that differs between the stored and the asked-for values.
     pub fn differences(&self, asked: &StatsFingerprint) -> Vec<String> {
+        let mut found = self.similarity_differences(asked);
+        if self.shard_spec() != asked.shard_spec() {
+            found.push(format!(
+                "cluster: the store holds the items of {}, the configuration says {}",
+                self.shard_spec(),
+                asked.shard_spec()
+            ));
+        }
+        found
+    }
+
+    fn similarity_differences(&self, asked: &StatsFingerprint) -> Vec<String> {
         [
             (
                 "rating_min",

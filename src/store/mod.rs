@@ -121,6 +121,17 @@ impl Store {
         &self.fingerprint
     }
 
+    /// The item shard whose pairs and lists the store holds (docs/design.md, "Shards").
+    pub fn shard(&self) -> crate::cluster::ShardSpec {
+        self.fingerprint.shard_spec()
+    }
+
+    /// Whether the store's shard owns `item` (always, unsharded).
+    pub fn owns(&self, item: u32) -> bool {
+        let shard = self.shard();
+        !shard.is_sharded() || shard.owns(self.item_name(item))
+    }
+
     /// The ledger as of the last committed batch.
     pub fn ledger(&self) -> &Ledger {
         &self.ledger

@@ -195,6 +195,23 @@ impl PairSum<()> for CoBuyers {
     }
 }
 
+impl BatchEffects {
+    /// Keeps what one item shard stores (docs/design.md, "Shards"), `owns` saying which
+    /// items are its own: every pair with at least one of its items (written under both
+    /// orders, so the row of another shard's item lists that item's partners here, which
+    /// is how a change of that item's availability or buyers finds the lists it moves),
+    /// every diagonal entry (an item's buyers, read when scoring any list it appears in),
+    /// the marks of its own lists and every mark that expands to neighbors.
+    pub fn keep_shard(&mut self, owns: impl Fn(u32) -> bool) {
+        self.rating_pairs.retain(|&(a, b, _)| owns(a) || owns(b));
+        self.purchase_pairs
+            .retain(|&(a, b, _)| a == b || owns(a) || owns(b));
+        for marks in [&mut self.dirty_rating, &mut self.dirty_purchase] {
+            marks.retain(|&item, scope| owns(item) || *scope == DirtyScope::WithNeighbors);
+        }
+    }
+}
+
 /// The contribution sets of a batch, summed once all users are settled.
 #[derive(Default)]
 struct BatchSets {
