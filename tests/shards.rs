@@ -14,6 +14,7 @@ use common::Settings;
 use simtide::cluster::owner;
 use simtide::config::Config;
 use simtide::inspect::neighbors_table;
+use simtide::store::reshard::reshard;
 use simtide::store::Store;
 
 const SHARDS: u32 = 3;
@@ -159,16 +160,23 @@ fn three_shards_publish_exactly_one_stores_lists_at_the_default_tolerance() {
     );
 }
 
-#[test]
-fn a_store_refuses_another_shard() {
-    let dir = tempfile::tempdir().unwrap();
-    let [first, _, _] = stages(dir.path());
-    let store = dir.path().join("shard-1");
+/// A store of shard `shard` of three, backfilled at exact settings with the first 12,000
+/// ratings.
+fn first_ratings_in_shard(dir: &Path, shard: u32) -> PathBuf {
+    let [first, _, _] = stages(dir);
+    let store = dir.join(format!("shard-{shard}"));
     common::backfill(
         &store,
         &[first[0].as_path()],
-        &sharded(common::config(Settings::EXACT), 1),
+        &sharded(common::config(Settings::EXACT), shard),
     );
+    store
+}
+
+#[test]
+fn a_store_refuses_another_shard() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = first_ratings_in_shard(dir.path(), 1);
     for (shards, shard) in [(3, 2), (1, 0), (2, 1)] {
         let mut config = common::config(Settings::EXACT);
         config.cluster.shards = shards;
@@ -190,13 +198,7 @@ fn a_store_refuses_another_shard() {
 #[test]
 fn lookups_of_another_shards_item_name_its_owner() {
     let dir = tempfile::tempdir().unwrap();
-    let [first, _, _] = stages(dir.path());
-    let store_dir = dir.path().join("shard-0");
-    common::backfill(
-        &store_dir,
-        &[first[0].as_path()],
-        &sharded(common::config(Settings::EXACT), 0),
-    );
+    let store_dir = first_ratings_in_shard(dir.path(), 0);
     let store = Store::open_read_only(&store_dir).unwrap();
     let names: Vec<String> = (0..store.item_count() as u32)
         .map(|i| store.item_name(i).to_string())
@@ -210,5 +212,136 @@ fn lookups_of_another_shards_item_name_its_owner() {
     assert!(
         refused.contains(&format!("{theirs:?} belongs to shard 2")) && refused.contains("shard 0 of 3"),
         "{refused}"
+    );
+}
+
+/// Backfills `files` into the stores of every shard of `shards`, one configuration each.
+fn backfill_shards(stores: &[PathBuf], files: &[PathBuf], settings: Settings) {
+    let files: Vec<&Path> = files.iter().map(PathBuf::as_path).collect();
+    for (shard, store) in stores.iter().enumerate() {
+        let mut config = common::config(settings);
+        config.cluster.shards = stores.len() as u32;
+        config.cluster.shard = Some(shard as u32);
+        config.cluster.resolve(None).unwrap();
+        common::backfill(store, &files, &config);
+    }
+}
+
+#[test]
+fn three_shards_resharded_into_two_equal_two_shards_built_directly() {
+    let dir = tempfile::tempdir().unwrap();
+    let stages = stages(dir.path());
+    let settings = Settings {
+        tolerance: 0.05,
+        cut: 500,
+        min_common_users: 3,
+        batch_events: 1_700,
+    };
+    let three: Vec<PathBuf> = (0..3).map(|i| dir.path().join(format!("old-{i}"))).collect();
+    let direct: Vec<PathBuf> = (0..2).map(|i| dir.path().join(format!("direct-{i}"))).collect();
+    let rebuilt: Vec<PathBuf> = (0..2).map(|i| dir.path().join(format!("rebuilt-{i}"))).collect();
+    for files in &stages[..2] {
+        backfill_shards(&three, files, settings);
+        backfill_shards(
+            &direct,
+            files,
+            Settings {
+                batch_events: 5_000,
+                ..settings
+            },
+        );
+    }
+    let mut two = common::config(settings);
+    two.cluster.shards = 2;
+    two.cluster.shard = Some(0);
+    reshard(&three, &rebuilt[0], &two).expect("reshard into shard 0 of 2");
+    // Shard 1 through the command line.
+    let mut args: Vec<String> = vec!["reshard".into()];
+    for old in &three {
+        args.extend(["--from".into(), old.display().to_string()]);
+    }
+    args.extend(["--to".into(), rebuilt[1].display().to_string()]);
+    args.extend(["--shards", "2", "--shard", "1"].map(String::from));
+    let config_file = dir.path().join("two.toml");
+    std::fs::write(
+        &config_file,
+        "[similarity]\nrating_min = 0.5\nrecenter_tolerance = 0.05\nmax_items_per_user = 500\n",
+    )
+    .unwrap();
+    args.extend(["--config".into(), config_file.display().to_string()]);
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(&args)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("built shard 1 of 2"));
+
+    // The same lists (with their versions), and after each later stage still the same:
+    // the rows, marks and buyer counts carried over score like the directly built ones.
+    for (stage, files) in [(0, None), (1, Some(&stages[1])), (2, Some(&stages[2]))] {
+        if let Some(files) = files {
+            backfill_shards(&rebuilt, files, settings);
+            backfill_shards(&direct, files, settings);
+        }
+        for j in 0..2 {
+            let want = lists(&direct[j], &dir.path().join("want.jsonl"));
+            let got = lists(&rebuilt[j], &dir.path().join("got.jsonl"));
+            assert!(want.len() > 300, "stage {stage}, shard {j}: {} lists", want.len());
+            assert!(got == want, "stage {stage}, shard {j}: resharded lists differ");
+        }
+    }
+    let (a, b) = (
+        Store::open_read_only(&rebuilt[1]).unwrap(),
+        Store::open_read_only(&direct[1]).unwrap(),
+    );
+    assert_eq!(a.ledger().next_seq, b.ledger().next_seq);
+    // Every row, rating and purchase, own and partial, buyer counts included.
+    let mut purchase_rows = 0;
+    for item in 0..a.item_count() as u32 {
+        assert_eq!(
+            a.rating_row(item).unwrap(),
+            b.rating_row(item).unwrap(),
+            "rating row {item}"
+        );
+        let row = a.purchase_row(item).unwrap();
+        assert_eq!(row, b.purchase_row(item).unwrap(), "purchase row {item}");
+        purchase_rows += usize::from(!row.is_empty());
+    }
+    // Each of the garden shop's 40 purchased items keeps its buyer count on every shard.
+    assert_eq!(purchase_rows, 40, "purchase rows");
+}
+
+#[test]
+fn resharding_refuses_an_incomplete_or_uneven_set_of_shards() {
+    let dir = tempfile::tempdir().unwrap();
+    let stages = stages(dir.path());
+    let three: Vec<PathBuf> = (0..3).map(|i| dir.path().join(format!("old-{i}"))).collect();
+    backfill_shards(&three, &stages[0], Settings::EXACT);
+    let mut two = common::config(Settings::EXACT);
+    two.cluster.shards = 2;
+    two.cluster.shard = Some(0);
+    let missing = reshard(&three[..2], &dir.path().join("a"), &two)
+        .unwrap_err()
+        .to_string();
+    assert!(missing.contains("no source holds shard 2 of 3"), "{missing}");
+    let withdrawn: Vec<&Path> = stages[2].iter().map(PathBuf::as_path).collect();
+    common::backfill(
+        &three[2],
+        &withdrawn,
+        &sharded(common::config(Settings::EXACT), 2),
+    );
+    let uneven = reshard(&three, &dir.path().join("b"), &two)
+        .unwrap_err()
+        .to_string();
+    assert!(uneven.contains("different input positions"), "{uneven}");
+    let mut other = two.clone();
+    other.similarity.recenter_tolerance = 0.1;
+    let settings = reshard(&three[..1], &dir.path().join("c"), &other)
+        .unwrap_err()
+        .to_string();
+    assert!(settings.contains("recenter_tolerance"), "{settings}");
+    assert!(
+        !dir.path().join("a").join("db").exists(),
+        "nothing written when refused"
     );
 }

@@ -45,6 +45,29 @@ pub enum Command {
     Recommend(RecommendArgs),
     /// Evaluate settings offline on held-out ratings and write a report.
     Evaluate(EvaluateArgs),
+    /// Build one shard of a new shard count from the stores of every old shard, all
+    /// stopped at the same input positions.
+    Reshard(ReshardArgs),
+}
+
+/// The flags of `simtide reshard`.
+#[derive(Args)]
+pub struct ReshardArgs {
+    /// Store of an old shard; repeat for every old shard.
+    #[arg(long = "from", value_name = "DIR", required = true)]
+    pub from: Vec<PathBuf>,
+    /// Directory of the new shard's store; must not hold a store yet.
+    #[arg(long, value_name = "DIR")]
+    pub to: PathBuf,
+    /// The new shard count.
+    #[arg(long, value_name = "M")]
+    pub shards: u32,
+    /// The new shard to build, 0 to M − 1.
+    #[arg(long, value_name = "J")]
+    pub shard: u32,
+    /// Configuration file; its statistics settings must be the old stores'.
+    #[arg(long, value_name = "FILE")]
+    pub config: Option<PathBuf>,
 }
 
 /// The flags of `simtide backfill`.
@@ -252,6 +275,7 @@ impl Command {
             Command::Explain(a) => a.config.as_deref(),
             Command::Recommend(a) => a.config.as_deref(),
             Command::Evaluate(a) => a.config.as_deref(),
+            Command::Reshard(a) => a.config.as_deref(),
             Command::Status(_) | Command::Demo(_) | Command::Neighbors(_) | Command::Export(_) => None,
         }
     }

@@ -7,6 +7,7 @@ mod check_config;
 mod evaluate;
 mod inspect;
 mod recommend;
+mod reshard;
 mod run;
 
 use std::io::Write;
@@ -31,5 +32,6 @@ pub fn dispatch(command: Command, config: Option<Config>, out: &mut dyn Write) -
         Command::Export(args) => inspect::export(args, out),
         Command::Recommend(args) => recommend::run(args, &config()?, out),
         Command::Evaluate(args) => evaluate::run(args, config()?, out),
+        Command::Reshard(args) => reshard::run(args, config()?, out),
     }
 }

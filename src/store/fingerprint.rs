@@ -65,7 +65,8 @@ impl StatsFingerprint {
         found
     }
 
-    fn similarity_differences(&self, asked: &StatsFingerprint) -> Vec<String> {
+    /// [`StatsFingerprint::differences`] of the statistics settings alone.
+    pub(crate) fn similarity_differences(&self, asked: &StatsFingerprint) -> Vec<String> {
         [
             (
                 "rating_min",

@@ -30,6 +30,7 @@ pub mod mirror;
 mod open;
 mod oriented;
 mod reads;
+pub mod reshard;
 mod rows;
 
 use std::path::{Path, PathBuf};
