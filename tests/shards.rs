@@ -12,6 +12,7 @@ use std::path::{Path, PathBuf};
 
 use common::Settings;
 use simtide::cluster::owner;
+use simtide::config::size_text::ByteSize;
 use simtide::config::Config;
 use simtide::inspect::neighbors_table;
 use simtide::store::reshard::reshard;
@@ -98,15 +99,23 @@ fn shards_add_up_to_one_store(settings: Settings, shard_batch_events: u64) {
         );
         let mut union = Vec::new();
         for (shard, store) in (0..SHARDS).zip(&shard_stores) {
-            // Other batch sizes than the single store's: the sums depend on the events only.
-            let config = sharded(
+            // Other batch sizes than the single store's (the sums depend on the events only),
+            // and segments of at most 1 MiB, so shards write several segments per stage and
+            // score from their stored rows, where the single store scores from memory.
+            let mut config = sharded(
                 common::config(Settings {
                     batch_events: shard_batch_events,
                     ..settings
                 }),
                 shard,
             );
-            common::backfill(store, &files, &config);
+            config.backfill.memory_budget = ByteSize(1 << 20);
+            let summary = common::backfill(store, &files, &config);
+            assert!(
+                stage == 2 || summary.segments > 1,
+                "stage {stage}: {} segment(s)",
+                summary.segments
+            );
             let got = lists(store, &dir.path().join(format!("shard-{shard}.jsonl")));
             for line in &got {
                 let item = serde_json::from_str::<serde_json::Value>(line).unwrap()["item"]
