@@ -158,9 +158,10 @@ pub struct Pending {
     effects: SegmentEffects,
     ledger: Ledger,
     state_bytes: usize,
-    /// The store's shard, and per item id whether it owns the item (filled as ids appear).
+    /// The store's shard, and whether it owns each item this segment named first, in the
+    /// order of their ids.
     shard: ShardSpec,
-    owned: Vec<bool>,
+    new_owned: Vec<bool>,
 }
 
 impl Pending {
@@ -176,21 +177,15 @@ impl Pending {
             ledger,
             state_bytes: 0,
             shard: store.shard(),
-            owned: Vec::new(),
+            new_owned: Vec::new(),
         }
     }
 
-    /// Extends [`Pending::owned`] to every item id assigned so far.
-    fn note_owners(&mut self, store: &Store) {
-        let stored = store.item_count() as u32;
-        let first_new = self.items.added.first().map_or(self.items.next, |(id, _)| *id);
-        for id in self.owned.len() as u32..self.items.next {
-            let name = if id < stored {
-                store.item_name(id)
-            } else {
-                &self.items.added[(id - first_new) as usize].1
-            };
-            self.owned.push(self.shard.owns(name));
+    /// Extends [`Pending::new_owned`] to every item this segment named first (the store
+    /// knows the owner of the items it holds).
+    fn note_new_owners(&mut self) {
+        for (_, name) in &self.items.added[self.new_owned.len()..] {
+            self.new_owned.push(self.shard.owns(name));
         }
     }
 
@@ -254,9 +249,12 @@ impl Pending {
         self.statuses.extend(store.load_statuses(&status_items)?);
         let mut effects = apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses);
         if self.shard.is_sharded() {
-            self.note_owners(store);
-            let owned = &self.owned;
-            effects.keep_shard(|item| owned[item as usize]);
+            self.note_new_owners();
+            let (stored, new_owned) = (store.item_count() as u32, &self.new_owned);
+            effects.keep_shard(|item| match item.checked_sub(stored) {
+                None => store.owns(item),
+                Some(new) => new_owned[new as usize],
+            });
         }
         // Each event adds at most one entry to a history (plus its share of a new user).
         self.state_bytes += sequenced.len() * PENDING_EVENT_STATE_BYTES;

@@ -353,4 +353,15 @@ fn resharding_refuses_an_incomplete_or_uneven_set_of_shards() {
         !dir.path().join("a").join("db").exists(),
         "nothing written when refused"
     );
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["reshard", "--from", &three[0].display().to_string(), "--to"])
+        .arg(dir.path().join("d"))
+        .args(["--shards", "2", "--shard", "2"])
+        .output()
+        .unwrap();
+    let error = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        !out.status.success() && error.contains("--shard is 2, but --shards is 2"),
+        "{error}"
+    );
 }

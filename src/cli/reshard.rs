@@ -2,7 +2,7 @@
 
 use std::io::Write;
 
-use anyhow::Result;
+use anyhow::{bail, Result};
 
 use super::args::ReshardArgs;
 use simtide::config::Config;
@@ -10,12 +10,15 @@ use simtide::store::reshard::reshard;
 
 /// Builds the new shard's store and prints what it copied.
 pub fn run(args: ReshardArgs, mut config: Config, out: &mut dyn Write) -> Result<()> {
+    if args.shard >= args.shards {
+        bail!(
+            "--shard is {}, but --shards is {}: shards are numbered 0 to --shards − 1",
+            args.shard,
+            args.shards
+        );
+    }
     config.cluster.shards = args.shards;
     config.cluster.shard = Some(args.shard);
-    config
-        .cluster
-        .resolve(None)
-        .map_err(|e| anyhow::anyhow!("{}", e.to_string().replace("cluster.", "--")))?;
     let summary = reshard(&args.from, &args.to, &config)?;
     writeln!(
         out,

@@ -117,9 +117,7 @@ impl Store {
         self.write(wb)?;
         self.ledger = ledger;
         for (id, name) in c.new_items {
-            debug_assert_eq!(*id as usize, self.items.names.len());
-            self.items.ids.insert(name.clone(), *id);
-            self.items.names.push(name.clone());
+            self.items.push(*id, name.clone());
         }
         Ok(())
     }

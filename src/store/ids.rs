@@ -8,13 +8,38 @@ use anyhow::{bail, Context, Result};
 use rocksdb::{Direction, IteratorMode, DB};
 
 use super::{Store, CF_IDS};
+use crate::cluster::ShardSpec;
 
 /// Item names by dense id and back, kept in memory: publication needs names for every
 /// neighbor (ties are broken by name) and the catalogue is small next to the pair table.
-#[derive(Debug, Default, Clone)]
+/// Also whether the store's shard owns each item, decided once when the name arrives.
+#[derive(Debug, Clone)]
 pub(super) struct ItemDirectory {
     pub(super) names: Vec<String>,
     pub(super) ids: HashMap<String, u32>,
+    shard: ShardSpec,
+    owned: Vec<bool>,
+}
+
+impl ItemDirectory {
+    /// An empty directory of a store holding `shard`.
+    pub(super) fn new(shard: ShardSpec) -> ItemDirectory {
+        ItemDirectory {
+            names: Vec::new(),
+            ids: HashMap::new(),
+            shard,
+            owned: Vec::new(),
+        }
+    }
+
+    /// Records the next dense id's name.
+    pub(super) fn push(&mut self, id: u32, name: String) {
+        debug_assert_eq!(id as usize, self.names.len());
+        self.owned
+            .push(!self.shard.is_sharded() || self.shard.owns(&name));
+        self.ids.insert(name.clone(), id);
+        self.names.push(name);
+    }
 }
 
 /// Appends to `items` the item names stored with ids from `items.names.len()` on (ids
@@ -36,8 +61,7 @@ pub(super) fn load_items_from(db: &DB, items: &mut ItemDirectory) -> Result<()> 
             );
         }
         let name = String::from_utf8(value.to_vec()).context("item name is not UTF-8")?;
-        items.ids.insert(name.clone(), id);
-        items.names.push(name);
+        items.push(id, name);
     }
     Ok(())
 }
@@ -56,6 +80,12 @@ impl Store {
     /// Number of items ever seen.
     pub fn item_count(&self) -> usize {
         self.items.names.len()
+    }
+
+    /// Whether the store's shard owns the stored item `id` (always, unsharded;
+    /// docs/design.md, "Shards").
+    pub fn owns(&self, id: u32) -> bool {
+        self.items.owned.get(id as usize).copied().unwrap_or(false)
     }
 
     /// Dense ids of user names; `None` for users never seen.

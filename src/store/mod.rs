@@ -127,12 +127,6 @@ impl Store {
         self.fingerprint.shard_spec()
     }
 
-    /// Whether the store's shard owns `item` (always, unsharded).
-    pub fn owns(&self, item: u32) -> bool {
-        let shard = self.shard();
-        !shard.is_sharded() || shard.owns(self.item_name(item))
-    }
-
     /// The ledger as of the last committed batch.
     pub fn ledger(&self) -> &Ledger {
         &self.ledger

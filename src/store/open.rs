@@ -195,7 +195,7 @@ impl Store {
 
     fn finish_open(db: DB, dir: &Path, fingerprint: StatsFingerprint, access: Access) -> Result<Store> {
         let ledger = read_ledger(&db)?;
-        let mut items = ItemDirectory::default();
+        let mut items = ItemDirectory::new(fingerprint.shard_spec());
         load_items_from(&db, &mut items)?;
         Ok(Store {
             db: Arc::new(db),

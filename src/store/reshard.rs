@@ -56,17 +56,13 @@ pub fn reshard(from: &[PathBuf], to: &Path, config: &Config) -> Result<ReshardSu
         let n = copy_family(by_shard[0], &target, family, |_, _| true)?;
         summary.keys.push((family, n));
     }
-    // Ids are the same in every shard (each applied every event in the same order).
+    // Ids are the same in every shard (each applied every event in the same order); each
+    // source knows which items it owned, and `kept` says which the new shard keeps.
     let names = by_shard[0];
-    let old_owner: Vec<u32> = (0..names.item_count() as u32)
-        .map(|i| owner(names.item_name(i), old.shards))
-        .collect();
     let kept: Vec<bool> = (0..names.item_count() as u32)
         .map(|i| owner(names.item_name(i), new.shards) == new.shard)
         .collect();
-    let owned_before =
-        |item: u32, source: &Store| old_owner.get(item as usize) == Some(&source.shard().shard);
-    let kept_after = |item: u32, _: &Store| kept.get(item as usize) == Some(&true);
+    let kept_after = |item: u32| kept.get(item as usize) == Some(&true);
     for family in [CF_PAIRS, CF_PURCHASE_PAIRS] {
         let mut n = 0;
         for source in &by_shard {
@@ -76,8 +72,7 @@ pub fn reshard(from: &[PathBuf], to: &Path, config: &Config) -> Result<ReshardSu
                 };
                 // A key (row, other) is complete on the old owner of `row`; the new shard
                 // keeps pairs touching its items and every diagonal (BatchEffects::keep_shard).
-                owned_before(row, source)
-                    && (row == other || kept_after(row, source) || kept_after(other, source))
+                source.owns(row) && (row == other || kept_after(row) || kept_after(other))
             })?;
         }
         summary.keys.push((family, n));
@@ -86,8 +81,7 @@ pub fn reshard(from: &[PathBuf], to: &Path, config: &Config) -> Result<ReshardSu
     let mut dirty = 0;
     for source in &by_shard {
         published += copy_family(source, &target, CF_PUBLISHED, |key, _| {
-            codec::split_signal_item_key(key)
-                .is_ok_and(|(_, item)| owned_before(item, source) && kept_after(item, source))
+            codec::split_signal_item_key(key).is_ok_and(|(_, item)| source.owns(item) && kept_after(item))
         })?;
         // Own-list marks of the new shard's items from their old owners; a mark that
         // expands to neighbors from wherever it is still pending (rescoring twice is
@@ -97,8 +91,7 @@ pub fn reshard(from: &[PathBuf], to: &Path, config: &Config) -> Result<ReshardSu
             else {
                 return false;
             };
-            mark.scope == DirtyScope::WithNeighbors
-                || (owned_before(item, source) && kept_after(item, source))
+            mark.scope == DirtyScope::WithNeighbors || (source.owns(item) && kept_after(item))
         })?;
     }
     summary.keys.push((CF_PUBLISHED, published));
@@ -163,6 +156,7 @@ fn check_sources(sources: &[Store], config: &Config) -> Result<ShardSpec> {
     };
     let old = first.shard();
     let mut seen = vec![false; old.shards as usize];
+    let asked = super::StatsFingerprint::from_config(config);
     for source in sources {
         let shard = source.shard();
         if shard.shards != old.shards {
@@ -183,7 +177,6 @@ fn check_sources(sources: &[Store], config: &Config) -> Result<ShardSpec> {
                 source.dir().display()
             );
         }
-        let asked = super::StatsFingerprint::from_config(config);
         let settings = source.fingerprint().similarity_differences(&asked);
         if !settings.is_empty() {
             bail!("{}: {}", source.dir().display(), settings.join("; "));
