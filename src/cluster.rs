@@ -26,6 +26,20 @@ impl ShardSpec {
     pub fn owns(&self, item: &str) -> bool {
         owner(item, self.shards) == self.shard
     }
+
+    /// The consumer group that holds this shard's committed input offsets, read by lag
+    /// tools: `<group>.shard-<i>-of-<N>`. A sharded instance joins no group to consume (it
+    /// assigns itself every partition), so the name only has to be its own.
+    pub fn offsets_group(&self, group: &str) -> String {
+        format!("{group}.shard-{}-of-{}", self.shard, self.shards)
+    }
+
+    /// Whether this instance produces dead letters: only shard 0 of a sharded setup
+    /// does, so each refused event reaches the dead-letter topic once (every shard counts
+    /// it).
+    pub fn produces_dead_letters(&self) -> bool {
+        self.shard == 0
+    }
 }
 
 impl fmt::Display for ShardSpec {
@@ -99,6 +113,12 @@ mod tests {
         };
         assert!(spec.owns("foobar"));
         assert_eq!(spec.to_string(), format!("shard {} of 3", spec.shard));
+        assert_eq!(
+            ShardSpec { shards: 3, shard: 1 }.offsets_group("simtide"),
+            "simtide.shard-1-of-3"
+        );
+        assert!(ShardSpec::SINGLE.produces_dead_letters());
+        assert!(!ShardSpec { shards: 3, shard: 2 }.produces_dead_letters());
     }
 
     #[test]

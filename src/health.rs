@@ -11,6 +11,7 @@ use std::time::{Duration, Instant};
 
 use serde::Serialize;
 
+use crate::cluster::ShardSpec;
 use crate::config::ReadinessConfig;
 use crate::kafka::client::BrokerState;
 
@@ -19,6 +20,8 @@ use crate::kafka::client::BrokerState;
 #[derive(Debug)]
 pub struct Health {
     brokers: Arc<BrokerState>,
+    /// Which item shard this instance is, named in every answer when sharded.
+    shard: ShardSpec,
     limits: ReadinessConfig,
     store_error: Mutex<Option<String>>,
     consuming: AtomicBool,
@@ -65,15 +68,29 @@ impl Check {
 pub struct Readiness {
     /// All checks pass.
     pub ready: bool,
+    /// Which shard answers, in a sharded setup (absent otherwise), so a probe or an
+    /// engineer reading one answer knows which instance it describes.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub shard: Option<ShardPlace>,
     /// Each check.
     pub checks: Vec<Check>,
 }
 
+/// A shard's place in a `/readyz` answer.
+#[derive(Debug, Clone, Copy, Serialize, PartialEq, Eq)]
+pub struct ShardPlace {
+    /// This instance's shard index.
+    pub index: u32,
+    /// How many shards share the items.
+    pub of: u32,
+}
+
 impl Health {
-    /// Health tied to the shared broker state, judged by `limits`.
-    pub fn new(brokers: Arc<BrokerState>, limits: ReadinessConfig) -> Health {
+    /// Health tied to the shared broker state, judged by `limits`, of `shard`.
+    pub fn new(brokers: Arc<BrokerState>, limits: ReadinessConfig, shard: ShardSpec) -> Health {
         Health {
             brokers,
+            shard,
             limits,
             store_error: Mutex::new(None),
             consuming: AtomicBool::new(false),
@@ -147,6 +164,10 @@ impl Health {
         ];
         Readiness {
             ready: checks.iter().all(|c| c.ok),
+            shard: self.shard.is_sharded().then_some(ShardPlace {
+                index: self.shard.shard,
+                of: self.shard.shards,
+            }),
             checks,
         }
     }
@@ -199,7 +220,7 @@ mod tests {
     use super::*;
 
     fn health(limits: ReadinessConfig) -> Health {
-        let h = Health::new(Arc::new(BrokerState::default()), limits);
+        let h = Health::new(Arc::new(BrokerState::default()), limits, ShardSpec::SINGLE);
         h.set_consuming(true);
         h.set_topic_problems(Vec::new());
         h
@@ -219,9 +240,18 @@ mod tests {
     #[test]
     fn a_healthy_service_is_ready_and_topics_start_unchecked() {
         assert!(health(ReadinessConfig::default()).readiness(&fresh()).ready);
-        let new = Health::new(Arc::new(BrokerState::default()), ReadinessConfig::default());
+        let new = Health::new(
+            Arc::new(BrokerState::default()),
+            ReadinessConfig::default(),
+            ShardSpec { shards: 3, shard: 2 },
+        );
         new.set_consuming(true);
         assert_eq!(failing(&new.readiness(&fresh())), ["topics"]);
+        // A shard names itself; one instance holding every item does not.
+        let answer = serde_json::to_value(new.readiness(&fresh())).unwrap();
+        assert_eq!(answer["shard"], serde_json::json!({"index": 2, "of": 3}));
+        let single = serde_json::to_value(health(ReadinessConfig::default()).readiness(&fresh())).unwrap();
+        assert!(single.get("shard").is_none(), "{single}");
     }
 
     #[test]

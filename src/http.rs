@@ -24,6 +24,7 @@ use serde::Serialize;
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
 
+use crate::cluster::{owner, ShardSpec};
 use crate::health::Health;
 use crate::inspect::explain_pair;
 use crate::lookup::LookupStore;
@@ -66,6 +67,8 @@ pub struct HttpState {
     pub admin_token: String,
     /// Where admin requests go.
     pub admin: Arc<AdminRequests>,
+    /// Which items this instance answers for.
+    pub shard: ShardSpec,
 }
 
 /// A refused or failed request, answered as JSON with a stable code and a sentence.
@@ -77,6 +80,9 @@ pub struct ApiError {
     error: &'static str,
     /// What went wrong and, where it helps, what to do.
     detail: String,
+    /// For an item kept by another shard: the index of the shard that answers for it.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    owner: Option<u32>,
 }
 
 impl ApiError {
@@ -85,7 +91,34 @@ impl ApiError {
             status,
             error,
             detail: detail.into(),
+            owner: None,
         }
+    }
+
+    /// 421 Misdirected Request (RFC 9110, 15.5.20: this server cannot give an
+    /// authoritative answer for the target) for `item`, kept by another shard: the
+    /// answer names that shard, so a caller can route there (docs/design.md, "Shards").
+    fn other_shard(item: &str, shard: ShardSpec) -> ApiError {
+        let owner = owner(item, shard.shards);
+        ApiError {
+            owner: Some(owner),
+            ..ApiError::new(
+                StatusCode::MISDIRECTED_REQUEST,
+                "other_shard",
+                format!("item {item:?} belongs to shard {owner}; this is {shard}: ask shard {owner}"),
+            )
+        }
+    }
+}
+
+/// Refuses a lookup for which none of `items` belongs to this shard, naming the first
+/// one's owner.
+fn owned_here(s: &HttpState, items: &[&str]) -> Result<(), ApiError> {
+    match items.first() {
+        Some(first) if s.shard.is_sharded() && !items.iter().any(|i| s.shard.owns(i)) => {
+            Err(ApiError::other_shard(first, s.shard))
+        }
+        _ => Ok(()),
     }
 }
 
@@ -219,6 +252,7 @@ async fn list(
     Query(q): Query<ListQuery>,
 ) -> Result<Json<NeighborRecord>, ApiError> {
     check_id(&s, "item", &item)?;
+    owned_here(&s, &[&item])?;
     let signal = match q.signal.as_deref() {
         None => Signal::Rating,
         Some(name) => Signal::parse(name).ok_or_else(|| {
@@ -251,6 +285,7 @@ async fn list(
 async fn pair(State(s): State<HttpState>, Path((a, b)): Path<(String, String)>) -> Result<String, ApiError> {
     check_id(&s, "first item", &a)?;
     check_id(&s, "second item", &b)?;
+    owned_here(&s, &[&a, &b])?;
     let settings = s.lists;
     let (qa, qb) = (a.clone(), b.clone());
     let found = with_store(&s, move |store| {

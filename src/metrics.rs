@@ -4,7 +4,7 @@
 //! (staleness, event-time lag, stalled batch) are computed when scraped from the instants
 //! the service records.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashMap};
 use std::sync::atomic::{AtomicI64, Ordering};
 use std::sync::Mutex;
 
@@ -13,6 +13,7 @@ use prometheus::{
     IntGaugeVec, Opts, Registry, TextEncoder,
 };
 
+use crate::cluster::ShardSpec;
 use crate::decode::RejectReason;
 use crate::event::UnixNanos;
 use crate::health::Freshness;
@@ -203,10 +204,26 @@ impl Default for Metrics {
 }
 
 impl Metrics {
-    /// Creates and registers every metric. Long by design: one declaration per metric, in
-    /// the order of the struct.
+    /// Creates and registers every metric, unlabelled (one instance holds every item).
     pub fn new() -> Metrics {
-        let r = Registering(Registry::new());
+        Metrics::registered_in(Registry::new())
+    }
+
+    /// The metrics of an instance among `shard.shards`: every series carries the label
+    /// `shard="<i>"`, so one Prometheus scraping all shards tells them apart (and sums
+    /// them with `sum without (shard)`). Unsharded, the same as [`Metrics::new`].
+    pub fn for_shard(shard: ShardSpec) -> Metrics {
+        if !shard.is_sharded() {
+            return Metrics::new();
+        }
+        let labels = HashMap::from([("shard".to_string(), shard.shard.to_string())]);
+        Metrics::registered_in(Registry::new_custom(None, Some(labels)).expect("a valid label name"))
+    }
+
+    /// Creates every metric and registers it in `registry`. Long by design: one
+    /// declaration per metric, in the order of the struct.
+    fn registered_in(registry: Registry) -> Metrics {
+        let r = Registering(registry);
         let m = Metrics {
             events: r.add(counter_vec(names::EVENTS_TOTAL, "Accepted events by kind and outcome.", &["kind", "outcome"])),
             rejected: r.add(counter_vec(names::REJECTED_EVENTS_TOTAL, "Events refused by validation, by reason.", &["reason"])),

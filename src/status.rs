@@ -18,14 +18,16 @@ use crate::metrics::names;
 pub struct Scrape(BTreeMap<String, f64>);
 
 impl Scrape {
-    /// Parses the Prometheus text format (comments and blank lines skipped).
+    /// Parses the Prometheus text format (comments and blank lines skipped). A shard's
+    /// `shard` label is dropped: one scrape is one instance, and the screen names the
+    /// shard from `/readyz`.
     pub fn parse(text: &str) -> Scrape {
         Scrape(
             text.lines()
                 .filter(|l| !l.starts_with('#') && !l.trim().is_empty())
                 .filter_map(|l| {
                     let (series, value) = l.rsplit_once(' ')?;
-                    Some((series.to_string(), value.parse().ok()?))
+                    Some((without_shard_label(series), value.parse().ok()?))
                 })
                 .collect(),
         )
@@ -49,6 +51,24 @@ impl Scrape {
             .filter(|(l, _)| l.contains(filter))
             .map(|(_, v)| v)
             .sum()
+    }
+}
+
+/// `series` (`name{a="x",shard="1"}`) without its `shard` label. Label values here are
+/// codes, numbers and shard indexes, never text holding `",`.
+fn without_shard_label(series: &str) -> String {
+    let Some((name, labels)) = series.split_once('{') else {
+        return series.to_string();
+    };
+    let kept: Vec<&str> = labels
+        .trim_end_matches('}')
+        .split(',')
+        .filter(|l| !l.is_empty() && !l.starts_with("shard="))
+        .collect();
+    if kept.is_empty() {
+        name.to_string()
+    } else {
+        format!("{name}{{{}}}", kept.join(","))
     }
 }
 
@@ -130,7 +150,14 @@ pub fn render(
     } else {
         paint("NOT READY", false, colour)
     };
-    let _ = writeln!(out, "simtide at {base}: {verdict}");
+    let place = match (
+        readiness["shard"]["index"].as_u64(),
+        readiness["shard"]["of"].as_u64(),
+    ) {
+        (Some(index), Some(of)) => format!(" (shard {index} of {of})"),
+        _ => String::new(),
+    };
+    let _ = writeln!(out, "simtide at {base}{place}: {verdict}");
     for f in &failing {
         let _ = writeln!(out, "  ! {f}");
     }
@@ -300,5 +327,31 @@ mod tests {
         assert!(screen.contains("staleness 2.5 s"), "{screen}");
         assert!(screen.contains("batch stalled for 42 s"), "{screen}");
         assert!(!screen.contains('\x1b'), "no colour when not asked");
+    }
+
+    #[test]
+    fn a_shard_is_named_and_its_label_does_not_split_the_series() {
+        let scrape = |applied: u32| {
+            Scrape::parse(&format!(
+                "simtide_events_total{{kind=\"rating\",outcome=\"applied\",shard=\"2\"}} {applied}\nsimtide_consumer_lag_messages{{partition=\"1\",shard=\"2\"}} 5\nsimtide_staleness_seconds{{shard=\"2\"}} 1.5\n"
+            ))
+        };
+        let readiness: serde_json::Value =
+            serde_json::from_str(r#"{"ready":true,"shard":{"index":2,"of":3},"checks":[]}"#).unwrap();
+        let screen = render(
+            "http://x:1",
+            &readiness,
+            &scrape(0),
+            &scrape(50),
+            Duration::from_secs(1),
+            false,
+        );
+        assert!(
+            screen.starts_with("simtide at http://x:1 (shard 2 of 3): READY"),
+            "{screen}"
+        );
+        assert!(screen.contains("lag          p1 5 "), "{screen}");
+        assert!(screen.contains("50 events/s applied"), "{screen}");
+        assert!(screen.contains("staleness 1.5 s"), "{screen}");
     }
 }

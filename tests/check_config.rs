@@ -101,26 +101,6 @@ fn bad_values_are_refused_by_key() {
 }
 
 #[test]
-fn the_live_service_says_it_does_not_run_sharded_yet() {
-    let dir = tempfile::tempdir().unwrap();
-    let file = dir.path().join("c.toml");
-    std::fs::write(&file, "[cluster]\nshards = 3\nshard = 1\n").unwrap();
-    let store = dir.path().join("store");
-    let (ok, _, err) = simtide(
-        &[
-            "run",
-            "--config",
-            file.to_str().unwrap(),
-            "--store",
-            store.to_str().unwrap(),
-        ],
-        &[],
-    );
-    assert!(!ok && err.contains("cluster.shards is 3"), "{err}");
-    assert!(!store.exists(), "nothing was created");
-}
-
-#[test]
 fn logs_are_json_lines_when_configured() {
     let dir = tempfile::tempdir().unwrap();
     let port = std::net::TcpListener::bind("127.0.0.1:0")

@@ -20,14 +20,14 @@ mod common;
 use common::Settings;
 
 use std::collections::BTreeMap;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::time::Duration;
 
 use common::broker::Broker;
 use common::live::{
-    broker_with_topics, caught_up, committed_total, csv_events, last_lists_as_export, produce, read_all,
-    sample, wait_for, write_config, LiveSettings, ReadRecord, Service, DEAD_LETTER, INPUT, OUTPUT,
-    PURCHASE_OUTPUT,
+    accept_missing_tombstones, broker_with_topics, caught_up, committed_total, csv_events,
+    last_lists_as_export, produce, read_all, sample, wait_for, write_config, LiveSettings, Service,
+    DEAD_LETTER, INPUT, OUTPUT, PURCHASE_OUTPUT,
 };
 use simtide::signal::Signal;
 use simtide::store::Store;
@@ -122,7 +122,7 @@ impl Scenario {
     /// "duplicate": same time, same value).
     fn assert_exact(&self) {
         let mut records = read_all(&self.brokers(), OUTPUT);
-        let missing = accept_missing_tombstones(&mut records, &self.store);
+        let missing = accept_missing_tombstones(&mut records, &[&self.store]);
         let export = self.work.path().join("from-topic.jsonl");
         let lists = last_lists_as_export(&records, &export);
         eprintln!(
@@ -157,38 +157,6 @@ impl Scenario {
         let p = store.ledger();
         (p.events.clone(), p.rejects.clone())
     }
-}
-
-/// Drops from `records` the last record of items whose stored list became empty right
-/// after it (the tombstone tansu does not return); returns how many were dropped.
-fn accept_missing_tombstones(records: &mut Vec<ReadRecord>, store_dir: &Path) -> usize {
-    let store = Store::open_read_only(store_dir).unwrap();
-    let mut last: BTreeMap<String, u64> = BTreeMap::new();
-    for r in records.iter() {
-        if let Some(v) = &r.value {
-            let rec: serde_json::Value = serde_json::from_slice(v).unwrap();
-            last.insert(r.key.clone(), rec["version"].as_u64().unwrap());
-        }
-    }
-    let mut emptied = Vec::new();
-    for (key, version) in &last {
-        let id = store.item_id(key).expect("published items are in the store");
-        let stored = store
-            .published(Signal::Rating, id)
-            .unwrap()
-            .expect("a stored list");
-        if stored.neighbors.is_empty() && stored.version == version + 1 {
-            emptied.push(key.clone());
-        }
-    }
-    for key in &emptied {
-        records.push(ReadRecord {
-            key: key.clone(),
-            value: None,
-            headers: BTreeMap::new(),
-        });
-    }
-    emptied.len()
 }
 
 /// Also the check of `--stop-at-end`: the service must leave by itself once it has
@@ -626,7 +594,7 @@ fn full_movielens_at_the_default_tolerance_stays_within_the_engine_bound() {
     );
     let exact = Store::open_read_only(&exact_dir).unwrap();
     let mut records = read_all(&sc.brokers(), OUTPUT);
-    accept_missing_tombstones(&mut records, &sc.store);
+    accept_missing_tombstones(&mut records, &[&sc.store]);
     let mut last: BTreeMap<String, Option<Vec<u8>>> = BTreeMap::new();
     for r in records {
         last.insert(r.key, r.value);

@@ -14,7 +14,7 @@ use simtide::metrics::Metrics;
 pub fn run(args: BackfillArgs, mut config: Config, out: &mut dyn Write) -> Result<()> {
     let metrics = match &args.metrics_listen {
         Some(listen) => {
-            let metrics = Arc::new(Metrics::new());
+            let metrics = Arc::new(Metrics::for_shard(config.cluster.spec()));
             simtide::http::serve_metrics_in_background(listen, metrics.clone())?;
             Some(metrics)
         }

@@ -3,7 +3,7 @@
 
 use std::io::Write;
 
-use anyhow::{bail, Context, Result};
+use anyhow::{Context, Result};
 
 use super::args::RunArgs;
 use simtide::config::Config;
@@ -14,13 +14,6 @@ use simtide::timefmt::parse_event_time;
 
 /// Runs the service and prints what it did.
 pub fn run(args: RunArgs, config: Config, out: &mut dyn Write) -> Result<()> {
-    if config.cluster.shards > 1 {
-        bail!(
-            "cluster.shards is {}: this version shards `simtide backfill` and the commands that read \
-             its stores, not the live service yet; run the service with cluster.shards = 1",
-            config.cluster.shards
-        );
-    }
     let start = match (args.start_at, args.start_offsets) {
         (Some(text), _) => Some(StartRequest::AtTime(
             parse_event_time(&text)

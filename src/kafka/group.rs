@@ -1,10 +1,14 @@
-//! The group consumer of the input topic, polled from the service thread. Its rebalance
-//! handler makes the store the truth for positions: an assigned partition starts at the
-//! store's next offset (not the group's committed one), and before partitions are revoked
-//! the batch in flight is committed and the group offsets are brought up to date. What
-//! the store holds is asked of a [`PositionKeeper`], so this module knows no store.
+//! The consumer of the input topic, polled from the service thread. It takes partitions
+//! one of two ways ([`Membership`]): subscribed in the consumer group, whose rebalances
+//! share the partitions, or (a sharded instance) every partition by explicit assignment,
+//! adding partitions as the topic grows. Either way the store is the truth for
+//! positions: an assigned partition starts at the store's next offset (not the group's
+//! committed one), and before partitions are revoked the batch in flight is committed and
+//! the group offsets are brought up to date. What the store holds is asked of a
+//! [`PositionKeeper`], so this module knows no store.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
+use std::sync::Mutex;
 use std::time::Duration;
 
 use anyhow::Result;
@@ -48,13 +52,26 @@ impl<K: PositionKeeper> ClientContext for GroupContext<K> {
     }
 }
 
-impl<K: PositionKeeper> GroupContext<K> {
-    fn assign(&self, consumer: &BaseConsumer<Self>, tpl: &mut TopicPartitionList) {
-        let stored = self.keeper.stored_offsets();
-        let fallback = match self.start {
+/// Where a partition's consumption starts: the store's next offset when it has one;
+/// otherwise, for a store that already consumed other partitions of the topic (so the
+/// partition is new to it: the topic grew), the partition's first offset, so no event of
+/// it is skipped; otherwise, for a store that never consumed the topic, `kafka.start`.
+fn start_offset(stored: &BTreeMap<i32, i64>, partition: i32, start: StartPosition) -> Offset {
+    match stored.get(&partition) {
+        Some(&next) => Offset::Offset(next),
+        None if !stored.is_empty() => Offset::Beginning,
+        None => match start {
             StartPosition::Earliest => Offset::Beginning,
             StartPosition::Latest => Offset::End,
-        };
+        },
+    }
+}
+
+impl<K: PositionKeeper> GroupContext<K> {
+    /// Sets each partition of `tpl` to start where [`start_offset`] says; returns the
+    /// store's positions it read.
+    fn seed_offsets(&self, tpl: &mut TopicPartitionList) -> BTreeMap<i32, i64> {
+        let stored = self.keeper.stored_offsets();
         let mut described = Vec::new();
         let partitions: Vec<(String, i32)> = tpl
             .elements()
@@ -62,14 +79,17 @@ impl<K: PositionKeeper> GroupContext<K> {
             .map(|e| (e.topic().to_string(), e.partition()))
             .collect();
         for (topic, partition) in partitions {
-            let offset = stored
-                .get(&partition)
-                .map_or(fallback, |&next| Offset::Offset(next));
+            let offset = start_offset(&stored, partition, self.start);
             described.push(format!("{partition}@{offset:?}"));
             // Setting an offset on a partition the list holds cannot fail.
             let _ = tpl.set_partition_offset(&topic, partition, offset);
         }
         tracing::info!(topic = %self.topic, partitions = %described.join(" "), "partitions assigned; starting at the store's positions");
+        stored
+    }
+
+    fn assign(&self, consumer: &BaseConsumer<Self>, tpl: &mut TopicPartitionList) {
+        let stored = self.seed_offsets(tpl);
         let result = match consumer.rebalance_protocol() {
             RebalanceProtocol::Cooperative => consumer.incremental_assign(tpl),
             _ => consumer.assign(tpl),
@@ -129,23 +149,47 @@ impl<K: PositionKeeper> ConsumerContext for GroupContext<K> {
     }
 }
 
-/// The group consumer, subscribed to the input topic. Auto-commit is off: the store is
-/// the truth; group offsets are committed after each store write for external tools.
+/// How the consumer takes partitions of the input topic.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Membership {
+    /// Subscribed in `kafka.group`: the group's rebalances share the partitions among
+    /// its members (one instance, or one that takes over from another).
+    Subscribed,
+    /// Every partition, by explicit assignment, as each item shard reads every event;
+    /// `offsets_group` only holds the committed offsets that lag tools read.
+    EveryPartition {
+        /// The group id the offsets are committed under.
+        offsets_group: String,
+    },
+}
+
+/// The consumer of the input topic. Auto-commit is off: the store is the truth; group
+/// offsets are committed after each store write for external tools.
 pub struct GroupConsumer<K: PositionKeeper> {
     consumer: BaseConsumer<GroupContext<K>>,
     topic: String,
+    /// With [`Membership::EveryPartition`]: the partitions assigned so far; `None` when
+    /// subscribed (the group assigns).
+    assigned: Option<Mutex<BTreeSet<i32>>>,
 }
 
 impl<K: PositionKeeper> GroupConsumer<K> {
-    /// Joins the group and subscribes to the input topic.
-    pub fn subscribe(
+    /// Creates the consumer and, when subscribed, joins the group; with
+    /// [`Membership::EveryPartition`] nothing is consumed until
+    /// [`GroupConsumer::assign_new_partitions`] names the partitions.
+    pub fn join(
         kafka: &KafkaConfig,
         bus: BusContext,
         keeper: K,
         revoke_grace: Duration,
+        membership: Membership,
     ) -> Result<Self> {
         let mut config = base_config(kafka);
-        config.set("group.id", &kafka.group);
+        let group = match &membership {
+            Membership::Subscribed => kafka.group.as_str(),
+            Membership::EveryPartition { offsets_group } => offsets_group.as_str(),
+        };
+        config.set("group.id", group);
         config.set("enable.auto.commit", "false");
         config.set("enable.auto.offset.store", "false");
         config.set("enable.partition.eof", "false");
@@ -160,13 +204,51 @@ impl<K: PositionKeeper> GroupConsumer<K> {
         let consumer: BaseConsumer<GroupContext<K>> = config
             .create_with_context(context)
             .map_err(|e| describe_error(&scrubber, "cannot create the Kafka consumer", &e))?;
-        consumer
-            .subscribe(&[&kafka.input_topic])
-            .map_err(|e| describe_error(&scrubber, "cannot subscribe to the input topic", &e))?;
+        let assigned = match membership {
+            Membership::Subscribed => {
+                consumer
+                    .subscribe(&[&kafka.input_topic])
+                    .map_err(|e| describe_error(&scrubber, "cannot subscribe to the input topic", &e))?;
+                None
+            }
+            Membership::EveryPartition { .. } => Some(Mutex::new(BTreeSet::new())),
+        };
         Ok(GroupConsumer {
             consumer,
             topic: kafka.input_topic.clone(),
+            assigned,
         })
+    }
+
+    /// With [`Membership::EveryPartition`]: assigns those of `partitions` (the input
+    /// topic's, as the broker last listed them) not assigned yet, each starting where
+    /// the store says (a partition the topic gained later starts at its beginning).
+    /// Kafka never removes partitions, so nothing is unassigned. Subscribed: nothing.
+    pub fn assign_new_partitions(&self, partitions: &[i32]) {
+        let Some(assigned) = &self.assigned else {
+            return;
+        };
+        let mut assigned = assigned.lock().expect("assignment lock");
+        let new: BTreeMap<i32, i64> = partitions
+            .iter()
+            .filter(|p| !assigned.contains(p))
+            .map(|&p| (p, 0))
+            .collect();
+        if new.is_empty() {
+            return;
+        }
+        let context = self.consumer.context();
+        let mut tpl = partition_list(&self.topic, &new);
+        context.seed_offsets(&mut tpl);
+        match self.consumer.incremental_assign(&tpl) {
+            Ok(()) => {
+                assigned.extend(new.keys());
+                context.keeper.set_consuming(true);
+            }
+            Err(e) => {
+                tracing::error!(error = %context.bus.scrubber().scrub(&e.to_string()), "cannot assign the new partitions; trying again at the next listing")
+            }
+        }
     }
 
     /// The next message within `timeout` (rebalance callbacks run inside this call, on
@@ -188,5 +270,30 @@ impl<K: PositionKeeper> GroupConsumer<K> {
         {
             tracing::debug!(error = %e, "group offset commit not sent");
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_partition_starts_at_the_store_then_at_its_beginning_once_the_topic_was_consumed() {
+        let never = BTreeMap::new();
+        assert_eq!(start_offset(&never, 0, StartPosition::Latest), Offset::End);
+        assert_eq!(
+            start_offset(&never, 0, StartPosition::Earliest),
+            Offset::Beginning
+        );
+        let consumed = BTreeMap::from([(0, 41), (1, 7)]);
+        assert_eq!(
+            start_offset(&consumed, 1, StartPosition::Latest),
+            Offset::Offset(7)
+        );
+        // Partition 2 came after the store consumed 0 and 1: all of it is new.
+        assert_eq!(
+            start_offset(&consumed, 2, StartPosition::Latest),
+            Offset::Beginning
+        );
     }
 }

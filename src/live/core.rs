@@ -264,7 +264,7 @@ impl Core {
             return BatchApply::Abandoned;
         }
         let rejects = self.pending.reject_counts();
-        if !rejects.is_empty() {
+        if !rejects.is_empty() && self.config.cluster.spec().produces_dead_letters() {
             Observation::DeadLettersDelivered { by_reason: &rejects }.emit(&self.metrics);
         }
         let started = Instant::now();
@@ -368,7 +368,12 @@ impl Core {
 
     /// Delivers the pending batch's dead letters, retrying what the broker did not take
     /// until `deadline`; false when it gave up (deadline or shutdown).
+    /// Only shard 0 of a sharded setup delivers (every shard refuses and counts the same
+    /// events), so each dead letter reaches the topic once.
     fn deliver_dead_letters(&self, deadline: Option<Instant>) -> bool {
+        if !self.config.cluster.spec().produces_dead_letters() {
+            return true;
+        }
         let kafka = &self.config.kafka;
         let mut letters: Vec<OutRecord> = self
             .pending

@@ -37,7 +37,7 @@ use crate::exit::SHUTDOWN_OVERRAN;
 use crate::health::Health;
 use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
-use crate::kafka::group::GroupConsumer;
+use crate::kafka::group::{GroupConsumer, Membership};
 use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::producer::RecordProducer;
 use crate::kafka::topics::{compaction_warnings, ensure_topics};
@@ -54,6 +54,10 @@ const PROBE_EVERY: Duration = Duration::from_secs(2);
 
 /// Longest idle wait for a message before the loop looks at its timers again.
 const IDLE_WAIT: Duration = Duration::from_millis(500);
+
+/// How often the loop looks for partitions the probe listed and the consumer has not
+/// assigned yet (a sharded instance reads every partition).
+const LISTING_LOOK_EVERY: Duration = Duration::from_millis(250);
 
 /// Longest single poll: how soon the loop notices that shutdown began.
 const LONGEST_POLL: Duration = Duration::from_millis(100);
@@ -128,12 +132,18 @@ impl fmt::Display for RunReport {
     }
 }
 
+/// The input topic's partitions as the broker probe last listed them, for a consumer
+/// that assigns itself every partition.
+type ListedPartitions = Arc<Mutex<Vec<i32>>>;
+
 /// Keeps the broker flag current by asking for metadata every [`PROBE_EVERY`], and the
-/// per-partition lag gauge from the input topic's high watermarks, until shutdown.
+/// per-partition lag gauge and `listed` from the input topic's high watermarks, until
+/// shutdown.
 fn spawn_broker_probe(
     config: &Config,
     bus: &BusContext,
     metrics: Arc<Metrics>,
+    listed: ListedPartitions,
     shutdown: Shutdown,
 ) -> Result<()> {
     let client = OffsetsClient::new(&config.kafka, bus)?;
@@ -147,6 +157,7 @@ fn spawn_broker_probe(
             metrics.broker_up.set(i64::from(brokers.reachable()));
             if let Ok(high) = high {
                 metrics.set_lag_from_watermarks(&high);
+                *listed.lock().expect("partitions lock") = high.keys().copied().collect();
             }
             if !shutdown.sleep(PROBE_EVERY) {
                 break;
@@ -228,6 +239,9 @@ pub struct Service {
     runtime: tokio::runtime::Runtime,
     core: Arc<Mutex<Core>>,
     consumer: GroupConsumer<StorePositions>,
+    /// The input partitions the probe listed, assigned as they appear when this instance
+    /// reads every partition (a shard).
+    listed_partitions: ListedPartitions,
     health: Arc<Health>,
     metrics: Arc<Metrics>,
     admin: Arc<AdminRequests>,
@@ -252,8 +266,9 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
     let scrubber = Arc::new(Scrubber::of(config));
     let brokers = Arc::new(BrokerState::default());
     let bus = BusContext::new(brokers.clone(), scrubber);
-    let health = Arc::new(Health::new(brokers, config.readiness.clone()));
-    let metrics = Arc::new(Metrics::new());
+    let shard = config.cluster.spec();
+    let health = Arc::new(Health::new(brokers, config.readiness.clone(), shard));
+    let metrics = Arc::new(Metrics::for_shard(shard));
     let admin = Arc::new(AdminRequests::default());
     let store_dir = options
         .store_dir
@@ -283,7 +298,14 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         metrics.clone(),
         shutdown.clone(),
     ));
-    spawn_broker_probe(config, &bus, metrics.clone(), shutdown.clone())?;
+    let listed_partitions = ListedPartitions::default();
+    spawn_broker_probe(
+        config,
+        &bus,
+        metrics.clone(),
+        listed_partitions.clone(),
+        shutdown.clone(),
+    )?;
     let stop_at = if options.stop_at_end {
         let ends = OffsetsClient::new(&config.kafka, &bus)?.end_offsets(&config.kafka.input_topic)?;
         tracing::info!(topic = %config.kafka.input_topic, offsets = ?ends, "will stop at these end offsets");
@@ -306,18 +328,27 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         c.seed_positions();
         c.outputs_in_sync()?
     };
-    let consumer = GroupConsumer::subscribe(
+    let membership = if shard.is_sharded() {
+        Membership::EveryPartition {
+            offsets_group: shard.offsets_group(&config.kafka.group),
+        }
+    } else {
+        Membership::Subscribed
+    };
+    tracing::info!(
+        store = %store_dir.display(),
+        topic = %config.kafka.input_topic,
+        membership = ?membership,
+        %shard,
+        "consuming"
+    );
+    let consumer = GroupConsumer::join(
         &config.kafka,
         bus,
         StorePositions::new(core.clone(), health.clone()),
         config.live.shutdown_timeout,
+        membership,
     )?;
-    tracing::info!(
-        store = %store_dir.display(),
-        topic = %config.kafka.input_topic,
-        group = %config.kafka.group,
-        "consuming"
-    );
     Ok(Service {
         config: config.clone(),
         shutdown,
@@ -325,6 +356,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         runtime,
         core,
         consumer,
+        listed_partitions,
         health,
         metrics,
         admin,
@@ -355,6 +387,7 @@ fn start_http(
             max_id_bytes: config.input.max_id_bytes,
             lists: config.list_settings(),
             admin_token: config.http.admin_token.clone(),
+            shard: config.cluster.spec(),
             admin,
         },
     ));
@@ -395,7 +428,13 @@ impl Service {
     pub fn run(&mut self) -> Result<()> {
         let interval = self.config.publish.interval;
         let mut next_publish = Instant::now() + interval;
+        let mut next_listing_look = Instant::now();
         while !self.shutdown.is_begun() {
+            if Instant::now() >= next_listing_look {
+                let listed = self.listed_partitions.lock().expect("partitions lock").clone();
+                self.consumer.assign_new_partitions(&listed);
+                next_listing_look = Instant::now() + LISTING_LOOK_EVERY;
+            }
             let now = Instant::now();
             let wake = self
                 .core()

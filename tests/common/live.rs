@@ -16,6 +16,10 @@ use rdkafka::{ClientConfig, Message, Offset, TopicPartitionList};
 use rdkafka::mocking::MockCluster;
 use rdkafka::producer::DefaultProducerContext as MockContext;
 
+use simtide::cluster::owner;
+use simtide::signal::Signal;
+use simtide::store::Store;
+
 use super::broker::{free_port, Broker};
 
 /// The topic names every live test uses.
@@ -120,6 +124,12 @@ impl Service {
 
     /// Starts the service in consumer group `group` (an environment override).
     pub fn start_in_group(config: &Path, port: u16, extra: &[&str], group: &str) -> Service {
+        Service::start_with_env(config, port, extra, &[("SIMTIDE_KAFKA__GROUP", group)])
+    }
+
+    /// Starts the service with extra environment variables (overrides of the
+    /// configuration file); the consumer group is [`GROUP`] unless `env` sets another.
+    pub fn start_with_env(config: &Path, port: u16, extra: &[&str], env: &[(&str, &str)]) -> Service {
         static STARTS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
         let n = STARTS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
         let log = config.with_extension(format!("run{n}.log"));
@@ -132,7 +142,8 @@ impl Service {
                 "SIMTIDE_LOG",
                 std::env::var("SIMTIDE_TEST_LOG").unwrap_or_else(|_| "info".into()),
             )
-            .env("SIMTIDE_KAFKA__GROUP", group)
+            .env("SIMTIDE_KAFKA__GROUP", GROUP)
+            .envs(env.iter().copied())
             .stdout(Stdio::piped())
             .stderr(std::fs::File::create(&log).unwrap())
             .spawn()
@@ -477,4 +488,42 @@ pub fn mock_with_topics() -> MockCluster<'static, MockContext> {
         mock.create_topic(t, 1, 1).unwrap();
     }
     mock
+}
+
+/// Appends to `records` the tombstone tansu does not return (see tests/live_service.rs)
+/// for each item whose stored list became empty right after its last record there;
+/// returns how many. `stores` are the stores of shards 0, 1, … (one store: unsharded),
+/// and each item's list is read from its owner's.
+pub fn accept_missing_tombstones(records: &mut Vec<ReadRecord>, stores: &[&Path]) -> usize {
+    let stores: Vec<Store> = stores
+        .iter()
+        .map(|dir| Store::open_read_only(dir).unwrap())
+        .collect();
+    let mut last: BTreeMap<String, u64> = BTreeMap::new();
+    for r in records.iter() {
+        if let Some(v) = &r.value {
+            let rec: serde_json::Value = serde_json::from_slice(v).unwrap();
+            last.insert(r.key.clone(), rec["version"].as_u64().unwrap());
+        }
+    }
+    let mut emptied = Vec::new();
+    for (key, version) in &last {
+        let store = &stores[owner(key, stores.len() as u32) as usize];
+        let id = store.item_id(key).expect("published items are in the store");
+        let stored = store
+            .published(Signal::Rating, id)
+            .unwrap()
+            .expect("a stored list");
+        if stored.neighbors.is_empty() && stored.version == version + 1 {
+            emptied.push(key.clone());
+        }
+    }
+    for key in &emptied {
+        records.push(ReadRecord {
+            key: key.clone(),
+            value: None,
+            headers: BTreeMap::new(),
+        });
+    }
+    emptied.len()
 }
