@@ -34,6 +34,12 @@ impl ShardSpec {
         format!("{group}.shard-{}-of-{}", self.shard, self.shards)
     }
 
+    /// The consumer group whose one-partition lease decides which instance of this shard
+    /// publishes: `<group>.shard-<i>-lease`.
+    pub fn lease_group(&self, group: &str) -> String {
+        format!("{group}.shard-{}-lease", self.shard)
+    }
+
     /// Whether this instance produces dead letters: only shard 0 of a sharded setup
     /// does, so each refused event reaches the dead-letter topic once (every shard counts
     /// it).
@@ -116,6 +122,10 @@ mod tests {
         assert_eq!(
             ShardSpec { shards: 3, shard: 1 }.offsets_group("simtide"),
             "simtide.shard-1-of-3"
+        );
+        assert_eq!(
+            ShardSpec { shards: 3, shard: 1 }.lease_group("simtide"),
+            "simtide.shard-1-lease"
         );
         assert!(ShardSpec::SINGLE.produces_dead_letters());
         assert!(!ShardSpec { shards: 3, shard: 2 }.produces_dead_letters());

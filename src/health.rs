@@ -25,6 +25,8 @@ pub struct Health {
     limits: ReadinessConfig,
     store_error: Mutex<Option<String>>,
     consuming: AtomicBool,
+    /// Whether this instance delivers (false for a standby whose lease another holds).
+    publishing: AtomicBool,
     stopping: AtomicBool,
     /// One sentence per written topic that is missing or could not be checked.
     topic_problems: Mutex<Vec<String>>,
@@ -72,6 +74,9 @@ pub struct Readiness {
     /// engineer reading one answer knows which instance it describes.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub shard: Option<ShardPlace>,
+    /// Whether this instance delivers lists; false for a standby replica, which keeps its
+    /// store current and answers lookups while another instance publishes.
+    pub publishing: bool,
     /// Each check.
     pub checks: Vec<Check>,
 }
@@ -94,6 +99,7 @@ impl Health {
             limits,
             store_error: Mutex::new(None),
             consuming: AtomicBool::new(false),
+            publishing: AtomicBool::new(true),
             stopping: AtomicBool::new(false),
             topic_problems: Mutex::new(vec!["the written topics have not been checked yet".to_string()]),
             failing_deliveries: Mutex::new(BTreeMap::new()),
@@ -103,6 +109,12 @@ impl Health {
     /// Records a failed store write (`Some`) or a good one (`None`).
     pub fn set_store_error(&self, error: Option<String>) {
         *self.store_error.lock().expect("health lock") = error;
+    }
+
+    /// Records whether this instance publishes (it holds the lease, or has none to hold)
+    /// or stands by.
+    pub fn set_publishing(&self, publishing: bool) {
+        self.publishing.store(publishing, Ordering::Relaxed);
     }
 
     /// Records that the consumer holds an assignment and is fetching.
@@ -168,6 +180,7 @@ impl Health {
                 index: self.shard.shard,
                 of: self.shard.shards,
             }),
+            publishing: self.publishing.load(Ordering::Relaxed),
             checks,
         }
     }

@@ -62,6 +62,8 @@ pub mod names {
     pub const PUBLISH_CYCLE_DURATION_SECONDS: &str = "simtide_publish_cycle_duration_seconds";
     /// `simtide_publish_cycles_total`.
     pub const PUBLISH_CYCLES_TOTAL: &str = "simtide_publish_cycles_total";
+    /// `simtide_publishing`.
+    pub const PUBLISHING: &str = "simtide_publishing";
     /// `simtide_ready`.
     pub const READY: &str = "simtide_ready";
     /// `simtide_recenterings_total`.
@@ -144,6 +146,8 @@ pub struct Metrics {
     pub broker_up: IntGauge,
     /// 1 while every readiness check passes.
     pub ready: IntGauge,
+    /// 1 while this instance delivers lists and dead letters; 0 for a standby replica.
+    pub publishing: IntGauge,
     /// Unix time of the last completed publication cycle (process start before the first).
     pub last_publish: Gauge,
     staleness: Gauge,
@@ -332,6 +336,13 @@ impl Metrics {
             .expect("valid")),
             broker_up: r.add(IntGauge::new(names::BROKER_REACHABLE, "1 while a broker answered recently.").expect("valid")),
             ready: r.add(IntGauge::new(names::READY, "1 while every readiness check passes.").expect("valid")),
+            publishing: r.add(
+                IntGauge::new(
+                    names::PUBLISHING,
+                    "1 while this instance delivers lists and dead letters, 0 while it stands by (another instance of its shard holds the lease).",
+                )
+                .expect("valid"),
+            ),
             last_publish: r.add(Gauge::new(
                 names::LAST_PUBLISH_TIMESTAMP_SECONDS,
                 "Unix time at which the last publication cycle completed.",
@@ -380,6 +391,7 @@ impl Metrics {
             m.list_rbo.with_label_values(&[s]);
         }
         m.last_publish.set(now_nanos().as_secs_f64());
+        m.publishing.set(1);
         m
     }
 

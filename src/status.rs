@@ -161,6 +161,12 @@ pub fn render(
     for f in &failing {
         let _ = writeln!(out, "  ! {f}");
     }
+    if readiness["publishing"] == false {
+        let _ = writeln!(
+            out,
+            "  standby      another instance of this shard holds the lease and publishes; this one keeps its store current"
+        );
+    }
     let staleness = after.sum(names::STALENESS_SECONDS, "");
     let since_publish = after.sum(names::LAST_PUBLISH_TIMESTAMP_SECONDS, "");
     let now = crate::timefmt::now_nanos().as_secs_f64();
@@ -336,8 +342,10 @@ mod tests {
                 "simtide_events_total{{kind=\"rating\",outcome=\"applied\",shard=\"2\"}} {applied}\nsimtide_consumer_lag_messages{{partition=\"1\",shard=\"2\"}} 5\nsimtide_staleness_seconds{{shard=\"2\"}} 1.5\n"
             ))
         };
-        let readiness: serde_json::Value =
-            serde_json::from_str(r#"{"ready":true,"shard":{"index":2,"of":3},"checks":[]}"#).unwrap();
+        let readiness: serde_json::Value = serde_json::from_str(
+            r#"{"ready":true,"shard":{"index":2,"of":3},"publishing":false,"checks":[]}"#,
+        )
+        .unwrap();
         let screen = render(
             "http://x:1",
             &readiness,

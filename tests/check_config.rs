@@ -92,6 +92,10 @@ fn bad_values_are_refused_by_key() {
             "cluster.shard is 3, but cluster.shards is 3",
         ),
         ("[cluster]\nshards = 0\n", "cluster.shards must be at least 1"),
+        (
+            "[cluster]\nlease_timeout = \"500ms\"\n",
+            "cluster.lease_timeout must be at least 1s",
+        ),
     ] {
         let file = dir.path().join("c.toml");
         std::fs::write(&file, text).unwrap();

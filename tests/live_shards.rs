@@ -17,10 +17,10 @@ use std::time::Duration;
 
 use common::broker::Broker;
 use common::live::{
-    accept_missing_tombstones, broker_with_topics, caught_up_in, committed_total, csv_events, produce,
-    read_all, wait_for, write_config, LiveSettings, Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
+    accept_missing_tombstones, assert_same_lists, broker_with_topics, caught_up_in, committed_total,
+    csv_events, nonempty_lists, produce, read_all, single_store_lists, wait_for, write_config, LiveSettings,
+    Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
 };
-use common::Settings;
 use simtide::cluster::{owner, ShardSpec};
 use simtide::signal::Signal;
 use simtide::store::Store;
@@ -89,20 +89,6 @@ fn shards(work: &Path, broker: &Broker) -> Vec<Shard> {
                 port,
                 store,
             }
-        })
-        .collect()
-}
-
-/// The neighbors of every non-empty list, by item: from the output topic's last record
-/// per key, or from `simtide export` of a store.
-fn neighbors_by_item(lines: impl Iterator<Item = serde_json::Value>) -> BTreeMap<String, serde_json::Value> {
-    lines
-        .filter(|rec| !rec["neighbors"].as_array().unwrap().is_empty())
-        .map(|rec| {
-            (
-                rec["item"].as_str().unwrap().to_string(),
-                rec["neighbors"].clone(),
-            )
         })
         .collect()
 }
@@ -278,41 +264,17 @@ fn three_live_shards_publish_exactly_the_single_store_lists_through_a_kill() {
             }
         }
     }
-    let from_topic = neighbors_by_item(
+    let from_topic = nonempty_lists(
         last.values()
             .flatten()
             .map(|v| serde_json::from_slice::<serde_json::Value>(v).unwrap()),
     );
-    let single = work.path().join("single");
-    common::backfill(
-        &single,
-        &[&slice],
-        &common::config(Settings {
-            tolerance: DEFAULT_TOLERANCE,
-            batch_events: 5_000,
-            ..Settings::EXACT
-        }),
-    );
-    let expected = neighbors_by_item(
-        common::export_without_times(&single, &work.path().join("single.jsonl")).into_iter(),
-    );
+    let expected = single_store_lists(work.path(), &slice, DEFAULT_TOLERANCE);
     eprintln!(
         "{} lists from the three shards ({missing} tombstones not returned by the broker), {} in the single store",
         from_topic.len(),
         expected.len()
     );
     assert!(expected.len() > 1000, "only {} lists", expected.len());
-    let differing: Vec<&String> = expected
-        .keys()
-        .chain(from_topic.keys())
-        .filter(|item| expected.get(*item) != from_topic.get(*item))
-        .collect();
-    assert!(
-        differing.is_empty(),
-        "{} lists differ, first {:?}: single {:?} vs shards {:?}",
-        differing.len(),
-        differing[0],
-        expected.get(differing[0]),
-        from_topic.get(differing[0])
-    );
+    assert_same_lists(&expected, &from_topic);
 }

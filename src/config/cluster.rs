@@ -1,8 +1,11 @@
 //! `[cluster]`: which item shard this instance is (docs/design.md, "Shards").
 
+use std::time::Duration;
+
 use anyhow::{bail, Result};
 use serde::{Deserialize, Serialize};
 
+use super::duration_text;
 use crate::cluster::{host_ordinal, ShardSpec};
 
 /// `[cluster]`: how many instances share the items, and which one this is.
@@ -14,13 +17,26 @@ pub struct ClusterConfig {
     /// This instance's index (0-based). When unset with more than one shard, taken from
     /// the ordinal at the end of the host name, as a Kubernetes StatefulSet names pods.
     pub shard: Option<u32>,
+    /// A one-partition topic whose consumer-group lease decides which of the instances
+    /// of this shard publishes (standby replicas); empty: this instance publishes alone.
+    pub lease_topic: String,
+    /// How long the lease outlives a holder that stopped answering: the session timeout
+    /// of the lease group, and so the failover time after a crash.
+    #[serde(with = "duration_text")]
+    pub lease_timeout: Duration,
 }
+
+/// Shortest `cluster.lease_timeout`: librdkafka heartbeats every third of it, and a
+/// shorter session would expire on an ordinary pause.
+const SHORTEST_LEASE_TIMEOUT: Duration = Duration::from_secs(1);
 
 impl Default for ClusterConfig {
     fn default() -> Self {
         ClusterConfig {
             shards: 1,
             shard: None,
+            lease_topic: String::new(),
+            lease_timeout: Duration::from_secs(10),
         }
     }
 }
@@ -42,6 +58,13 @@ impl ClusterConfig {
                 );
             };
             self.shard = Some(ordinal);
+        }
+        if self.lease_timeout < SHORTEST_LEASE_TIMEOUT {
+            bail!(
+                "cluster.lease_timeout must be at least {:?}, got {:?}",
+                SHORTEST_LEASE_TIMEOUT,
+                self.lease_timeout
+            );
         }
         if let Some(shard) = self.shard {
             if shard >= self.shards {
@@ -69,7 +92,11 @@ mod tests {
     use super::*;
 
     fn resolved(shards: u32, shard: Option<u32>, host: Option<&str>) -> Result<ShardSpec> {
-        let mut c = ClusterConfig { shards, shard };
+        let mut c = ClusterConfig {
+            shards,
+            shard,
+            ..ClusterConfig::default()
+        };
         c.resolve(host)?;
         Ok(c.spec())
     }

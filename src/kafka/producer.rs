@@ -4,7 +4,7 @@
 //! caller only records as delivered what really was; [`RecordProducer::send`] lets the
 //! caller work while the broker answers.
 
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::{Duration, Instant};
 
@@ -92,6 +92,8 @@ pub struct RecordProducer {
     producer: ThreadedProducer<DeliveryContext>,
     acks: Arc<Acks>,
     serial: Mutex<()>,
+    /// Whether records are withheld instead of sent ([`RecordProducer::set_muted`]).
+    muted: AtomicBool,
 }
 
 /// What became of a set of records.
@@ -99,6 +101,8 @@ pub struct RecordProducer {
 pub struct DeliveryReport {
     /// Indexes of records the broker did not acknowledge, with the reason.
     pub failed: Vec<(usize, String)>,
+    /// The producer was muted (a standby): nothing was sent, nothing failed.
+    pub withheld: bool,
 }
 
 impl DeliveryReport {
@@ -128,7 +132,17 @@ impl RecordProducer {
             producer,
             acks,
             serial: Mutex::new(()),
+            muted: AtomicBool::new(false),
         })
+    }
+
+    /// Mutes or unmutes the producer. A muted producer sends nothing and reports every
+    /// record withheld (a standby instance, docs/design.md "Standby replicas"). Returns
+    /// only after a sending in flight has been settled, so once a mute returns nothing
+    /// more reaches the broker.
+    pub fn set_muted(&self, muted: bool) {
+        let _no_sending = self.serial.lock().expect("producer call lock");
+        self.muted.store(muted, Ordering::Release);
     }
 
     /// Produces every record and waits up to `timeout` for the broker's answers
@@ -142,6 +156,16 @@ impl RecordProducer {
     /// first to be settled.
     pub fn send(&self, records: &[OutRecord], timeout: Duration) -> Sending<'_> {
         let guard = self.serial.lock().expect("producer call lock");
+        if self.muted.load(Ordering::Acquire) {
+            return Sending {
+                producer: self,
+                _one_at_a_time: guard,
+                deadline: Instant::now(),
+                failed: Vec::new(),
+                not_sent: vec![true; records.len()],
+                withheld: true,
+            };
+        }
         let generation = self.acks.generation.fetch_add(1, Ordering::AcqRel) + 1;
         self.acks.state.lock().expect("ack lock").answered = vec![None; records.len()];
         let deadline = Instant::now() + timeout;
@@ -185,6 +209,7 @@ impl RecordProducer {
             deadline,
             failed,
             not_sent,
+            withheld: false,
         }
     }
 }
@@ -196,6 +221,8 @@ pub struct Sending<'a> {
     deadline: Instant,
     failed: Vec<(usize, String)>,
     not_sent: Vec<bool>,
+    /// Nothing was sent: the producer is muted.
+    withheld: bool,
 }
 
 impl Sending<'_> {
@@ -203,6 +230,12 @@ impl Sending<'_> {
     /// then are reported failed, those not yet sent are withdrawn, the ones already in
     /// flight may still arrive (every record simtide produces is safe to see twice).
     pub fn settle(self) -> DeliveryReport {
+        if self.withheld {
+            return DeliveryReport {
+                failed: Vec::new(),
+                withheld: true,
+            };
+        }
         let producer = self.producer;
         let left = self.deadline.saturating_duration_since(Instant::now());
         // A flush that times out leaves the unanswered records to be reported below. The
@@ -212,7 +245,10 @@ impl Sending<'_> {
         if producer.producer.flush(left).is_err() {
             producer.producer.purge(PurgeConfig::default().queue());
         }
-        let mut report = DeliveryReport { failed: self.failed };
+        let mut report = DeliveryReport {
+            failed: self.failed,
+            withheld: false,
+        };
         let state = producer.acks.state.lock().expect("ack lock");
         for (index, answer) in state.answered.iter().enumerate() {
             if self.not_sent[index] {

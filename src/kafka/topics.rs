@@ -25,6 +25,17 @@ fn written_topics(kafka: &KafkaConfig) -> [(&str, bool); 3] {
     ]
 }
 
+/// The topics [`ensure_topics`] sees to: the written ones (`kafka.topic_partitions`
+/// partitions) and the lease topic, if any, which must have one partition (its holder is
+/// the one instance that publishes). Each with whether it is compacted and its partitions.
+fn needed_topics<'a>(kafka: &'a KafkaConfig, lease_topic: Option<&'a str>) -> Vec<(&'a str, bool, i32)> {
+    written_topics(kafka)
+        .into_iter()
+        .map(|(topic, compacted)| (topic, compacted, kafka.topic_partitions))
+        .chain(lease_topic.map(|topic| (topic, false, 1)))
+        .collect()
+}
+
 /// What one check of the topics found, one sentence per finding, each with its topic.
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct TopicCheck {
@@ -49,9 +60,14 @@ fn admin_options() -> AdminOptions {
         .request_timeout(Some(ADMIN_TIMEOUT))
 }
 
-/// Creates missing written topics (when `kafka.create_topics`) and reports the ones still
-/// missing. An error means the topics could not be listed at all (no broker answered).
-pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<TopicCheck> {
+/// Creates missing written topics and the lease topic (when `kafka.create_topics`) and
+/// reports the ones still missing. An error means the topics could not be listed at all
+/// (no broker answered).
+pub async fn ensure_topics(
+    kafka: &KafkaConfig,
+    lease_topic: Option<&str>,
+    bus: &BusContext,
+) -> Result<TopicCheck> {
     let admin = admin_client(kafka, bus)?;
     let probe: BaseConsumer<BusContext> = base_config(kafka)
         .create_with_context(bus.clone())
@@ -79,7 +95,7 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<Topi
         ));
     }
     let options = admin_options();
-    for (topic, compacted) in written_topics(&kafka_owned) {
+    for (topic, compacted, partitions) in needed_topics(&kafka_owned, lease_topic) {
         if existing.iter().any(|t| t == topic) {
             continue;
         }
@@ -89,6 +105,8 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<Topi
                 "topic {topic} does not exist and kafka.create_topics is off: create it{}",
                 if compacted {
                     " with cleanup.policy=compact"
+                } else if partitions == 1 {
+                    " with one partition"
                 } else {
                     ""
                 }
@@ -97,7 +115,7 @@ pub async fn ensure_topics(kafka: &KafkaConfig, bus: &BusContext) -> Result<Topi
         }
         let mut new = NewTopic::new(
             topic,
-            kafka_owned.topic_partitions,
+            partitions,
             TopicReplication::Fixed(kafka_owned.topic_replication),
         );
         if compacted {

@@ -441,6 +441,10 @@ impl Core {
                 })
                 .collect();
             let report = self.deliver(&records);
+            if report.withheld {
+                // A standby republishes when it gains the lease.
+                return Ok(true);
+            }
             if !report.all_delivered() {
                 Observation::RepublishIncomplete {
                     undelivered: report.failed.len(),

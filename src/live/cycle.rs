@@ -60,8 +60,12 @@ pub fn list_record(
     }
 }
 
-/// Tells readiness, per topic of `records`, whether the broker took them.
+/// Tells readiness, per topic of `records`, whether the broker took them (nothing when a
+/// standby withheld them).
 pub fn note_delivery(health: &Health, records: &[OutRecord], report: &DeliveryReport) {
+    if report.withheld {
+        return;
+    }
     let mut outcome: BTreeMap<&str, Option<&str>> =
         records.iter().map(|r| (r.topic.as_str(), None)).collect();
     for (i, reason) in &report.failed {
@@ -261,6 +265,13 @@ impl CycleRun {
             changed,
             records,
         } = chunk;
+        if report.withheld {
+            // A standby: the lists are stored, not delivered, as a backfill's are; the
+            // instance republishes every list when it gains the lease.
+            self.store
+                .write_publications(&writes, Delivery::StoredOnly, now)?;
+            return Ok(true);
+        }
         note_delivery(&self.health, &records, &report);
         let mut failed = vec![false; changed.len()];
         for (k, _) in &report.failed {

@@ -16,6 +16,7 @@ pub mod core;
 mod cycle;
 pub mod handover;
 pub mod latency;
+mod lease_role;
 pub mod positions;
 pub mod segment;
 
@@ -30,6 +31,7 @@ use anyhow::Result;
 use tokio::sync::Semaphore;
 
 use self::core::{Core, Flushed, RunCounters};
+use self::lease_role::PublishingRole;
 use self::positions::StorePositions;
 use crate::config::secrets::Scrubber;
 use crate::config::Config;
@@ -38,6 +40,7 @@ use crate::health::Health;
 use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
 use crate::kafka::group::{GroupConsumer, Membership};
+use crate::kafka::lease::{Lease, LeaseTerms};
 use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::producer::RecordProducer;
 use crate::kafka::topics::{compaction_warnings, ensure_topics};
@@ -174,11 +177,12 @@ const TOPIC_CHECK_FIRST_WAIT: Duration = Duration::from_secs(1);
 /// checks once every topic exists (a topic deleted under a running service is noticed).
 const TOPIC_CHECK_MAX_WAIT: Duration = Duration::from_secs(30);
 
-/// Checks (and where allowed creates) the written topics until all exist, then again every
-/// [`TOPIC_CHECK_MAX_WAIT`], keeping the readiness check current; once they all exist,
-/// checks once that the list topics are compacted. Ends at shutdown.
+/// Checks (and where allowed creates) the written topics and the lease topic until all
+/// exist, then again every [`TOPIC_CHECK_MAX_WAIT`], keeping the readiness check current;
+/// once they all exist, checks once that the list topics are compacted. Ends at shutdown.
 async fn keep_topics_checked(
     kafka: crate::config::KafkaConfig,
+    lease_topic: Option<String>,
     bus: BusContext,
     health: Arc<Health>,
     metrics: Arc<Metrics>,
@@ -187,9 +191,12 @@ async fn keep_topics_checked(
     let mut backoff = Backoff::new(TOPIC_CHECK_FIRST_WAIT, TOPIC_CHECK_MAX_WAIT);
     let mut compaction_checked = false;
     while !shutdown.is_begun() {
-        let checked = tokio::time::timeout(TOPIC_CHECK_MAX_WAIT, ensure_topics(&kafka, &bus))
-            .await
-            .unwrap_or_else(|_| Err(anyhow::anyhow!("no answer within {TOPIC_CHECK_MAX_WAIT:?}")));
+        let checked = tokio::time::timeout(
+            TOPIC_CHECK_MAX_WAIT,
+            ensure_topics(&kafka, lease_topic.as_deref(), &bus),
+        )
+        .await
+        .unwrap_or_else(|_| Err(anyhow::anyhow!("no answer within {TOPIC_CHECK_MAX_WAIT:?}")));
         let (problems, created) = match checked {
             Ok(found) => {
                 for (topic, problem) in found.missing.iter().chain(&found.warnings) {
@@ -249,6 +256,37 @@ pub struct Service {
     in_sync: bool,
     /// With `--stop-at-end`: the input's end offsets at start.
     stop_at: Option<BTreeMap<i32, i64>>,
+    /// The publishing lease, with `cluster.lease_topic`; released after the last
+    /// publication at shutdown.
+    lease: Option<Lease>,
+}
+
+/// With `cluster.lease_topic`: stands by (nothing produced) and joins the lease group,
+/// which decides when this instance publishes.
+fn join_lease(
+    config: &Config,
+    bus: &BusContext,
+    producer: &Arc<RecordProducer>,
+    admin: &Arc<AdminRequests>,
+    health: &Arc<Health>,
+    metrics: &Arc<Metrics>,
+) -> Result<Option<Lease>> {
+    if config.cluster.lease_topic.is_empty() {
+        return Ok(None);
+    }
+    let role = PublishingRole {
+        producer: producer.clone(),
+        admin: admin.clone(),
+        health: health.clone(),
+        metrics: metrics.clone(),
+    };
+    role.stand_by();
+    let terms = LeaseTerms {
+        topic: config.cluster.lease_topic.clone(),
+        group: config.cluster.spec().lease_group(&config.kafka.group),
+        timeout: config.cluster.lease_timeout,
+    };
+    Ok(Some(Lease::join(&config.kafka, bus.clone(), &terms, role)?))
 }
 
 /// Opens the store, starts HTTP, the probes and (with [`SignalHandling::Listen`]) the
@@ -293,6 +331,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
     // start-up; until every written topic exists, readiness names the missing ones.
     runtime.spawn(keep_topics_checked(
         config.kafka.clone(),
+        Some(config.cluster.lease_topic.clone()).filter(|t| !t.is_empty()),
         bus.clone(),
         health.clone(),
         metrics.clone(),
@@ -315,6 +354,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
     };
 
     let producer = Arc::new(RecordProducer::new(&config.kafka, bus.clone())?);
+    let lease = join_lease(config, &bus, &producer, &admin, &health, &metrics)?;
     let core = Arc::new(Mutex::new(Core::new(
         store,
         config,
@@ -362,6 +402,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         admin,
         in_sync,
         stop_at,
+        lease,
     })
 }
 
@@ -517,9 +558,15 @@ impl Service {
             c.report(self.started.elapsed().as_secs_f64())
         };
         let Service {
-            runtime, consumer, ..
+            runtime,
+            consumer,
+            lease,
+            ..
         } = self;
         drop(consumer);
+        if let Some(lease) = lease {
+            lease.release();
+        }
         runtime.shutdown_background();
         Ok(report)
     }

@@ -527,3 +527,56 @@ pub fn accept_missing_tombstones(records: &mut Vec<ReadRecord>, stores: &[&Path]
     }
     emptied.len()
 }
+
+/// The non-empty lists among `records` (topic values or export lines), by item: each
+/// item's neighbors as published.
+pub fn nonempty_lists(
+    records: impl Iterator<Item = serde_json::Value>,
+) -> BTreeMap<String, serde_json::Value> {
+    records
+        .filter(|rec| !rec["neighbors"].as_array().unwrap().is_empty())
+        .map(|rec| {
+            (
+                rec["item"].as_str().unwrap().to_string(),
+                rec["neighbors"].clone(),
+            )
+        })
+        .collect()
+}
+
+/// The non-empty lists of one store (holding every item) backfilled from `slice` at
+/// recenter tolerance `tolerance`, built under `work`: what the live instances must add
+/// up to.
+pub fn single_store_lists(work: &Path, slice: &Path, tolerance: f64) -> BTreeMap<String, serde_json::Value> {
+    let single = work.join("single");
+    super::backfill(
+        &single,
+        &[slice],
+        &super::config(super::Settings {
+            tolerance,
+            batch_events: 5_000,
+            ..super::Settings::EXACT
+        }),
+    );
+    nonempty_lists(super::export_without_times(&single, &work.join("single.jsonl")).into_iter())
+}
+
+/// Asserts that two sets of lists are equal item for item, naming the first difference.
+pub fn assert_same_lists(
+    expected: &BTreeMap<String, serde_json::Value>,
+    got: &BTreeMap<String, serde_json::Value>,
+) {
+    let differing: Vec<&String> = expected
+        .keys()
+        .chain(got.keys())
+        .filter(|item| expected.get(*item) != got.get(*item))
+        .collect();
+    assert!(
+        differing.is_empty(),
+        "{} lists differ, first {:?}: expected {:?}, got {:?}",
+        differing.len(),
+        differing[0],
+        expected.get(differing[0]),
+        got.get(differing[0])
+    );
+}
