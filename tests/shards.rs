@@ -321,6 +321,50 @@ fn three_shards_resharded_into_two_equal_two_shards_built_directly() {
 }
 
 #[test]
+fn one_store_resharded_into_three_equals_three_shards_built_directly() {
+    let dir = tempfile::tempdir().unwrap();
+    let stages = stages(dir.path());
+    let settings = Settings {
+        tolerance: 0.05,
+        batch_events: 2_500,
+        ..Settings::EXACT
+    };
+    let one = [dir.path().join("one")];
+    let direct: Vec<PathBuf> = (0..3).map(|i| dir.path().join(format!("direct-{i}"))).collect();
+    let rebuilt: Vec<PathBuf> = (0..3).map(|i| dir.path().join(format!("rebuilt-{i}"))).collect();
+    backfill_shards(&one, &stages[0], settings);
+    backfill_shards(&direct, &stages[0], settings);
+    for (j, target) in rebuilt.iter().enumerate() {
+        reshard(&one, target, &sharded(common::config(settings), j as u32)).expect("reshard 1 → 3");
+    }
+    for (stage, files) in [(0, None), (1, Some(&stages[1]))] {
+        if let Some(files) = files {
+            backfill_shards(&rebuilt, files, settings);
+            backfill_shards(&direct, files, settings);
+        }
+        for j in 0..3 {
+            let want = lists(&direct[j], &dir.path().join("want.jsonl"));
+            let got = lists(&rebuilt[j], &dir.path().join("got.jsonl"));
+            assert!(want.len() > 300, "stage {stage}, shard {j}: {} lists", want.len());
+            assert!(got == want, "stage {stage}, shard {j}: resharded lists differ");
+        }
+    }
+    for j in 0..3 {
+        let (a, b) = (
+            Store::open_read_only(&rebuilt[j]).unwrap(),
+            Store::open_read_only(&direct[j]).unwrap(),
+        );
+        for item in 0..a.item_count() as u32 {
+            assert_eq!(
+                a.rating_row(item).unwrap(),
+                b.rating_row(item).unwrap(),
+                "shard {j}, row {item}"
+            );
+        }
+    }
+}
+
+#[test]
 fn resharding_refuses_an_incomplete_or_uneven_set_of_shards() {
     let dir = tempfile::tempdir().unwrap();
     let stages = stages(dir.path());
