@@ -27,3 +27,4 @@ bench: setup-test
 	bash scripts/bench.sh
 	$(CARGO) bench --locked --bench live_throughput
 	$(CARGO) bench --locked --bench http_lookups
+	$(CARGO) bench --locked --bench shard_scaling

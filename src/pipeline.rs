@@ -14,7 +14,9 @@ use crate::decode::RejectReason;
 use crate::engine::segment::SegmentEffects;
 use crate::engine::tally::EventTally;
 use crate::engine::user_state::UserState;
-use crate::engine::{apply_batch, Action, BatchEffects, EngineSettings, ItemStatus, Sequenced};
+use crate::engine::{
+    apply_batch, apply_batch_for_shard, Action, BatchEffects, EngineSettings, ItemStatus, Sequenced,
+};
 use crate::event::{Event, EventBody};
 use crate::store::{BatchCommit, Ledger, PairWrite, Store};
 use crate::timefmt::now_nanos;
@@ -247,15 +249,22 @@ impl Pending {
         self.state_bytes += loaded.values().map(UserState::approx_bytes).sum::<usize>();
         self.states.extend(loaded);
         self.statuses.extend(store.load_statuses(&status_items)?);
-        let mut effects = apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses);
         if self.shard.is_sharded() {
             self.note_new_owners();
-            let (stored, new_owned) = (store.item_count() as u32, &self.new_owned);
-            effects.keep_shard(|item| match item.checked_sub(stored) {
-                None => store.owns(item),
-                Some(new) => new_owned[new as usize],
-            });
         }
+        let (stored, new_owned) = (store.item_count() as u32, &self.new_owned);
+        let owns = |item: u32| match item.checked_sub(stored) {
+            None => store.owns(item),
+            Some(new) => new_owned[new as usize],
+        };
+        let effects = if self.shard.is_sharded() {
+            let mut effects =
+                apply_batch_for_shard(settings, &sequenced, &mut self.states, &mut self.statuses, &owns);
+            effects.keep_shard(owns);
+            effects
+        } else {
+            apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses)
+        };
         // Each event adds at most one entry to a history (plus its share of a new user).
         self.state_bytes += sequenced.len() * PENDING_EVENT_STATE_BYTES;
 

@@ -35,23 +35,28 @@ struct Occurrence {
     sign: i64,
 }
 
-/// Deltas of every pair the sets touch, as (lo, hi, delta) sorted by (lo, hi), zero deltas
-/// left out, and the number of pair contributions summed.
+/// Deltas of every pair the sets touch with at least one item `kept` accepts, as (lo, hi,
+/// delta) sorted by (lo, hi), zero deltas left out, and the number of pair contributions
+/// summed. An item shard keeps only pairs touching its items; skipping the others here,
+/// rather than after summing, spares their sums.
 pub fn aggregate_pairs<T: Copy + Sync, S: PairSum<T> + Send>(
     sets: &[ContributionSet<T>],
+    kept: &dyn Fn(u32) -> bool,
 ) -> (Vec<(u32, u32, S)>, u64) {
-    aggregate_pairs_sharing(sets, sharing_threads)
+    aggregate_pairs_sharing(sets, kept, sharing_threads)
 }
 
 /// [`aggregate_pairs`] with the rows shared among `threads(work)` threads, `work` being
 /// the partner scans the batch needs.
 fn aggregate_pairs_sharing<T: Copy + Sync, S: PairSum<T> + Send>(
     sets: &[ContributionSet<T>],
+    kept: &dyn Fn(u32) -> bool,
     threads: fn(u64) -> usize,
 ) -> (Vec<(u32, u32, S)>, u64) {
     let mut items: Vec<u32> = sets.iter().flat_map(|s| s.items.iter().copied()).collect();
     items.sort_unstable();
     items.dedup();
+    let kept: Vec<bool> = items.iter().map(|&item| kept(item)).collect();
     let local = |item: u32| items.binary_search(&item).expect("item of a set") as u32;
 
     let mut flat: Vec<FlatItem<T>> = Vec::with_capacity(sets.iter().map(|s| s.items.len()).sum());
@@ -90,6 +95,7 @@ fn aggregate_pairs_sharing<T: Copy + Sync, S: PairSum<T> + Send>(
 
     let index = PartnerIndex {
         items: &items,
+        kept: &kept,
         starts: &starts,
         occurrences: &occurrences,
         flat: &flat,
@@ -136,6 +142,8 @@ fn sharing_threads(work: u64) -> usize {
 /// The flattened sets and where each item occurs in them: what summing a row reads.
 struct PartnerIndex<'a, T> {
     items: &'a [u32],
+    /// Whether pairs of each local item are summed whatever their partner.
+    kept: &'a [bool],
     starts: &'a [usize],
     occurrences: &'a [Occurrence],
     flat: &'a [FlatItem<T>],
@@ -188,8 +196,9 @@ impl<T: Copy> PartnerIndex<'_, T> {
             for occ in &self.occurrences[self.starts[a]..self.starts[a + 1]] {
                 let (at, end) = (occ.at as usize, occ.set_end as usize);
                 let this = &self.flat[at];
+                let row_kept = self.kept[a];
                 for b in &self.flat[at + 1..end] {
-                    if this.changed || b.changed {
+                    if (this.changed || b.changed) && (row_kept || self.kept[b.local as usize]) {
                         let bl = b.local as usize;
                         if !touched[bl] {
                             touched[bl] = true;
@@ -247,7 +256,7 @@ mod tests {
         let after = vec![(1, 2), (3, 7), (6, -2), (8, 1), (9, 3)];
         for all in [false, true] {
             let sets = difference(&before, &after, all).unwrap();
-            let (deltas, updates) = aggregate_pairs::<i64, Products>(&sets);
+            let (deltas, updates) = aggregate_pairs::<i64, Products>(&sets, &|_| true);
             assert_eq!(updates, sets[0].pair_count() + sets[1].pair_count());
             let keys: Vec<(u32, u32)> = deltas.iter().map(|d| (d.0, d.1)).collect();
             let mut sorted = keys.clone();
@@ -287,14 +296,29 @@ mod tests {
             after.dedup_by_key(|e| e.0);
             sets.extend(difference(&state, &after, next(2) == 0).unwrap());
         }
-        let whole = aggregate_pairs_sharing::<i64, Products>(&sets, |_| 1);
+        let whole = aggregate_pairs_sharing::<i64, Products>(&sets, &|_| true, |_| 1);
         assert!(whole.0.len() > 1_000, "enough pairs to split: {}", whole.0.len());
         let sharings: [fn(u64) -> usize; 4] = [|_| 2, |_| 3, |_| 5, |_| 64];
         for (k, threads) in sharings.into_iter().enumerate() {
             assert_eq!(
-                aggregate_pairs_sharing::<i64, Products>(&sets, threads),
+                aggregate_pairs_sharing::<i64, Products>(&sets, &|_| true, threads),
                 whole,
                 "sharing {k}"
+            );
+        }
+        // A shard's filter sums exactly the pairs touching its items, with their full sums,
+        // on one thread or several.
+        let owns = |item: u32| item % 3 == 1;
+        let mut touching = whole.0.clone();
+        touching.retain(|&(a, b, _)| owns(a) || owns(b));
+        assert!(touching.len() < whole.0.len() && !touching.is_empty());
+        for threads in [(|_| 1) as fn(u64) -> usize, |_| 3] {
+            let (kept, updates) = aggregate_pairs_sharing::<i64, Products>(&sets, &owns, threads);
+            assert_eq!(kept, touching);
+            assert!(
+                updates < whole.1,
+                "fewer contributions summed: {updates} of {}",
+                whole.1
             );
         }
     }
@@ -304,7 +328,7 @@ mod tests {
         let u1 = difference(&[], &[(2, 1), (4, 1)], false).unwrap();
         let u2 = difference(&[], &[(2, 3), (4, 5), (7, 1)], false).unwrap();
         let sets: Vec<_> = u1.into_iter().chain(u2).collect();
-        let (deltas, _) = aggregate_pairs::<i64, Products>(&sets);
+        let (deltas, _) = aggregate_pairs::<i64, Products>(&sets, &|_| true);
         assert_eq!(
             deltas,
             vec![

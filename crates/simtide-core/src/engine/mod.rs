@@ -251,6 +251,20 @@ pub fn apply_batch(
     users: &mut HashMap<u32, UserState>,
     statuses: &mut HashMap<u32, ItemStatus>,
 ) -> BatchEffects {
+    apply_batch_for_shard(settings, events, users, statuses, &|_| true)
+}
+
+/// [`apply_batch`] for an item shard owning the items `owns` accepts: the pair sums of
+/// pairs touching none of them are not computed (what [`BatchEffects::keep_shard`] would
+/// drop), which spares a shard the summing of other shards' pairs; the effects still
+/// need [`BatchEffects::keep_shard`] for their marks.
+pub fn apply_batch_for_shard(
+    settings: &EngineSettings,
+    events: &[Sequenced],
+    users: &mut HashMap<u32, UserState>,
+    statuses: &mut HashMap<u32, ItemStatus>,
+    owns: &dyn Fn(u32) -> bool,
+) -> BatchEffects {
     let mut fx = BatchEffects::default();
     let mut before: FxHashMap<u32, (Contribution, f64)> = FxHashMap::default();
     for ev in events {
@@ -289,8 +303,8 @@ pub fn apply_batch(
         settle_user(settings, state, old, old_center, &mut sets, &mut fx);
     }
     fx.touched_users = touched;
-    let (rating_pairs, rating_updates) = aggregate_pairs::<Deviation, RatingPairDelta>(&sets.ratings);
-    let (co_pairs, purchase_updates) = aggregate_pairs::<(), CoBuyers>(&sets.purchases);
+    let (rating_pairs, rating_updates) = aggregate_pairs::<Deviation, RatingPairDelta>(&sets.ratings, owns);
+    let (co_pairs, purchase_updates) = aggregate_pairs::<(), CoBuyers>(&sets.purchases, owns);
     let mut buyers: BTreeMap<u32, i64> = BTreeMap::new();
     for set in &sets.purchases {
         for (item, _) in set.items.iter().zip(&set.changed).filter(|(_, c)| **c) {
