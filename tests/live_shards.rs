@@ -278,3 +278,99 @@ fn three_live_shards_publish_exactly_the_single_store_lists_through_a_kill() {
     assert!(expected.len() > 1000, "only {} lists", expected.len());
     assert_same_lists(&expected, &from_topic);
 }
+
+/// The next offset of every partition of the input topic.
+fn high_watermarks(brokers: &str) -> BTreeMap<i32, i64> {
+    use rdkafka::consumer::{BaseConsumer, Consumer};
+    let client: BaseConsumer = rdkafka::ClientConfig::new()
+        .set("bootstrap.servers", brokers)
+        .create()
+        .unwrap();
+    (0..3)
+        .map(|p| {
+            let (_, high) = client
+                .fetch_watermarks(INPUT, p, Duration::from_secs(10))
+                .unwrap();
+            (p, high)
+        })
+        .collect()
+}
+
+/// The resharding procedure's first step with producers still running: shards given the
+/// same `--stop-at-offsets` stop exactly there, whatever their batches, so `simtide
+/// reshard` accepts their stores.
+#[test]
+fn shards_stopped_at_the_same_offsets_hold_the_same_positions_and_reshard() {
+    let work = tempfile::tempdir().unwrap();
+    let broker = broker_with_topics();
+    let slice = common::movielens_slice(6_000, &work.path().join("slice.csv"));
+    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, 6_000)
+        .into_iter()
+        .map(|(k, v, _)| (k, v, None))
+        .collect();
+    let (first, rest) = records.split_at(4_000);
+    produce(&broker.bootstrap(), INPUT, first);
+    // Stop two thirds of the way into what is there now; more arrives while they run.
+    let stop: BTreeMap<i32, i64> = high_watermarks(&broker.bootstrap())
+        .into_iter()
+        .map(|(p, high)| (p, high * 2 / 3))
+        .collect();
+    let list = stop
+        .iter()
+        .map(|(p, o)| format!("{p}:{o}"))
+        .collect::<Vec<_>>()
+        .join(",");
+    let stores: Vec<PathBuf> = (0..2).map(|i| work.path().join(format!("shard-{i}"))).collect();
+    let mut configs = Vec::new();
+    let services: Vec<Service> = (0..2u32)
+        .map(|shard| {
+            let (config, port) = write_config(
+                work.path(),
+                &broker.bootstrap(),
+                &stores[shard as usize],
+                &LiveSettings {
+                    tolerance: DEFAULT_TOLERANCE,
+                    // Different batch sizes: the stop does not depend on them.
+                    batch_events: 300 + 700 * shard as usize,
+                    ..LiveSettings::default()
+                },
+            );
+            configs.push(config.clone());
+            let index = shard.to_string();
+            Service::start_with_env(
+                &config,
+                port,
+                &["--stop-at-offsets", &list],
+                &[
+                    ("SIMTIDE_CLUSTER__SHARDS", "2"),
+                    ("SIMTIDE_CLUSTER__SHARD", index.as_str()),
+                ],
+            )
+        })
+        .collect();
+    produce(&broker.bootstrap(), INPUT, rest);
+    for (shard, service) in services.into_iter().enumerate() {
+        let (status, report) = service.wait_exit(CATCH_UP);
+        assert!(status.success(), "shard {shard}: {status}\n{report}");
+    }
+    let expected: u64 = stop.values().map(|&o| o as u64).sum();
+    for (shard, dir) in stores.iter().enumerate() {
+        let store = Store::open_read_only(dir).unwrap();
+        let ledger = store.ledger();
+        assert_eq!(ledger.offsets[INPUT], stop, "shard {shard}'s positions");
+        assert_eq!(ledger.events["rating/applied"], expected, "shard {shard}");
+    }
+    let merged = work.path().join("merged");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["reshard", "--from"])
+        .arg(&stores[0])
+        .arg("--from")
+        .arg(&stores[1])
+        .arg("--to")
+        .arg(&merged)
+        .args(["--shards", "1", "--shard", "0", "--config"])
+        .arg(&configs[0])
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+}

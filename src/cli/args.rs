@@ -122,8 +122,13 @@ pub struct RunArgs {
     /// Consume up to the input topic's end offsets as they are at start, write, publish and
     /// exit 0 (for one instance that holds every partition, e.g. to bring stores to the
     /// same positions).
-    #[arg(long)]
+    #[arg(long, conflicts_with = "stop_at_offsets")]
     pub stop_at_end: bool,
+    /// Consume exactly up to these next offsets (PARTITION:OFFSET,…; nothing from an
+    /// unlisted partition), write, publish and exit 0: shards given the same list stop at
+    /// the same positions while producers go on (resharding).
+    #[arg(long, value_name = "LIST")]
+    pub stop_at_offsets: Option<String>,
 }
 
 /// The flags of `simtide status`.

@@ -8,7 +8,7 @@ use anyhow::{Context, Result};
 use super::args::RunArgs;
 use simtide::config::Config;
 use simtide::live::handover::{parse_offsets, StartRequest};
-use simtide::live::{run_service, RunOptions, SignalHandling};
+use simtide::live::{run_service, RunOptions, SignalHandling, StopAt};
 use simtide::shutdown::Shutdown;
 use simtide::timefmt::parse_event_time;
 
@@ -20,14 +20,18 @@ pub fn run(args: RunArgs, config: Config, out: &mut dyn Write) -> Result<()> {
                 .with_context(|| format!("--start-at {text:?}: expected RFC 3339"))?
                 .to_millis(),
         )),
-        (None, Some(text)) => Some(StartRequest::Offsets(parse_offsets(&text)?)),
+        (None, Some(text)) => Some(StartRequest::Offsets(parse_offsets("--start-offsets", &text)?)),
         (None, None) => None,
     };
     let options = RunOptions {
         store_dir: args.store,
         start,
         signals: SignalHandling::Listen,
-        stop_at_end: args.stop_at_end,
+        stop: match (args.stop_at_end, args.stop_at_offsets) {
+            (true, _) => Some(StopAt::End),
+            (false, Some(text)) => Some(StopAt::Offsets(parse_offsets("--stop-at-offsets", &text)?)),
+            (false, None) => None,
+        },
     };
     let report = run_service(&config, options, Shutdown::new())?;
     writeln!(out, "{report}")?;

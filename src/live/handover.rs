@@ -23,28 +23,29 @@ pub enum StartRequest {
     Offsets(BTreeMap<i32, i64>),
 }
 
-/// Parses `--start-offsets 0:1200,1:1187,2:1302`.
-pub fn parse_offsets(text: &str) -> Result<BTreeMap<i32, i64>> {
+/// Parses a list of next offsets given to `flag` (`--start-offsets 0:1200,1:1187,2:1302`,
+/// `--stop-at-offsets …`), naming the flag in its errors.
+pub fn parse_offsets(flag: &str, text: &str) -> Result<BTreeMap<i32, i64>> {
     let mut out = BTreeMap::new();
     for part in text.split(',').map(str::trim).filter(|p| !p.is_empty()) {
         let (p, o) = part
             .split_once(':')
-            .with_context(|| format!("--start-offsets: \"{part}\" is not PARTITION:OFFSET"))?;
+            .with_context(|| format!("{flag}: \"{part}\" is not PARTITION:OFFSET"))?;
         let partition: i32 = p
             .parse()
-            .with_context(|| format!("--start-offsets: partition \"{p}\" is not a number"))?;
+            .with_context(|| format!("{flag}: partition \"{p}\" is not a number"))?;
         let offset: i64 = o
             .parse()
-            .with_context(|| format!("--start-offsets: offset \"{o}\" is not a number"))?;
+            .with_context(|| format!("{flag}: offset \"{o}\" is not a number"))?;
         if partition < 0 || offset < 0 {
-            bail!("--start-offsets: \"{part}\" has a negative partition or offset");
+            bail!("{flag}: \"{part}\" has a negative partition or offset");
         }
         if out.insert(partition, offset).is_some() {
-            bail!("--start-offsets: partition {partition} is given twice");
+            bail!("{flag}: partition {partition} is given twice");
         }
     }
     if out.is_empty() {
-        bail!("--start-offsets: no PARTITION:OFFSET given");
+        bail!("{flag}: no PARTITION:OFFSET given");
     }
     Ok(out)
 }
@@ -107,18 +108,18 @@ mod tests {
     #[test]
     fn offsets_parse_and_bad_ones_are_named() {
         assert_eq!(
-            parse_offsets("0:12, 2:7").unwrap(),
+            parse_offsets("--start-offsets", "0:12, 2:7").unwrap(),
             BTreeMap::from([(0, 12), (2, 7)])
         );
-        assert!(parse_offsets("0:12,0:13")
+        assert!(parse_offsets("--start-offsets", "0:12,0:13")
             .unwrap_err()
             .to_string()
             .contains("given twice"));
-        assert!(parse_offsets("x:1")
+        assert!(parse_offsets("--start-offsets", "x:1")
             .unwrap_err()
             .to_string()
             .contains("partition \"x\""));
-        assert!(parse_offsets("1")
+        assert!(parse_offsets("--start-offsets", "1")
             .unwrap_err()
             .to_string()
             .contains("PARTITION:OFFSET"));

@@ -74,9 +74,26 @@ pub struct RunOptions {
     pub start: Option<StartRequest>,
     /// Whether SIGTERM and SIGINT begin shutdown.
     pub signals: SignalHandling,
-    /// Whether to stop once every partition's end offset at start is applied (then write,
-    /// publish and return as after a signal).
-    pub stop_at_end: bool,
+    /// Where to stop (then write, publish and return as after a signal); `None`: run
+    /// until shutdown.
+    pub stop: Option<StopAt>,
+}
+
+/// Where `--stop-at-end` or `--stop-at-offsets` stops consumption.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum StopAt {
+    /// The input topic's end offsets as they are at start.
+    End,
+    /// These next offsets, by partition, exactly: instances given the same list stop at
+    /// the same positions, whatever their batches (the resharding procedure).
+    Offsets(BTreeMap<i32, i64>),
+}
+
+/// Whether `message` lies at or past the stop: on a partition the stop does not list, or
+/// at or after its offset there. Such a message is left for the next run, so the stored
+/// positions end exactly at the stop.
+fn past_the_stop(stop: &BTreeMap<i32, i64>, partition: i32, offset: i64) -> bool {
+    stop.get(&partition).is_none_or(|&end| offset >= end)
 }
 
 /// Whether the service listens for SIGTERM and SIGINT itself.
@@ -254,7 +271,7 @@ pub struct Service {
     admin: Arc<AdminRequests>,
     /// Whether the output topics hold every stored list.
     in_sync: bool,
-    /// With `--stop-at-end`: the input's end offsets at start.
+    /// With `--stop-at-end` or `--stop-at-offsets`: the next offsets to stop at.
     stop_at: Option<BTreeMap<i32, i64>>,
     /// The publishing lease, with `cluster.lease_topic`; released after the last
     /// publication at shutdown.
@@ -345,12 +362,17 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         listed_partitions.clone(),
         shutdown.clone(),
     )?;
-    let stop_at = if options.stop_at_end {
-        let ends = OffsetsClient::new(&config.kafka, &bus)?.end_offsets(&config.kafka.input_topic)?;
-        tracing::info!(topic = %config.kafka.input_topic, offsets = ?ends, "will stop at these end offsets");
-        Some(ends)
-    } else {
-        None
+    let stop_at = match options.stop {
+        Some(StopAt::End) => {
+            let ends = OffsetsClient::new(&config.kafka, &bus)?.end_offsets(&config.kafka.input_topic)?;
+            tracing::info!(topic = %config.kafka.input_topic, offsets = ?ends, "will stop at these end offsets");
+            Some(ends)
+        }
+        Some(StopAt::Offsets(offsets)) => {
+            tracing::info!(topic = %config.kafka.input_topic, offsets = ?offsets, "will stop at these offsets");
+            Some(offsets)
+        }
+        None => None,
     };
 
     let producer = Arc::new(RecordProducer::new(&config.kafka, bus.clone())?);
@@ -487,7 +509,15 @@ impl Service {
                 .consumer
                 .poll(wake.saturating_duration_since(now).min(LONGEST_POLL))
             {
-                Some(Ok(message)) => self.core().take(message),
+                Some(Ok(message)) => {
+                    let past = self
+                        .stop_at
+                        .as_ref()
+                        .is_some_and(|stop| past_the_stop(stop, message.partition, message.offset));
+                    if !past {
+                        self.core().take(message);
+                    }
+                }
                 Some(Err(error)) => Observation::ConsumeFailed { error: &error }.emit(&self.metrics),
                 None => {}
             }
@@ -495,7 +525,7 @@ impl Service {
             self.commit_group_offsets(flushed);
             if let Some(ends) = &self.stop_at {
                 if self.core().has_applied(ends) {
-                    tracing::info!("the end offsets seen at start are applied; stopping");
+                    tracing::info!("every message before the stop offsets is applied; stopping");
                     self.shutdown.begin();
                 }
             }
@@ -584,7 +614,16 @@ pub fn run_service(config: &Config, options: RunOptions, shutdown: Shutdown) -> 
 mod tests {
     use std::time::{Duration, Instant};
 
-    use super::next_cycle_start;
+    use super::{next_cycle_start, past_the_stop};
+
+    #[test]
+    fn messages_at_or_past_the_stop_are_left_for_the_next_run() {
+        let stop = std::collections::BTreeMap::from([(0, 10), (1, 0)]);
+        assert!(!past_the_stop(&stop, 0, 9));
+        assert!(past_the_stop(&stop, 0, 10));
+        assert!(past_the_stop(&stop, 1, 0));
+        assert!(past_the_stop(&stop, 2, 0), "a partition the stop does not list");
+    }
 
     #[test]
     fn publications_start_one_interval_apart_unless_a_write_ran_long() {
