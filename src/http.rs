@@ -10,6 +10,7 @@
 //! once, and each request ends within `http.request_timeout`. Every error is JSON:
 //! `{"error": code, "detail": text}`.
 
+use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::Duration;
@@ -69,6 +70,8 @@ pub struct HttpState {
     pub admin: Arc<AdminRequests>,
     /// Which items this instance answers for.
     pub shard: ShardSpec,
+    /// Where admin snapshots go (`store.snapshot_dir`); `None`: snapshots are off.
+    pub snapshots: Option<PathBuf>,
 }
 
 /// A refused or failed request, answered as JSON with a stable code and a sentence.
@@ -342,6 +345,9 @@ async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: 
         )
             .into_response();
     }
+    if action == "snapshot" {
+        return take_snapshot(&s).await;
+    }
     let flag = match action.as_str() {
         "publish" => &s.admin.publish,
         "republish" => &s.admin.republish,
@@ -350,7 +356,7 @@ async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: 
             return ApiError::new(
                 StatusCode::NOT_FOUND,
                 "no_such_action",
-                "actions: publish, republish, compact",
+                "actions: publish, republish, compact, snapshot",
             )
             .into_response()
         }
@@ -358,6 +364,60 @@ async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: 
     flag.store(true, Ordering::Relaxed);
     tracing::info!(action, "admin request accepted");
     (StatusCode::ACCEPTED, format!("{action} requested\n")).into_response()
+}
+
+/// What a snapshot holds, answered by `POST /v1/admin/snapshot`.
+#[derive(Debug, Serialize)]
+struct SnapshotTaken {
+    /// The snapshot's directory, under `store.snapshot_dir`.
+    path: String,
+    /// Events applied up to the snapshot.
+    events_applied: u64,
+    /// Next offset of each input partition, by topic: where a service started on the
+    /// snapshot continues.
+    offsets: std::collections::BTreeMap<String, std::collections::BTreeMap<i32, i64>>,
+}
+
+/// Writes a snapshot of the store under `store.snapshot_dir`, in a new directory named by
+/// the time (never a path from the request), and answers with its positions.
+async fn take_snapshot(s: &HttpState) -> Response {
+    let Some(root) = s.snapshots.clone() else {
+        return ApiError::new(
+            StatusCode::CONFLICT,
+            "snapshots_off",
+            "snapshots are off: set store.snapshot_dir (SIMTIDE_STORE__SNAPSHOT_DIR)",
+        )
+        .into_response();
+    };
+    let name = format!("snapshot-{}", crate::timefmt::now_nanos().0);
+    let path = root.join(name);
+    let lookups = s.lookups.clone();
+    let taken = tokio::task::spawn_blocking(move || {
+        lookups.read(|store| {
+            store.snapshot_to(&path)?;
+            let snapshot = Store::open_read_only(&path)?;
+            let ledger = snapshot.ledger();
+            Ok(SnapshotTaken {
+                path: path.display().to_string(),
+                events_applied: ledger.next_seq,
+                offsets: ledger.offsets.clone(),
+            })
+        })
+    })
+    .await;
+    match taken {
+        Ok(Ok(taken)) => {
+            tracing::info!(path = %taken.path, events = taken.events_applied, "snapshot written");
+            (StatusCode::CREATED, Json(taken)).into_response()
+        }
+        Ok(Err(e)) => ApiError::new(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "snapshot_failed",
+            format!("{e:#}"),
+        )
+        .into_response(),
+        Err(e) => ApiError::new(StatusCode::INTERNAL_SERVER_ERROR, "internal", e.to_string()).into_response(),
+    }
 }
 
 /// Serves `/metrics` alone on `listen` from a thread of its own, for the commands that

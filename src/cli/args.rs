@@ -48,6 +48,24 @@ pub enum Command {
     /// Build one shard of a new shard count from the stores of every old shard, all
     /// stopped at the same input positions.
     Reshard(ReshardArgs),
+    /// Copy a store consistently (hard links where possible), or check a copy.
+    Snapshot(SnapshotArgs),
+}
+
+/// The flags of `simtide snapshot`.
+#[derive(Args)]
+pub struct SnapshotArgs {
+    /// The store to copy, when no service holds it (ask a running service instead: POST
+    /// /v1/admin/snapshot).
+    #[arg(long, value_name = "DIR", requires = "to", conflicts_with = "verify")]
+    pub store: Option<PathBuf>,
+    /// Where the snapshot goes: a directory that does not exist yet.
+    #[arg(long, value_name = "DIR", requires = "store")]
+    pub to: Option<PathBuf>,
+    /// Open a snapshot (or any store) read-only and print its positions, counts, settings
+    /// and shard.
+    #[arg(long, value_name = "DIR", required_unless_present = "store")]
+    pub verify: Option<PathBuf>,
 }
 
 /// The flags of `simtide reshard`.
@@ -267,7 +285,11 @@ impl Command {
     pub fn uses_config(&self) -> bool {
         !matches!(
             self,
-            Command::Status(_) | Command::Demo(_) | Command::Neighbors(_) | Command::Export(_)
+            Command::Status(_)
+                | Command::Demo(_)
+                | Command::Neighbors(_)
+                | Command::Export(_)
+                | Command::Snapshot(_)
         )
     }
 
@@ -281,7 +303,11 @@ impl Command {
             Command::Recommend(a) => a.config.as_deref(),
             Command::Evaluate(a) => a.config.as_deref(),
             Command::Reshard(a) => a.config.as_deref(),
-            Command::Status(_) | Command::Demo(_) | Command::Neighbors(_) | Command::Export(_) => None,
+            Command::Status(_)
+            | Command::Demo(_)
+            | Command::Neighbors(_)
+            | Command::Export(_)
+            | Command::Snapshot(_) => None,
         }
     }
 }

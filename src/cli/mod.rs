@@ -9,6 +9,7 @@ mod inspect;
 mod recommend;
 mod reshard;
 mod run;
+mod snapshot;
 
 use std::io::Write;
 
@@ -33,5 +34,6 @@ pub fn dispatch(command: Command, config: Option<Config>, out: &mut dyn Write) -
         Command::Recommend(args) => recommend::run(args, &config()?, out),
         Command::Evaluate(args) => evaluate::run(args, config()?, out),
         Command::Reshard(args) => reshard::run(args, config()?, out),
+        Command::Snapshot(args) => snapshot::run(args, out),
     }
 }

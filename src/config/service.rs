@@ -15,12 +15,16 @@ use super::size_text::ByteSize;
 pub struct StoreConfig {
     /// Store directory of `simtide run` (created if missing).
     pub dir: String,
+    /// Where `POST /v1/admin/snapshot` writes snapshots (one new directory each, named
+    /// by the time); empty: the endpoint is off. Never a path taken from a request.
+    pub snapshot_dir: String,
 }
 
 impl Default for StoreConfig {
     fn default() -> Self {
         StoreConfig {
             dir: "simtide-store".to_string(),
+            snapshot_dir: String::new(),
         }
     }
 }

@@ -451,6 +451,7 @@ fn start_http(
             lists: config.list_settings(),
             admin_token: config.http.admin_token.clone(),
             shard: config.cluster.spec(),
+            snapshots: Some(PathBuf::from(&config.store.snapshot_dir)).filter(|d| !d.as_os_str().is_empty()),
             admin,
         },
     ));

@@ -32,6 +32,7 @@ mod oriented;
 mod reads;
 pub mod reshard;
 mod rows;
+mod snapshot;
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;

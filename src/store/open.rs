@@ -119,17 +119,36 @@ impl Store {
     pub fn open(dir: &Path, config: &Config) -> Result<Store> {
         std::fs::create_dir_all(dir)
             .with_context(|| format!("cannot create store directory {}", dir.display()))?;
+        Store::open_primary(dir, Some(StatsFingerprint::from_config(config)))
+    }
+
+    /// Opens an existing store for writing with the settings it holds (`simtide
+    /// snapshot`, which copies whatever the store is). Refused while a service holds it.
+    pub fn open_as_stored(dir: &Path) -> Result<Store> {
+        let marker = db_path(dir).join("CURRENT");
+        if !marker.exists() {
+            return Err(OpenError::NotAStore {
+                dir: dir.to_path_buf(),
+                marker,
+            }
+            .into());
+        }
+        Store::open_primary(dir, None)
+    }
+
+    /// Opens the database as its writer; `asked` settings are checked against the stored
+    /// ones, or written into a new store (without them, the store must exist).
+    fn open_primary(dir: &Path, asked: Option<StatsFingerprint>) -> Result<Store> {
         let path = db_path(dir);
         let db = DB::open_cf_descriptors(&db_options(), &path, cf_descriptors())
             .with_context(|| format!("cannot open store {}", path.display()))?;
-        let asked = StatsFingerprint::from_config(config);
         let meta = db.cf_handle(CF_META).expect("meta family exists");
-        let fingerprint = match db.get_cf(meta, META_FINGERPRINT)? {
-            Some(bytes) => {
+        let fingerprint = match (db.get_cf(meta, META_FINGERPRINT)?, asked) {
+            (Some(bytes), asked) => {
                 check_schema(&db, dir)?;
                 let stored: StatsFingerprint =
                     serde_json::from_slice(&bytes).context("stored fingerprint is unreadable")?;
-                let differences = stored.differences(&asked);
+                let differences = asked.map_or_else(Vec::new, |asked| stored.differences(&asked));
                 if !differences.is_empty() {
                     return Err(OpenError::SettingsChanged {
                         dir: dir.to_path_buf(),
@@ -139,12 +158,18 @@ impl Store {
                 }
                 stored
             }
-            None => {
+            (None, Some(asked)) => {
                 let mut wb = WriteBatch::default();
                 wb.put_cf(meta, META_SCHEMA, SCHEMA_VERSION.to_le_bytes());
                 wb.put_cf(meta, META_FINGERPRINT, serde_json::to_vec(&asked)?);
                 db.write(wb)?;
                 asked
+            }
+            (None, None) => {
+                return Err(OpenError::NeverInitialised {
+                    dir: dir.to_path_buf(),
+                }
+                .into())
             }
         };
         super::ingest::clear_leftovers(dir)?;
