@@ -2,6 +2,17 @@
 
 use std::path::PathBuf;
 
+/// What to do about a store of another layout version.
+fn schema_advice(found: Option<u32>, supported: u32) -> &'static str {
+    match found {
+        Some(v) if v < supported => {
+            "an older layout is migrated forward when the store is opened for writing (simtide run, backfill, or snapshot --store); take a snapshot first"
+        }
+        Some(_) => "it was written by a newer simtide; run that version, or restore a snapshot taken before the upgrade",
+        None => "it was not written by simtide, or its meta family is damaged; restore a snapshot",
+    }
+}
+
 /// A store that cannot be opened as asked.
 #[derive(Debug, thiserror::Error)]
 pub enum OpenError {
@@ -20,7 +31,7 @@ pub enum OpenError {
         dir: PathBuf,
     },
     /// The store's layout version is not the one this build reads.
-    #[error("store {} has schema version {}, this build reads version {supported}", .dir.display(), .found.map_or("(none)".to_string(), |v| v.to_string()))]
+    #[error("store {} has layout version {}, this build reads version {supported}: {}", .dir.display(), .found.map_or("(none)".to_string(), |v| v.to_string()), schema_advice(*.found, *.supported))]
     SchemaMismatch {
         /// The store directory.
         dir: PathBuf,

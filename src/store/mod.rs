@@ -26,6 +26,7 @@ mod ids;
 mod ingest;
 pub mod ledger;
 pub mod merge;
+mod migrate;
 pub mod mirror;
 mod open;
 mod oriented;

@@ -38,7 +38,7 @@ const MAX_TOTAL_WAL_BYTES: u64 = 256 << 20;
 /// Background flush and compaction threads.
 const BACKGROUND_JOBS: i32 = 2;
 
-fn db_options() -> Options {
+pub(super) fn db_options() -> Options {
     let mut o = Options::default();
     o.create_if_missing(true);
     o.create_missing_column_families(true);
@@ -139,6 +139,7 @@ impl Store {
     /// Opens the database as its writer; `asked` settings are checked against the stored
     /// ones, or written into a new store (without them, the store must exist).
     fn open_primary(dir: &Path, asked: Option<StatsFingerprint>) -> Result<Store> {
+        super::migrate::prepare_layout(dir)?;
         let path = db_path(dir);
         let db = DB::open_cf_descriptors(&db_options(), &path, cf_descriptors())
             .with_context(|| format!("cannot open store {}", path.display()))?;

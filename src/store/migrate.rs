@@ -1,0 +1,214 @@
+//! Store layout upgrades (docs/design.md, "Upgrades"). A store records its layout version
+//! (`meta/schema_version`); this build writes [`SCHEMA_VERSION`] and, when it opens an
+//! older store it knows for writing, migrates it forward in place with progress lines. A
+//! newer or unknown version is refused before the database is opened for writing, naming
+//! both versions.
+//!
+//! Version 1 held rating pair values in 56 fixed bytes: n as i64, then dot, s_row and
+//! s_other as i128, all little-endian; version 2 holds them in the compact form of
+//! [`encode_rating_pair`]. Nothing else differs.
+//!
+//! The migration never lets this build's merge operator or compaction filter see a
+//! version-1 value: the schema is read from a read-only open (no flush, no compaction),
+//! and the migration opens the pair family with a version-1 merge operator, folds every
+//! operand by a full compaction, then rewrites the values in key order. Each rewritten
+//! batch records the last key it holds, so a migration cut short resumes after it; the
+//! last batch sets the version.
+
+use std::path::Path;
+
+use anyhow::{bail, Context, Result};
+use rocksdb::{
+    ColumnFamilyDescriptor, DBRecoveryMode, Direction, IteratorMode, MergeOperands, Options, WriteBatch, DB,
+};
+
+use super::codec::encode_rating_pair;
+use super::errors::OpenError;
+use super::open::{cf_options, db_options};
+use super::{db_path, ALL_CFS, CF_META, CF_PAIRS, META_SCHEMA, SCHEMA_VERSION};
+use crate::model::RatingPairStats;
+
+/// The layout this module migrates from.
+const FIXED_PAIRS_VERSION: u32 = 1;
+
+/// Length of a version-1 rating pair value.
+const FIXED_PAIR_LEN: usize = 8 + 3 * 16;
+
+/// Meta key of an unfinished migration: the last pair key already rewritten.
+const META_MIGRATED_UP_TO: &[u8] = b"migrated_up_to";
+
+/// Pair values rewritten per write batch (and per progress line).
+const BATCH_PAIRS: usize = 200_000;
+
+/// The layout version the store at `path` (its database directory) records, read by a
+/// read-only open; `None` when it records none.
+fn stored_version(path: &Path) -> Result<Option<u32>> {
+    let names = DB::list_cf(&Options::default(), path)
+        .with_context(|| format!("cannot list the families of {}", path.display()))?;
+    // A store whose writer was killed may end its write-ahead log mid-record, after table
+    // files it ingested; the writable open recovers it, and this peek at one key written
+    // when the store was created only has to get past it.
+    let mut options = Options::default();
+    options.set_wal_recovery_mode(DBRecoveryMode::SkipAnyCorruptedRecord);
+    let db = DB::open_cf_for_read_only(&options, path, &names, false)
+        .with_context(|| format!("cannot read the layout version of {}", path.display()))?;
+    let Some(meta) = db.cf_handle(CF_META) else {
+        return Ok(None);
+    };
+    Ok(db
+        .get_cf(meta, META_SCHEMA)?
+        .map(|v| <[u8; 4]>::try_from(v.as_slice()).map_or(u32::MAX, u32::from_le_bytes)))
+}
+
+/// Before a writable open of the store in `dir`: migrates it to [`SCHEMA_VERSION`] when it
+/// records an older version this build knows, and refuses any other version, so that
+/// this build's merge operators and compaction filters never run on a layout they do
+/// not read. A new store, or one without a version yet, is left to the open.
+pub(super) fn prepare_layout(dir: &Path) -> Result<()> {
+    let path = db_path(dir);
+    if !path.join("CURRENT").exists() {
+        return Ok(());
+    }
+    let version = match stored_version(&path) {
+        Ok(version) => version,
+        Err(e) => {
+            // The writable open recovers more than a read-only one; it checks the
+            // version itself after opening.
+            tracing::debug!(error = %format!("{e:#}"), "layout version not read before opening");
+            return Ok(());
+        }
+    };
+    match version {
+        None => Ok(()),
+        Some(SCHEMA_VERSION) => Ok(()),
+        Some(FIXED_PAIRS_VERSION) => migrate_fixed_pairs(dir, &path),
+        Some(other) => Err(OpenError::SchemaMismatch {
+            dir: dir.to_path_buf(),
+            found: Some(other),
+            supported: SCHEMA_VERSION,
+        }
+        .into()),
+    }
+}
+
+/// Decodes a version-1 rating pair value.
+fn decode_fixed(bytes: &[u8]) -> Option<RatingPairStats> {
+    if bytes.len() != FIXED_PAIR_LEN {
+        return None;
+    }
+    let i128_at = |at: usize| i128::from_le_bytes(bytes[at..at + 16].try_into().expect("16 bytes"));
+    Some(RatingPairStats {
+        n: i64::from_le_bytes(bytes[..8].try_into().expect("8 bytes")),
+        dot: i128_at(8),
+        s_row: i128_at(24),
+        s_other: i128_at(40),
+    })
+}
+
+/// The version-1 merge operator: field-wise sums of fixed values.
+fn merge_fixed(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let mut sum = RatingPairStats::default();
+    for value in existing.into_iter().chain(operands.iter()) {
+        sum.add(&decode_fixed(value)?);
+    }
+    let mut out = Vec::with_capacity(FIXED_PAIR_LEN);
+    out.extend_from_slice(&sum.n.to_le_bytes());
+    for v in [sum.dot, sum.s_row, sum.s_other] {
+        out.extend_from_slice(&v.to_le_bytes());
+    }
+    Some(out)
+}
+
+/// Rewrites every version-1 rating pair value in the compact form, then records version 2.
+fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<()> {
+    tracing::info!(
+        store = %dir.display(),
+        "store layout version {FIXED_PAIRS_VERSION} found: migrating it to version {SCHEMA_VERSION} in place (take a snapshot before upgrading: README, \"Upgrades\")"
+    );
+    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
+        .iter()
+        .map(|&name| {
+            let options = if name == CF_PAIRS {
+                let mut o = Options::default();
+                o.set_merge_operator_associative("simtide_rating_pair_sum_v1", merge_fixed);
+                o.set_disable_auto_compactions(true);
+                o
+            } else {
+                cf_options(name)
+            };
+            ColumnFamilyDescriptor::new(name, options)
+        })
+        .collect();
+    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
+        .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
+    let pairs = db.cf_handle(CF_PAIRS).expect("pair family exists");
+    let meta = db.cf_handle(CF_META).expect("meta family exists");
+    let resume = db.get_cf(meta, META_MIGRATED_UP_TO)?;
+    if resume.is_none() {
+        // Every merge operand folded into one fixed value per key, by the version-1
+        // operator; a resumed migration did this before its first batch.
+        db.compact_range_cf(pairs, None::<&[u8]>, None::<&[u8]>);
+    }
+    let total = db
+        .property_int_value_cf(pairs, "rocksdb.estimate-num-keys")?
+        .unwrap_or(0);
+    let mode = match &resume {
+        Some(last) => IteratorMode::From(last, Direction::Forward),
+        None => IteratorMode::Start,
+    };
+    let (mut batch, mut in_batch, mut done) = (WriteBatch::default(), 0usize, 0u64);
+    let mut value = Vec::new();
+    for entry in db.iterator_cf(pairs, mode) {
+        let (key, fixed) = entry?;
+        if resume.as_deref() == Some(&key[..]) {
+            continue;
+        }
+        let Some(stats) = decode_fixed(&fixed) else {
+            bail!(
+                "{}: rating pair value of {} bytes is not in the version-1 form ({FIXED_PAIR_LEN} bytes); restore the snapshot taken before the upgrade",
+                dir.display(),
+                fixed.len()
+            );
+        };
+        value.clear();
+        encode_rating_pair(&stats, &mut value);
+        batch.put_cf(pairs, &key, &value);
+        in_batch += 1;
+        if in_batch == BATCH_PAIRS {
+            batch.put_cf(meta, META_MIGRATED_UP_TO, &key);
+            db.write(std::mem::take(&mut batch))?;
+            done += in_batch as u64;
+            in_batch = 0;
+            tracing::info!(done, of_about = total, "migrating rating pair values");
+        }
+    }
+    done += in_batch as u64;
+    batch.delete_cf(meta, META_MIGRATED_UP_TO);
+    batch.put_cf(meta, META_SCHEMA, SCHEMA_VERSION.to_le_bytes());
+    db.write(batch)?;
+    db.flush_wal(true)?;
+    tracing::info!(pairs = done, "store migrated to layout version {SCHEMA_VERSION}");
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn fixed_values_sum_and_decode() {
+        let a = RatingPairStats {
+            n: 2,
+            dot: -5 << 80,
+            s_row: 7 << 80,
+            s_other: 1,
+        };
+        let mut fixed = Vec::new();
+        fixed.extend_from_slice(&a.n.to_le_bytes());
+        for v in [a.dot, a.s_row, a.s_other] {
+            fixed.extend_from_slice(&v.to_le_bytes());
+        }
+        assert_eq!(decode_fixed(&fixed), Some(a));
+        assert_eq!(decode_fixed(&fixed[..55]), None);
+    }
+}
