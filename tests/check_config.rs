@@ -148,3 +148,66 @@ fn logs_are_json_lines_when_configured() {
         "{err}"
     );
 }
+
+/// Command-line flags and directories: each refusal names the flag or the directory and
+/// the reason, and writes nothing.
+#[test]
+fn bad_flags_and_directories_are_refused_by_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("c.toml");
+    std::fs::write(&config, "").unwrap();
+    let config = config.to_str().unwrap();
+    let empty = dir.path().join("empty");
+    std::fs::create_dir(&empty).unwrap();
+    let empty = empty.to_str().unwrap();
+    let missing_input = dir.path().join("no-such-file.jsonl");
+    let store = dir.path().join("store");
+    for (args, said) in [
+        (
+            vec!["run", "--config", config, "--stop-at-offsets", "0:x"],
+            "--stop-at-offsets: offset \"x\" is not a number",
+        ),
+        (
+            vec!["run", "--config", config, "--start-offsets", "7"],
+            "--start-offsets: \"7\" is not PARTITION:OFFSET",
+        ),
+        (
+            vec![
+                "run",
+                "--config",
+                config,
+                "--stop-at-end",
+                "--stop-at-offsets",
+                "0:1",
+            ],
+            "cannot be used with",
+        ),
+        (
+            vec!["run", "--config", config, "--bogus"],
+            "unexpected argument '--bogus'",
+        ),
+        (vec!["export", "--store", empty], "is not a simtide store"),
+        (
+            vec!["neighbors", "--store", empty, "m1"],
+            "is not a simtide store",
+        ),
+        (vec!["snapshot", "--verify", empty], "is not a readable snapshot"),
+        (
+            vec![
+                "backfill",
+                "--store",
+                store.to_str().unwrap(),
+                "--input",
+                missing_input.to_str().unwrap(),
+            ],
+            "no-such-file.jsonl",
+        ),
+    ] {
+        let (ok, _, err) = simtide(&args, &[]);
+        assert!(!ok && err.contains(said), "{args:?} → {err}");
+    }
+    assert!(
+        std::fs::read_dir(empty).unwrap().next().is_none(),
+        "nothing written into a directory that is not a store"
+    );
+}

@@ -107,6 +107,23 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         assert_eq!(status, 401, "{headers:?}");
     }
     assert_eq!(cycles(&service), 0.0, "a refused request published nothing");
+    // With the token: an unknown action, and a snapshot while store.snapshot_dir is
+    // empty, are refused with a JSON reason.
+    let bearer = format!("Bearer {ADMIN_TOKEN}");
+    let auth = [("Authorization", bearer.as_str())];
+    for (path, want) in [
+        ("/v1/admin/reboot", (404, "no_such_action")),
+        ("/v1/admin/snapshot", (409, "snapshots_off")),
+    ] {
+        let (status, body) = http_request(port, "POST", path, &auth).unwrap();
+        let reason: serde_json::Value =
+            serde_json::from_str(&body).unwrap_or_else(|_| panic!("{path}: {body}"));
+        assert_eq!(
+            (status, reason["error"].as_str().unwrap()),
+            want,
+            "{path}: {body}"
+        );
+    }
     publish_now(&service);
     wait_for("the first cycle", Duration::from_secs(30), || {
         cycles(&service) >= 1.0
