@@ -12,7 +12,7 @@ pub use simtide_core::{decode, drift, engine, event, model, predict, score, sign
 pub mod cluster;
 pub mod config;
 pub mod demo;
-mod diskspace;
+pub mod diskspace;
 pub mod evaluate;
 pub mod exit;
 pub mod export;

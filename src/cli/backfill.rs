@@ -7,6 +7,7 @@ use anyhow::Result;
 
 use super::args::BackfillArgs;
 use simtide::config::Config;
+use simtide::diskspace::describe_store_error;
 use simtide::ingest::{backfill_files, backfill_topic, BackfillRequest};
 use simtide::metrics::Metrics;
 
@@ -32,10 +33,11 @@ pub fn run(args: BackfillArgs, mut config: Config, out: &mut dyn Write) -> Resul
         metrics,
     };
     let summary = if args.from_topic {
-        backfill_topic(&request)?
+        backfill_topic(&request)
     } else {
-        backfill_files(&request)?
-    };
+        backfill_files(&request)
+    }
+    .map_err(|e| anyhow::anyhow!(describe_store_error(&e, &request.store_dir)))?;
     writeln!(out, "{summary}")?;
     Ok(())
 }

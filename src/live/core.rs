@@ -19,6 +19,7 @@ use super::latency::LatencyRecorder;
 use super::segment::AppliedSegment;
 use crate::config::Config;
 use crate::decode::Limits;
+use crate::diskspace::describe_store_error;
 use crate::engine::tally::EventTally;
 use crate::engine::EngineSettings;
 use crate::event::UnixMillis;
@@ -281,7 +282,10 @@ impl Core {
             {
                 Ok(summary) => break summary,
                 Err(e) => {
-                    let text = format!("store read failed: {e:#}");
+                    let text = format!(
+                        "store read failed: {}",
+                        describe_store_error(&e, self.store.dir())
+                    );
                     Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
                     self.metrics.note_batch_stalled();
                     self.health.set_store_error(Some(text));
@@ -337,7 +341,7 @@ impl Core {
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
         let store = Arc::get_mut(&mut self.store).expect("no cycle holds the store once it has ended");
         while let Err(e) = sealed.write(store, PairWrite::RatingsIngested) {
-            let text = format!("store write failed: {e:#}");
+            let text = format!("store write failed: {}", describe_store_error(&e, store.dir()));
             Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
             self.metrics.note_batch_stalled();
             self.health.set_store_error(Some(text));
