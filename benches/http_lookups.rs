@@ -15,7 +15,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use common::live::{
-    broker_with_topics, caught_up, csv_events, http_get, produce, wait_for, write_config, LiveSettings,
+    broker_with_topics, caught_up, http_get, produce, unstamped_events, wait_for, write_config, LiveSettings,
     Service, INPUT,
 };
 
@@ -149,10 +149,7 @@ fn run(
 
 fn main() {
     let events: Vec<(String, String, Option<i64>)> =
-        csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
-            .into_iter()
-            .map(|(k, v, _)| (k, v, None))
-            .collect();
+        unstamped_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize);
     let mut items: Vec<String> = events
         .iter()
         .filter_map(|(_, v, _)| {

@@ -21,8 +21,8 @@ mod common;
 use std::time::{Duration, Instant};
 
 use common::live::{
-    broker_with_topics, caught_up, csv_events, produce, wait_for, write_config, LiveSettings, Service, GROUP,
-    INPUT,
+    broker_with_topics, caught_up, produce, unstamped_events, wait_for, write_config, LiveSettings, Service,
+    GROUP, INPUT,
 };
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::message::Message;
@@ -359,10 +359,7 @@ fn file_backfill() {
 fn main() {
     // `cargo bench` passes --bench; any other argument is ignored.
     let events: Vec<(String, String, Option<i64>)> =
-        csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
-            .into_iter()
-            .map(|(k, v, _)| (k, v, None))
-            .collect();
+        unstamped_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize);
     println!(
         "simtide live benchmark, MovieLens snapshot, default settings, tansu 0.6.0 broker on 127.0.0.1\n"
     );
@@ -390,10 +387,7 @@ fn powerlaw_saturation() {
         "{} is missing: `make bench` writes it (scripts/bench.sh) before this benchmark",
         path.display()
     );
-    let events: Vec<(String, String, Option<i64>)> = csv_events(&path, POWERLAW_SLICE)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let events: Vec<(String, String, Option<i64>)> = unstamped_events(&path, POWERLAW_SLICE);
     println!("power-law set, first {POWERLAW_SLICE} ratings in file order, default settings\n");
     saturation(&events);
 }

@@ -21,7 +21,9 @@ use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::live::{broker_with_topics, csv_events, produce, write_config, LiveSettings, Service, INPUT};
+use common::live::{
+    broker_with_topics, produce, unstamped_events, write_config, LiveSettings, Service, INPUT,
+};
 
 /// Processor seconds of the children reaped so far (user + system).
 fn reaped_children_cpu_seconds() -> f64 {
@@ -266,10 +268,7 @@ fn shards_needed(a: f64, b: f64, rate: f64, updates: f64, cores: f64) -> Option<
 
 fn main() {
     let events: Vec<(String, String, Option<i64>)> =
-        csv_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize)
-            .into_iter()
-            .map(|(k, v, _)| (k, v, None))
-            .collect();
+        unstamped_events(&common::movielens_csv(), common::MOVIELENS_RATINGS as usize);
     println!("simtide shard benchmark on this machine\n");
     let (updates, bytes_per_pair) = backfills(events.len());
     let (a, b) = live(&events, updates);

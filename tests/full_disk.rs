@@ -109,17 +109,14 @@ fn a_backfill_on_a_full_disk_says_so_and_resumes_exactly_once_space_is_freed() {
 #[test]
 fn the_live_service_on_a_full_disk_waits_names_the_disk_and_resumes_exactly() {
     use common::live::{
-        broker_with_topics, caught_up, committed_total, csv_events, nonempty_lists, produce,
-        single_store_lists, wait_for, write_config, LiveSettings, Service, GROUP, INPUT,
+        broker_with_topics, caught_up, committed_total, nonempty_lists, produce, single_store_lists,
+        unstamped_events, wait_for, write_config, LiveSettings, Service, GROUP, INPUT,
     };
     use std::time::Duration;
     let work = tempfile::tempdir().unwrap();
     let broker = broker_with_topics();
     let slice = common::movielens_slice(30_000, &work.path().join("slice.csv"));
-    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, 30_000)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let records: Vec<(String, String, Option<i64>)> = unstamped_events(&slice, 30_000);
     produce(&broker.bootstrap(), INPUT, &records);
     let disk = SmallDisk::mount(&work.path().join("disk"), "12M");
     let store = disk.at.join("store");

@@ -18,8 +18,8 @@ use std::time::Duration;
 use common::broker::Broker;
 use common::live::{
     accept_missing_tombstones, assert_same_lists, broker_with_topics, caught_up_in, committed_total,
-    csv_events, nonempty_lists, produce, read_all, single_store_lists, wait_for, write_config, LiveSettings,
-    Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
+    nonempty_lists, produce, read_all, single_store_lists, unstamped_events, wait_for, write_config,
+    LiveSettings, Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
 };
 use simtide::cluster::{owner, ShardSpec};
 use simtide::signal::Signal;
@@ -108,10 +108,7 @@ fn three_live_shards_publish_exactly_the_single_store_lists_through_a_kill() {
     let work = tempfile::tempdir().unwrap();
     let broker = broker_with_topics();
     let slice = common::movielens_slice(RATINGS, &work.path().join("slice.csv"));
-    let mut records: Vec<(String, String, Option<i64>)> = csv_events(&slice, RATINGS)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let mut records: Vec<(String, String, Option<i64>)> = unstamped_events(&slice, RATINGS);
     // Three refused messages in the middle of the stream: dead-lettered once (by shard 0),
     // counted by every shard.
     let bad = [
@@ -304,10 +301,7 @@ fn shards_stopped_at_the_same_offsets_hold_the_same_positions_and_reshard() {
     let work = tempfile::tempdir().unwrap();
     let broker = broker_with_topics();
     let slice = common::movielens_slice(6_000, &work.path().join("slice.csv"));
-    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, 6_000)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let records: Vec<(String, String, Option<i64>)> = unstamped_events(&slice, 6_000);
     let (first, rest) = records.split_at(4_000);
     produce(&broker.bootstrap(), INPUT, first);
     // Stop two thirds of the way into what is there now; more arrives while they run.

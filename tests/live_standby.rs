@@ -16,7 +16,7 @@ use std::path::Path;
 use std::time::{Duration, Instant};
 
 use common::live::{
-    assert_same_lists, csv_events, nonempty_lists, produce, read_all, single_store_lists, wait_for,
+    assert_same_lists, nonempty_lists, produce, read_all, single_store_lists, unstamped_events, wait_for,
     write_config, LiveSettings, Service, INPUT, OUTPUT,
 };
 use simtide::cluster::owner;
@@ -86,10 +86,7 @@ fn only_the_lease_holder_publishes_and_the_standby_takes_over_exactly() {
     broker.create_topic(LEASE_TOPIC, 1, false);
     let brokers = broker.bootstrap();
     let slice = common::movielens_slice(RATINGS, &work.path().join("slice.csv"));
-    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, RATINGS)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let records: Vec<(String, String, Option<i64>)> = unstamped_events(&slice, RATINGS);
     let (first, rest) = records.split_at(RATINGS / 2);
     produce(&brokers, INPUT, first);
 

@@ -13,7 +13,7 @@ use std::process::Command;
 use std::time::Duration;
 
 use common::live::{
-    broker_with_topics, caught_up_in, csv_events, http_request, nonempty_lists, produce, wait_for,
+    broker_with_topics, caught_up_in, http_request, nonempty_lists, produce, unstamped_events, wait_for,
     write_config, LiveSettings, Service, GROUP, INPUT,
 };
 use common::Settings;
@@ -102,10 +102,7 @@ fn a_service_started_on_an_admin_snapshot_continues_exactly() {
     let broker = broker_with_topics();
     let brokers = broker.bootstrap();
     let slice = common::movielens_slice(12_000, &work.path().join("slice.csv"));
-    let records: Vec<(String, String, Option<i64>)> = csv_events(&slice, 12_000)
-        .into_iter()
-        .map(|(k, v, _)| (k, v, None))
-        .collect();
+    let records: Vec<(String, String, Option<i64>)> = unstamped_events(&slice, 12_000);
     let (first, rest) = records.split_at(6_000);
     produce(&brokers, INPUT, first);
     let snapshots = work.path().join("snapshots");

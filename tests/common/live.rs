@@ -279,6 +279,14 @@ pub fn csv_events(csv: &Path, limit: usize) -> Vec<(String, String, i64)> {
         .collect()
 }
 
+/// [`csv_events`] as records for [`produce`], the timestamps left to the producer.
+pub fn unstamped_events(csv: &Path, limit: usize) -> Vec<(String, String, Option<i64>)> {
+    csv_events(csv, limit)
+        .into_iter()
+        .map(|(k, v, _)| (k, v, None))
+        .collect()
+}
+
 /// Produces (key, value, timestamp ms) records to a topic and waits for every
 /// acknowledgement.
 pub fn produce(brokers: &str, topic: &str, records: &[(String, String, Option<i64>)]) {
