@@ -96,7 +96,7 @@ impl<H: LeaseHolder> ConsumerContext for LeaseContext<H> {
     }
 }
 
-/// A running lease membership: a thread polling the lease consumer until released.
+/// A running lease membership: a thread polling the lease consumer until dropped.
 pub struct Lease {
     stop: Arc<AtomicBool>,
     thread: Option<JoinHandle<()>>,
@@ -166,14 +166,10 @@ impl Lease {
             thread: Some(thread),
         })
     }
-
-    /// Leaves the lease group (a held lease goes to a standby at once rather than after
-    /// the session timeout) and waits for the thread.
-    pub fn release(self) {
-        drop(self);
-    }
 }
 
+/// Dropping the lease leaves the lease group (a held lease goes to a standby at once
+/// rather than after the session timeout) and waits for the polling thread.
 impl Drop for Lease {
     fn drop(&mut self) {
         self.stop.store(true, Ordering::Release);

@@ -595,9 +595,8 @@ impl Service {
             ..
         } = self;
         drop(consumer);
-        if let Some(lease) = lease {
-            lease.release();
-        }
+        // Only after the last publication: a standby takes over at once.
+        drop(lease);
         runtime.shutdown_background();
         Ok(report)
     }
