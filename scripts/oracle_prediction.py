@@ -67,18 +67,12 @@ def split(events, seed, fraction):
     return train, test
 
 
-def main():
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--events", required=True)
-    ap.add_argument("--seed", type=int, required=True)
-    ap.add_argument("--fraction", type=float, required=True)
-    ap.add_argument("--neighbors", type=int, required=True)
-    ap.add_argument("--min-common-users", type=int, required=True)
-    ap.add_argument("--min-score", type=float, default=0.0)
-    args = ap.parse_args()
-
-    train, test = split(read_ratings(args.events), args.seed, args.fraction)
-    users, items = {}, {}  # items numbered in order of first appearance in training
+def training_sums(train):
+    """Users and items numbered in order of first appearance in training; the rating
+    matrix, each user's mean, and per item pair (a, b) the co-rater count, the sum of
+    d_a * d_b and the co-rater norms sum d_a^2 (norm) and sum d_b^2 (norm_t), where d is
+    a rating minus its user's mean."""
+    users, items = {}, {}
     for user, item, _ in train:
         users.setdefault(user, len(users))
         items.setdefault(item, len(items))
@@ -96,6 +90,28 @@ def main():
     dot = (dev.T @ dev).tocsr()
     norm = (dev.multiply(dev).T @ rated).tocsr()  # norm[a, b] = sum over co-raters of d_a^2
     norm_t = norm.T.tocsr()
+    return users, items, ratings, means, common, dot, norm, norm_t
+
+
+def split_and_list_args():
+    """The arguments every oracle of an evaluation takes: the events, the split and the
+    list settings."""
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--events", required=True)
+    ap.add_argument("--seed", type=int, required=True)
+    ap.add_argument("--fraction", type=float, required=True)
+    ap.add_argument("--neighbors", type=int, required=True)
+    ap.add_argument("--min-common-users", type=int, required=True)
+    return ap
+
+
+def main():
+    ap = split_and_list_args()
+    ap.add_argument("--min-score", type=float, default=0.0)
+    args = ap.parse_args()
+
+    train, test = split(read_ratings(args.events), args.seed, args.fraction)
+    users, items, ratings, means, common, dot, norm, norm_t = training_sums(train)
 
     held_by_user = {}
     for user, item, value in test:

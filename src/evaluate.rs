@@ -1,6 +1,7 @@
 //! Offline evaluation: split a team's own events by time, build similarities on the
 //! training part with the real engine, and score the held-out ratings for every setting
-//! of a sweep.
+//! of a sweep, each read against the baselines on the same split: the user's mean for
+//! rating error, the most popular items for top-N (`quality`).
 
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
@@ -9,18 +10,20 @@ use std::time::Instant;
 use anyhow::{bail, Context, Result};
 use rustc_hash::FxHashSet;
 
-use crate::config::{Config, Neighborhood};
+use crate::config::{Config, Neighborhood, Ranking};
 use crate::decode::Limits;
 use crate::event::{Event, EventBody, UnixNanos};
 use crate::meter::{Display, Meter, Unit};
 use crate::pipeline::apply_and_commit;
-use crate::predict::{recommend_for, user_history, NeighborIndex, Predictor, ScoreTable, UserView};
+use crate::predict::{user_history, NeighborIndex, Predictor, ScoreTable, UserHistory};
 use crate::publish::{compute_list, name_order};
+use crate::quality::{Popularity, RankingQuality, TopLists, TrainingCounts};
+use crate::ranking::{best_first, score_candidates, CandidateLists, Scorer};
 use crate::score::ListSettings;
 use crate::signal::Signal;
 use crate::source::{Decoded, InputFile, RecordReader};
 use crate::store::{StatsFingerprint, Store};
-use crate::topk::Exclusions;
+use crate::topk::{Exclusions, NameOrder};
 
 /// How held-out ratings are chosen.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -88,7 +91,8 @@ pub struct EvaluationRequest {
     pub sweeps: Vec<Sweep>,
     /// Held-out selection.
     pub split: Split,
-    /// Length of recommendation lists for precision and recall.
+    /// Length of the recommendation lists that catalogue coverage and head share count
+    /// (precision, recall, nDCG and hit rate are at every one of `quality::CUTOFFS`).
     pub top_n: usize,
     /// Held-out ratings at or above this count as relevant for precision and recall.
     pub relevant_rating: f64,
@@ -110,12 +114,21 @@ pub struct PointResult {
     pub rmse: f64,
     /// Share of held-out ratings that had a neighbor-based prediction.
     pub predicted_share: f64,
-    /// Mean precision at N over users with a relevant held-out item.
-    pub precision: f64,
-    /// Mean recall at N over the same users.
-    pub recall: f64,
-    /// Share of training items recommended to at least one user.
-    pub coverage: f64,
+    /// The baseline: MAE of predicting each user's mean training rating, on the same
+    /// held-out ratings as `mae`.
+    pub user_mean_mae: f64,
+    /// RMSE of the same baseline.
+    pub user_mean_rmse: f64,
+    /// Top-N quality of `recommend.ranking` under this setting.
+    pub ranking: RankingQuality,
+}
+
+impl PointResult {
+    /// Whether the setting beats both baselines: a lower MAE than the user's mean on the
+    /// same ratings, and a higher precision at 10 than the popularity ranking.
+    pub fn beats(&self, popularity: &RankingQuality) -> bool {
+        self.mae < self.user_mean_mae && self.ranking.at(10).precision > popularity.at(10).precision
+    }
 }
 
 /// The outcome of a sweep.
@@ -123,6 +136,11 @@ pub struct PointResult {
 pub struct EvaluationResult {
     /// One row per setting, in sweep order.
     pub points: Vec<PointResult>,
+    /// The popularity baseline on the same split: each user's most-rated training items
+    /// that the user does not have yet.
+    pub popularity: RankingQuality,
+    /// The list length coverage and head share were counted at.
+    pub top_n: usize,
     /// Ratings used for training and held out.
     pub train_ratings: u64,
     /// Held-out ratings.
@@ -253,7 +271,7 @@ fn train_store(dir: &Path, config: &Config, events: &[Event]) -> Result<Store> {
     Ok(store)
 }
 
-fn lists_for(store: &Store, settings: &ListSettings) -> Result<NeighborIndex> {
+fn lists_for(store: &Store, signal: Signal, settings: &ListSettings) -> Result<NeighborIndex> {
     let unavailable = store.unavailable_items()?;
     let excluded = Exclusions {
         unavailable: &unavailable,
@@ -261,14 +279,14 @@ fn lists_for(store: &Store, settings: &ListSettings) -> Result<NeighborIndex> {
     let names = name_order(store);
     let mut lists = HashMap::new();
     for item in 0..store.item_count() as u32 {
-        let row = compute_list(store, Signal::Rating, item, settings, &excluded, &names)?;
+        let row = compute_list(store, signal, item, settings, &excluded, &names)?;
         lists.insert(item, row.neighbors.iter().map(|n| (n.item, n.score)).collect());
     }
     Ok(NeighborIndex::from_lists(lists))
 }
 
-/// Per user of the held-out set: training ratings (dense ids) and everything owned.
-type Histories = HashMap<String, (HashMap<u32, f64>, FxHashSet<u32>)>;
+/// Per user of the held-out set: the training history (dense ids).
+type Histories = HashMap<String, UserHistory>;
 
 fn histories(store: &Store, test: &[HeldOut]) -> Result<Histories> {
     let mut out = Histories::new();
@@ -277,7 +295,7 @@ fn histories(store: &Store, test: &[HeldOut]) -> Result<Histories> {
             continue;
         }
         let history = match store.user_state(&h.user)? {
-            None => (HashMap::new(), FxHashSet::default()),
+            None => UserHistory::default(),
             Some(state) => user_history(&state, store.fingerprint().max_items_per_user),
         };
         out.insert(h.user.clone(), history);
@@ -285,16 +303,70 @@ fn histories(store: &Store, test: &[HeldOut]) -> Result<Histories> {
     Ok(out)
 }
 
+/// The mean of a user's ratings, summed in value order (the same to the last bit
+/// wherever the ratings were loaded from); `None` without ratings.
+fn mean_rating(ratings: &HashMap<u32, f64>) -> Option<f64> {
+    let mut values: Vec<f64> = ratings.values().copied().collect();
+    values.sort_unstable_by(f64::total_cmp);
+    (!values.is_empty()).then(|| values.iter().sum::<f64>() / values.len() as f64)
+}
+
+/// What one training store gives every setting built on it.
+struct Trained {
+    store: Store,
+    histories: Histories,
+    names: NameOrder,
+    /// Each evaluated user's relevant held-out items.
+    relevant: BTreeMap<String, FxHashSet<u32>>,
+}
+
+impl Trained {
+    fn new(store: Store, test: &[HeldOut], relevant_rating: f64) -> Result<Trained> {
+        let histories = histories(&store, test)?;
+        let mut relevant: BTreeMap<String, FxHashSet<u32>> = BTreeMap::new();
+        for h in test.iter().filter(|h| h.value >= relevant_rating) {
+            if let Some(item) = store.item_id(&h.item) {
+                relevant.entry(h.user.clone()).or_default().insert(item);
+            }
+        }
+        let names = name_order(&store);
+        Ok(Trained {
+            store,
+            histories,
+            names,
+            relevant,
+        })
+    }
+
+    /// Top lists of the popularity ranking for every evaluated user.
+    fn popular_lists(&self, popularity: &Popularity, length: usize) -> Result<TopLists> {
+        let unavailable = self.store.unavailable_items()?;
+        Ok(self
+            .relevant
+            .keys()
+            .map(|user| {
+                let h = &self.histories[user];
+                let has =
+                    |i: u32| h.ratings.contains_key(&i) || h.owned.contains(&i) || unavailable.contains(&i);
+                (user.clone(), popularity.top_for(length, has))
+            })
+            .collect())
+    }
+}
+
 fn score_point(
-    store: &Store,
+    trained: &Trained,
     index: &NeighborIndex,
-    histories: &Histories,
+    purchase: &NeighborIndex,
     test: &[HeldOut],
     request: &EvaluationRequest,
     config: &Config,
+    popularity: &Popularity,
 ) -> Result<PointResult> {
-    let rho = config.recommend.amplification;
-    let table = match config.recommend.neighborhood {
+    let store = &trained.store;
+    let rc = &config.recommend;
+    let rho = rc.amplification;
+    let table = match rc.neighborhood {
         Neighborhood::List => ScoreTable::default(),
         Neighborhood::Rated => {
             let rows = (0..store.item_count() as u32)
@@ -303,48 +375,73 @@ fn score_point(
             ScoreTable::from_rows(rows, &config.list_settings())
         }
     };
-    let predictor = match config.recommend.neighborhood {
+    let predictor = || match rc.neighborhood {
         Neighborhood::List => Predictor::List(index),
         Neighborhood::Rated => Predictor::Rated(&table),
     };
-    let (mut abs, mut sq, mut predicted) = (0.0, 0.0, 0u64);
-    let mut relevant: BTreeMap<&str, FxHashSet<u32>> = BTreeMap::new();
+    let (mut abs, mut sq, mut base_abs, mut base_sq, mut predicted) = (0.0, 0.0, 0.0, 0.0, 0u64);
     for h in test {
         let Some(item) = store.item_id(&h.item) else {
             continue;
         };
-        let (ratings, _) = &histories[&h.user];
-        if let Some(p) = predictor.predict(ratings, item, rho) {
+        let ratings = &trained.histories[&h.user].ratings;
+        if let (Some(p), Some(mean)) = (predictor().predict(ratings, item, rho), mean_rating(ratings)) {
             abs += (p - h.value).abs();
             sq += (p - h.value).powi(2);
+            base_abs += (mean - h.value).abs();
+            base_sq += (mean - h.value).powi(2);
             predicted += 1;
-        }
-        if h.value >= request.relevant_rating {
-            relevant.entry(&h.user).or_default().insert(item);
         }
     }
     let unavailable = store.unavailable_items()?;
-    let (mut precision, mut recall, mut recommended) = (0.0, 0.0, FxHashSet::default());
-    for (user, wanted) in &relevant {
-        let (ratings, owned) = &histories[*user];
-        let view = UserView { ratings, owned };
-        let recs = recommend_for(index, &predictor, &view, &unavailable, request.top_n, rho);
-        let hits = recs.iter().filter(|r| wanted.contains(&r.item)).count() as f64;
-        precision += hits / request.top_n as f64;
-        recall += hits / wanted.len() as f64;
-        recommended.extend(recs.iter().map(|r| r.item));
-    }
-    let users = relevant.len().max(1) as f64;
+    let lists = CandidateLists {
+        rating: index,
+        purchase: (rc.purchase_weight > 0.0).then_some((purchase, rc.purchase_weight)),
+    };
+    let scorer = match rc.ranking {
+        Ranking::SimilarityMass => Scorer::Mass {
+            normalised: rc.normalise_lists,
+        },
+        Ranking::PredictedRating => Scorer::Predicted(predictor()),
+    };
+    let length = quality_length(request.top_n);
+    let ranked: TopLists = trained
+        .relevant
+        .keys()
+        .map(|user| {
+            let scored = score_candidates(&lists, &scorer, &trained.histories[user], &unavailable, rho);
+            let best = best_first(scored, length, |a, b| {
+                trained.names.rank(a).cmp(&trained.names.rank(b))
+            });
+            (user.clone(), best.into_iter().map(|r| r.item).collect())
+        })
+        .collect();
     let n = predicted.max(1) as f64;
     Ok(PointResult {
         setting: Setting::new(),
         mae: abs / n,
         rmse: (sq / n).sqrt(),
         predicted_share: predicted as f64 / test.len().max(1) as f64,
-        precision: precision / users,
-        recall: recall / users,
-        coverage: recommended.len() as f64 / store.item_count().max(1) as f64,
+        user_mean_mae: base_abs / n,
+        user_mean_rmse: (base_sq / n).sqrt(),
+        ranking: RankingQuality::measure(
+            &ranked,
+            &trained.relevant,
+            store.item_count(),
+            popularity,
+            request.top_n,
+        ),
     })
+}
+
+/// How long the ranked lists must be for every cut-off and for `top_n`.
+fn quality_length(top_n: usize) -> usize {
+    crate::quality::CUTOFFS
+        .iter()
+        .copied()
+        .max()
+        .unwrap_or(0)
+        .max(top_n)
 }
 
 /// Runs the sweep. Stores for each distinct statistics setting live in `work_dir`.
@@ -366,28 +463,48 @@ pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<Evaluati
         Unit::Items,
         Display::when(request.show_progress),
     );
-    let mut stores: Vec<(StatsFingerprint, Store, Histories)> = Vec::new();
+    let popularity = TrainingCounts::of_training(&train);
+    let mut stores: Vec<(StatsFingerprint, Trained)> = Vec::new();
+    let mut baseline = None;
     let mut results = Vec::with_capacity(points.len());
     for (done, (setting, config)) in points.into_iter().enumerate() {
         let fingerprint = StatsFingerprint::from_config(&config);
-        let position = match stores.iter().position(|(f, _, _)| *f == fingerprint) {
+        let position = match stores.iter().position(|(f, _)| *f == fingerprint) {
             Some(p) => p,
             None => {
                 let store = train_store(&work_dir.join(format!("train-{}", stores.len())), &config, &train)?;
-                let h = histories(&store, &test)?;
-                stores.push((fingerprint, store, h));
+                stores.push((fingerprint, Trained::new(store, &test, request.relevant_rating)?));
                 stores.len() - 1
             }
         };
-        let (_, store, hist) = &stores[position];
-        let index = lists_for(store, &config.list_settings())?;
-        let scored = score_point(store, &index, hist, &test, request, &config)?;
+        let (_, trained) = &stores[position];
+        let by_id = popularity.by_id(&trained.store);
+        if baseline.is_none() {
+            let lists = trained.popular_lists(&by_id, quality_length(request.top_n))?;
+            baseline = Some(RankingQuality::measure(
+                &lists,
+                &trained.relevant,
+                trained.store.item_count(),
+                &by_id,
+                request.top_n,
+            ));
+        }
+        let settings = config.list_settings();
+        let index = lists_for(&trained.store, Signal::Rating, &settings)?;
+        let purchase = if config.recommend.purchase_weight > 0.0 {
+            lists_for(&trained.store, Signal::Purchase, &settings)?
+        } else {
+            NeighborIndex::default()
+        };
+        let scored = score_point(trained, &index, &purchase, &test, request, &config, &by_id)?;
         results.push(PointResult { setting, ..scored });
         meter.update(done as u64 + 1, "settings");
     }
     meter.finish();
     Ok(EvaluationResult {
         points: results,
+        popularity: baseline.context("no setting was evaluated")?,
+        top_n: request.top_n,
         train_ratings,
         test_ratings: test.len() as u64,
         seconds: started.elapsed().as_secs_f64(),

@@ -1,7 +1,7 @@
 //! The service's HTTP listener: `/healthz` (the process answers), `/readyz` (every
 //! readiness check, as JSON, 503 when one fails), `/metrics` (Prometheus text format),
-//! read-only lookups `/v1/lists/{item}` (`?signal=purchase` for the purchase list) and
-//! `/v1/pairs/{a}/{b}`, and the actions that change state (`POST
+//! read-only lookups `/v1/lists/{item}` (`?signal=purchase` for the purchase list),
+//! `/v1/pairs/{a}/{b}` and `/v1/users/{user}/recommendations` (`recommendations`), and the actions that change state (`POST
 //! /v1/admin/publish|republish|compact`), which need the bearer token of
 //! `http.admin_token` and are off without one.
 //!
@@ -25,12 +25,16 @@ use serde::Serialize;
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
 
+mod recommendations;
+
 use crate::cluster::{owner, ShardSpec};
+use crate::config::Config;
 use crate::health::Health;
 use crate::inspect::explain_pair;
 use crate::lookup::LookupStore;
 use crate::metrics::Metrics;
 use crate::observe::Observation;
+use crate::recommend::OtherShardLists;
 use crate::record::NeighborRecord;
 use crate::score::ListSettings;
 use crate::signal::Signal;
@@ -72,6 +76,11 @@ pub struct HttpState {
     pub shard: ShardSpec,
     /// Where admin snapshots go (`store.snapshot_dir`); `None`: snapshots are off.
     pub snapshots: Option<PathBuf>,
+    /// The settings recommendations are ranked with (`[recommend]`, `[similarity]`).
+    pub config: Arc<Config>,
+    /// On a shard: the other shards' lists, read from the list topics, which
+    /// recommendations draw on beside the shard's own.
+    pub other_lists: Option<OtherShardLists>,
 }
 
 /// A refused or failed request, answered as JSON with a stable code and a sentence.
@@ -146,12 +155,14 @@ pub fn router(state: HttpState) -> Router {
         .route("/metrics", get(metrics))
         .route("/v1/lists/{item}", get(list))
         .route("/v1/pairs/{a}/{b}", get(pair))
+        .route("/v1/users/{user}/recommendations", get(recommendations::for_user))
         .route("/v1/admin/{action}", post(admin))
         .fallback(|| async {
             ApiError::new(
                 StatusCode::NOT_FOUND,
                 "no_such_route",
-                "routes: /healthz /readyz /metrics /v1/lists/{item} /v1/pairs/{a}/{b} /v1/admin/{action}",
+                "routes: /healthz /readyz /metrics /v1/lists/{item} /v1/pairs/{a}/{b} \
+                 /v1/users/{user}/recommendations /v1/admin/{action}",
             )
         })
         .with_state(state)
@@ -171,6 +182,9 @@ async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
 async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
     let ready = s.health.readiness(&s.metrics.freshness()).ready;
     s.metrics.ready.set(i64::from(ready));
+    if let Some(table) = &s.other_lists {
+        s.metrics.other_shard_lists.set(table.len() as i64);
+    }
     (
         [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
         s.metrics.render(),

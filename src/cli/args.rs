@@ -256,10 +256,12 @@ pub struct EvaluateArgs {
     /// Hold out every rating at or after this time (RFC 3339) instead.
     #[arg(long, value_name = "TIME")]
     pub cutoff: Option<String>,
-    /// Length of the lists scored for precision and recall.
-    #[arg(long, default_value_t = 10)]
+    /// Length of the lists that catalogue coverage and head share count (precision,
+    /// recall, nDCG and hit rate are at 5, 10 and 20).
+    #[arg(long, default_value_t = 10, value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..=1000))]
     pub top_n: usize,
-    /// Held-out ratings at or above this are relevant for precision and recall.
+    /// Held-out ratings at or above this are relevant for precision, recall, nDCG and hit
+    /// rate.
     #[arg(long, default_value_t = 4.0)]
     pub relevant: f64,
     /// Directory for report.html, results.csv and the plots.

@@ -56,20 +56,35 @@ pub fn run(args: EvaluateArgs, mut config: Config, out: &mut dyn Write) -> Resul
     let result = result?;
     let command: Vec<String> = std::env::args().collect();
     let html = write_report(&args.report, &result, &config, &command.join(" "))?;
-    let top_n = args.top_n;
+    let line = |name: &str, mae: String, p: &simtide::quality::RankingQuality| {
+        let at = |n: usize| p.at(n);
+        format!(
+            "{name:<32} {mae}  P@10 {:.4}  R@10 {:.4}  nDCG@10 {:.4}  hit@10 {:.3}  coverage {:.3}  head {:.3}",
+            at(10).precision,
+            at(10).recall,
+            at(10).ndcg,
+            at(10).hit_rate,
+            p.coverage,
+            p.head_share
+        )
+    };
+    writeln!(
+        out,
+        "{}",
+        line("baseline: popularity", " ".repeat(46), &result.popularity)
+    )?;
     for p in &result.points {
         let setting: Vec<String> = p.setting.iter().map(|(k, v)| format!("{k}={v}")).collect();
-        writeln!(
-            out,
-            "{:<32} MAE {:.4}  RMSE {:.4}  predicted {:.3}  P@{top_n} {:.4}  R@{top_n} {:.4}  coverage {:.3}",
-            setting.join(" "),
-            p.mae,
-            p.rmse,
-            p.predicted_share,
-            p.precision,
-            p.recall,
-            p.coverage
-        )?;
+        let mae = format!(
+            "MAE {:.4} (user mean {:.4})  RMSE {:.4}",
+            p.mae, p.user_mean_mae, p.rmse
+        );
+        let behind = if p.beats(&result.popularity) {
+            ""
+        } else {
+            "  [does not beat the baselines]"
+        };
+        writeln!(out, "{}{behind}", line(&setting.join(" "), mae, &p.ranking))?;
     }
     writeln!(
         out,

@@ -74,7 +74,9 @@ pub struct SimilarityConfig {
     pub recenter_tolerance: f64,
     /// How many of a user's most recent items take part in pairs; 0 means no cut.
     pub max_items_per_user: usize,
-    /// Damping λ of sim·n/(n+λ); 0 turns it off.
+    /// Damping λ of sim·n/(n+λ) (significance weighting: a pair seen by few co-raters
+    /// counts for less); 0 turns it off. The default, 100, was chosen by measurement
+    /// (README, "Choosing a ranking").
     pub damping: f64,
     /// Lowest valid rating value.
     pub rating_min: f64,
@@ -93,7 +95,7 @@ impl Default for SimilarityConfig {
             min_common_users: 3,
             recenter_tolerance: 0.05,
             max_items_per_user: 500,
-            damping: 0.0,
+            damping: 100.0,
             rating_min: 1.0,
             rating_max: 5.0,
             min_score: 0.0,
@@ -155,7 +157,28 @@ pub enum Neighborhood {
     Rated,
 }
 
-/// `[recommend]`: prediction from published lists.
+/// How recommendations rank their candidates (docs/design.md, "Recommendations").
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum Ranking {
+    /// Σ s(i,j)^ρ over the user's items j whose list holds the candidate i.
+    #[default]
+    SimilarityMass,
+    /// The weighted-sum predicted rating (for rating prediction).
+    PredictedRating,
+}
+
+impl Ranking {
+    /// The name used in the configuration and in answers.
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            Ranking::SimilarityMass => "similarity_mass",
+            Ranking::PredictedRating => "predicted_rating",
+        }
+    }
+}
+
+/// `[recommend]`: ranking and prediction from published lists.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct RecommendConfig {
@@ -166,6 +189,14 @@ pub struct RecommendConfig {
     pub count: usize,
     /// Which neighbors predictions draw on.
     pub neighborhood: Neighborhood,
+    /// How candidates are ranked.
+    pub ranking: Ranking,
+    /// Similarity mass only: divide each list's weights by their sum first (on by
+    /// default, chosen by measurement: README, "Choosing a ranking").
+    pub normalise_lists: bool,
+    /// Weight of the purchase lists of the user's bought items in the similarity mass (and
+    /// whether they add candidates at all): 0 leaves them out.
+    pub purchase_weight: f64,
 }
 
 impl Default for RecommendConfig {
@@ -174,6 +205,9 @@ impl Default for RecommendConfig {
             amplification: 1.0,
             count: 10,
             neighborhood: Neighborhood::List,
+            ranking: Ranking::default(),
+            normalise_lists: true,
+            purchase_weight: 0.0,
         }
     }
 }
@@ -316,6 +350,10 @@ impl Config {
                 "recommend.amplification must be a finite number > 0, got {}",
                 self.recommend.amplification
             );
+        }
+        let w = self.recommend.purchase_weight;
+        if !(w.is_finite() && w >= 0.0) {
+            bail!("recommend.purchase_weight must be a finite number ≥ 0 (0 = purchase lists take no part), got {w}");
         }
         if self.input.max_id_bytes == 0 {
             bail!("input.max_id_bytes must be at least 1");

@@ -41,12 +41,14 @@ use crate::http::{AdminRequests, HttpState};
 use crate::kafka::client::{BrokerState, BusContext};
 use crate::kafka::group::{GroupConsumer, Membership};
 use crate::kafka::lease::{Lease, LeaseTerms};
+use crate::kafka::list_table::{ListTable, TableReader};
 use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::producer::RecordProducer;
 use crate::kafka::topics::{compaction_warnings, ensure_topics};
 use crate::lookup::LookupStore;
 use crate::metrics::Metrics;
 use crate::observe::Observation;
+use crate::recommend::OtherShardLists;
 use crate::retry::Backoff;
 use crate::shutdown::Shutdown;
 use crate::store::Store;
@@ -276,6 +278,9 @@ pub struct Service {
     /// The publishing lease, with `cluster.lease_topic`; released after the last
     /// publication at shutdown.
     lease: Option<Lease>,
+    /// A shard's readers of the list topics, which feed recommendations the other
+    /// shards' lists; stopped when the service drops.
+    _list_readers: Vec<TableReader>,
 }
 
 /// With `cluster.lease_topic`: stands by (nothing produced) and joins the lease group,
@@ -330,13 +335,21 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         .clone()
         .unwrap_or_else(|| PathBuf::from(&config.store.dir));
     let lookups = Arc::new(LookupStore::new());
+    let others = move || Arc::new(ListTable::new(Box::new(move |item: &str| !shard.owns(item))));
+    let other_lists = shard.is_sharded().then(|| OtherShardLists {
+        rating: others(),
+        purchase: (config.recommend.purchase_weight > 0.0).then(others),
+    });
     start_http(
         &runtime,
         config,
-        health.clone(),
-        metrics.clone(),
-        lookups.clone(),
-        admin.clone(),
+        Served {
+            health: health.clone(),
+            metrics: metrics.clone(),
+            lookups: lookups.clone(),
+            admin: admin.clone(),
+            other_lists: other_lists.clone(),
+        },
     )?;
     let mut store = Store::open(&store_dir, config)?;
     lookups.attach(store.view());
@@ -354,6 +367,14 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         metrics.clone(),
         shutdown.clone(),
     ));
+    let mut list_readers = Vec::new();
+    if let Some(others) = other_lists {
+        let k = &config.kafka;
+        list_readers.push(TableReader::start(k, &bus, &k.output_topic, others.rating)?);
+        if let Some(purchase) = others.purchase {
+            list_readers.push(TableReader::start(k, &bus, &k.purchase_output_topic, purchase)?);
+        }
+    }
     let listed_partitions = ListedPartitions::default();
     spawn_broker_probe(
         config,
@@ -425,26 +446,29 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         in_sync,
         stop_at,
         lease,
+        _list_readers: list_readers,
     })
 }
 
-/// Binds the HTTP listener and serves it on the runtime.
-fn start_http(
-    runtime: &tokio::runtime::Runtime,
-    config: &Config,
+/// What the HTTP listener serves from, shared with the service.
+struct Served {
     health: Arc<Health>,
     metrics: Arc<Metrics>,
     lookups: Arc<LookupStore>,
     admin: Arc<AdminRequests>,
-) -> Result<()> {
+    other_lists: Option<OtherShardLists>,
+}
+
+/// Binds the HTTP listener and serves it on the runtime.
+fn start_http(runtime: &tokio::runtime::Runtime, config: &Config, served: Served) -> Result<()> {
     let listener = runtime.block_on(crate::http::bind(&config.http.listen))?;
     tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
     runtime.spawn(crate::http::serve(
         listener,
         HttpState {
-            health,
-            metrics,
-            lookups,
+            health: served.health,
+            metrics: served.metrics,
+            lookups: served.lookups,
             lookup_places: Arc::new(Semaphore::new(config.http.max_concurrent_lookups)),
             request_timeout: config.http.request_timeout,
             max_id_bytes: config.input.max_id_bytes,
@@ -452,7 +476,9 @@ fn start_http(
             admin_token: config.http.admin_token.clone(),
             shard: config.cluster.spec(),
             snapshots: Some(PathBuf::from(&config.store.snapshot_dir)).filter(|d| !d.as_os_str().is_empty()),
-            admin,
+            admin: served.admin,
+            config: Arc::new(config.clone()),
+            other_lists: served.other_lists,
         },
     ));
     Ok(())

@@ -72,6 +72,7 @@ recenter_tolerance = {tol}
 min_common_users = {support}
 max_items_per_user = {cut}
 rating_min = 0.5
+damping = 0
 [store]
 dir = "{store}"
 [kafka]
@@ -552,11 +553,16 @@ pub fn nonempty_lists(
         .collect()
 }
 
+/// Where [`single_store_lists`] backfills its store under `work`.
+pub fn single_store_dir(work: &Path) -> PathBuf {
+    work.join("single")
+}
+
 /// The non-empty lists of one store (holding every item) backfilled from `slice` at
 /// recenter tolerance `tolerance`, built under `work`: what the live instances must add
 /// up to.
 pub fn single_store_lists(work: &Path, slice: &Path, tolerance: f64) -> BTreeMap<String, serde_json::Value> {
-    let single = work.join("single");
+    let single = single_store_dir(work);
     super::backfill(
         &single,
         &[slice],

@@ -85,6 +85,9 @@ pub fn config(settings: Settings) -> Config {
     c.similarity.recenter_tolerance = settings.tolerance;
     c.similarity.max_items_per_user = settings.cut;
     c.similarity.min_common_users = settings.min_common_users;
+    // Undamped: the numpy oracles and the hand-worked examples compute plain adjusted
+    // cosine, and the live tests' configurations (live::write_config) say the same.
+    c.similarity.damping = 0.0;
     c.backfill.batch_events = settings.batch_events;
     c.validate().expect("test configuration is valid");
     c
@@ -157,4 +160,39 @@ pub fn tolerance_bound(exact: &RatingSums, tau: f64) -> Option<f64> {
     let sigma_a = (exact.norm_a / exact.n as f64).sqrt();
     let sigma_b = (exact.norm_b / exact.n as f64).sqrt();
     (tau < sigma_a && tau < sigma_b).then(|| (tau / sigma_a).asin() + (tau / sigma_b).asin())
+}
+
+/// Writes ratings as a simtide CSV file, one minute apart from `start` (Unix seconds), in
+/// the order given: the hand-worked examples' input.
+pub fn write_ratings_csv(path: &Path, rows: &[(&str, &[(&str, f64)])], start: i64) {
+    let mut lines = String::from("user,item,value,at\n");
+    let mut at = start;
+    for (user, ratings) in rows {
+        for (item, value) in *ratings {
+            at += 60;
+            lines.push_str(&format!("{user},{item},{value},{at}\n"));
+        }
+    }
+    std::fs::write(path, lines).unwrap();
+}
+
+/// Runs an evaluation oracle of `scripts/` on the whole MovieLens snapshot with the split
+/// and list settings the MovieLens evaluation tests share (seeded random 80/20 split,
+/// seed 7; 30 neighbors, at least 3 co-raters), plus `extra`; returns its JSON output.
+pub fn movielens_oracle(script: &str, extra: &[&str]) -> String {
+    let csv = movielens_csv();
+    let mut args = vec![
+        "--events",
+        csv.to_str().expect("a UTF-8 path"),
+        "--seed",
+        "7",
+        "--fraction",
+        "0.2",
+        "--neighbors",
+        "30",
+        "--min-common-users",
+        "3",
+    ];
+    args.extend(extra);
+    python_json(script, &args)
 }

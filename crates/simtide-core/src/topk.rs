@@ -25,7 +25,8 @@ impl NameOrder {
         NameOrder(rank)
     }
 
-    fn rank(&self, item: u32) -> u32 {
+    /// The item's place in name order (items it does not know go last).
+    pub fn rank(&self, item: u32) -> u32 {
         self.0.get(item as usize).copied().unwrap_or(u32::MAX)
     }
 }
