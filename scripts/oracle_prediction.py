@@ -131,7 +131,7 @@ def main():
         sa = norm[t][:, own].toarray()
         sb = norm_t[t][:, own].toarray()
         with np.errstate(divide="ignore", invalid="ignore"):
-            score = np.clip(d / (np.sqrt(sa) * np.sqrt(sb)), -1.0, 1.0)
+            score = np.clip(d / np.sqrt(sa * sb), -1.0, 1.0)
         ok = (n >= max(args.min_common_users, 1)) & (sa >= ZERO_NORM) & (sb >= ZERO_NORM)
         ok &= np.nan_to_num(score, nan=-np.inf) > args.min_score
         ok &= own[None, :] != t[:, None]

@@ -3,7 +3,7 @@
 popularity baseline, the oracle of `simtide evaluate`'s ranking figures.
 
 Lists: for every training item a, the k items b with the highest adjusted cosine
-s(a, b) = sum d_a d_b / (sqrt(sum d_a^2) sqrt(sum d_b^2)) over co-raters (every user
+s(a, b) = sum d_a d_b / sqrt(sum d_a^2 * sum d_b^2) over co-raters (every user
 centered on the mean of its training ratings), among pairs with at least
 `min_common_users` co-raters, both co-rater norms defined and s > 0; ties by item name.
 
@@ -54,7 +54,7 @@ def item_lists(items, common, dot, norm, norm_t, k, min_common):
         sa = norm[a].toarray().ravel()
         sb = norm_t[a].toarray().ravel()
         with np.errstate(divide="ignore", invalid="ignore"):
-            score = np.clip(d / (np.sqrt(sa) * np.sqrt(sb)), -1.0, 1.0)
+            score = np.clip(d / np.sqrt(sa * sb), -1.0, 1.0)
         ok = (n >= max(min_common, 1)) & (sa >= ZERO_NORM) & (sb >= ZERO_NORM)
         ok &= np.nan_to_num(score, nan=-np.inf) > 0.0
         ok[a] = False

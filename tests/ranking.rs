@@ -206,10 +206,7 @@ fn figures(q: &RankingQuality) -> Vec<(String, f64)> {
 /// equal those of an independent numpy implementation written from the definitions
 /// (scripts/oracle_ranking.py: Deshpande and Karypis 2004 for the mass, Järvelin and
 /// Kekäläinen 2002 for nDCG) on the same split, plain and normalised: precision, recall,
-/// nDCG and hit rate at 5 and 10, and every popularity figure, to 1e-9. At 20, and for
-/// coverage and head share, the two may order a few candidates whose masses differ only
-/// in the last bits differently (simtide sums exact fixed-point statistics, numpy
-/// floating-point ones, so near-equal similarities can swap), so those agree to 0.002.
+/// nDCG and hit rate at 5, 10 and 20, coverage and head share, to 1e-9.
 #[test]
 fn movielens_similarity_mass_and_popularity_match_numpy() {
     let mut config = common::config(Settings {
@@ -233,10 +230,8 @@ fn movielens_similarity_mass_and_popularity_match_numpy() {
         for (ranking, what) in [(&point.ranking, "mass"), (&ours.popularity, "popularity")] {
             for (name, value) in figures(ranking) {
                 let want = numpy[what][&name].as_f64().unwrap();
-                let exact = what == "popularity" || name.ends_with("_at_5") || name.ends_with("_at_10");
-                let tolerance = if exact { 1e-9 } else { 0.002 };
                 assert!(
-                    (value - want).abs() < tolerance,
+                    (value - want).abs() < 1e-9,
                     "{what} {name} ({flag:?}): simtide {value}, numpy {want}"
                 );
             }

@@ -63,12 +63,15 @@ impl RatingSums {
         }
     }
 
-    /// Adjusted cosine Σd_a·d_b / (√Σd_a² · √Σd_b²); `None` when a norm is zero.
+    /// Adjusted cosine Σd_a·d_b / √(Σd_a² · Σd_b²); `None` when a norm is zero. One square
+    /// root of the product, not a product of two roots: when the sums are equal (the
+    /// co-raters deviate alike on both items) the score is exactly 1, where √x·√x can
+    /// round to 0.9999999999999998 and let rounding, not the name, order tied neighbors.
     pub fn adjusted_cosine(&self) -> Option<f64> {
         if self.norm_a < ZERO_NORM || self.norm_b < ZERO_NORM {
             return None;
         }
-        Some((self.dot / (self.norm_a.sqrt() * self.norm_b.sqrt())).clamp(-1.0, 1.0))
+        Some((self.dot / (self.norm_a * self.norm_b).sqrt()).clamp(-1.0, 1.0))
     }
 }
 
@@ -165,6 +168,20 @@ mod tests {
         // score = 1/√10 = 0.316227766016838 (√10 = 3.16227766016838, from memory).
         let s = RatingSums::from_stats(&stats(&[(1.0, 2.0), (-1.0, 1.0)]));
         assert!((s.adjusted_cosine().unwrap() - 0.316_227_766_016_838).abs() < 1e-12);
+    }
+
+    #[test]
+    fn alike_deviations_score_exactly_one() {
+        // Deviations of three co-raters, equal on both items. For some of these sums x,
+        // √x·√x ≠ x in binary floating point (asserted), which is what made such pairs
+        // score 0.9999999999999998 before.
+        let mut rounding_shown = false;
+        for d in [0.1, 0.3, 0.7, 1.1, 1.7, 2.3, 2.9, 3.7] {
+            let s = RatingSums::from_stats(&stats(&[(d, d), (-d / 3.0, -d / 3.0), (d / 7.0, d / 7.0)]));
+            rounding_shown |= s.norm_a.sqrt() * s.norm_b.sqrt() != s.dot;
+            assert_eq!(s.adjusted_cosine(), Some(1.0), "d = {d}");
+        }
+        assert!(rounding_shown, "no sum here shows the rounding of two roots");
     }
 
     #[test]
