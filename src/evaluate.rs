@@ -271,20 +271,6 @@ fn train_store(dir: &Path, config: &Config, events: &[Event]) -> Result<Store> {
     Ok(store)
 }
 
-fn lists_for(store: &Store, signal: Signal, settings: &ListSettings) -> Result<NeighborIndex> {
-    let unavailable = store.unavailable_items()?;
-    let excluded = Exclusions {
-        unavailable: &unavailable,
-    };
-    let names = name_order(store);
-    let mut lists = HashMap::new();
-    for item in 0..store.item_count() as u32 {
-        let row = compute_list(store, signal, item, settings, &excluded, &names)?;
-        lists.insert(item, row.neighbors.iter().map(|n| (n.item, n.score)).collect());
-    }
-    Ok(NeighborIndex::from_lists(lists))
-}
-
 /// Per user of the held-out set: the training history (dense ids).
 type Histories = HashMap<String, UserHistory>;
 
@@ -303,54 +289,78 @@ fn histories(store: &Store, test: &[HeldOut]) -> Result<Histories> {
     Ok(out)
 }
 
-/// The mean of a user's ratings, summed in value order (the same to the last bit
-/// wherever the ratings were loaded from); `None` without ratings.
-fn mean_rating(ratings: &HashMap<u32, f64>) -> Option<f64> {
-    let mut values: Vec<f64> = ratings.values().copied().collect();
-    values.sort_unstable_by(f64::total_cmp);
-    (!values.is_empty()).then(|| values.iter().sum::<f64>() / values.len() as f64)
-}
-
-/// What one training store gives every setting built on it.
+/// What one training store gives every setting built on it, read once.
 struct Trained {
     store: Store,
     histories: Histories,
+    /// Each user's mean training rating (the rating-error baseline).
+    means: HashMap<String, Option<f64>>,
     names: NameOrder,
+    unavailable: FxHashSet<u32>,
+    /// The store's items in popularity order, and the head.
+    popularity: Popularity,
     /// Each evaluated user's relevant held-out items.
     relevant: BTreeMap<String, FxHashSet<u32>>,
 }
 
 impl Trained {
-    fn new(store: Store, test: &[HeldOut], relevant_rating: f64) -> Result<Trained> {
+    fn new(store: Store, test: &[HeldOut], relevant_rating: f64, counts: &TrainingCounts) -> Result<Trained> {
         let histories = histories(&store, test)?;
+        let means = histories
+            .iter()
+            .map(|(u, h)| (u.clone(), h.mean_rating()))
+            .collect();
         let mut relevant: BTreeMap<String, FxHashSet<u32>> = BTreeMap::new();
         for h in test.iter().filter(|h| h.value >= relevant_rating) {
             if let Some(item) = store.item_id(&h.item) {
                 relevant.entry(h.user.clone()).or_default().insert(item);
             }
         }
-        let names = name_order(&store);
         Ok(Trained {
+            names: name_order(&store),
+            unavailable: store.unavailable_items()?,
+            popularity: counts.by_id(&store),
             store,
             histories,
-            names,
+            means,
             relevant,
         })
     }
 
+    /// Every item's `signal` list under `settings`, as publication computes it.
+    fn lists(&self, signal: Signal, settings: &ListSettings) -> Result<NeighborIndex> {
+        let excluded = Exclusions {
+            unavailable: &self.unavailable,
+        };
+        let mut lists = HashMap::new();
+        for item in 0..self.store.item_count() as u32 {
+            let row = compute_list(&self.store, signal, item, settings, &excluded, &self.names)?;
+            lists.insert(item, row.neighbors.iter().map(|n| (n.item, n.score)).collect());
+        }
+        Ok(NeighborIndex::from_lists(lists))
+    }
+
     /// Top lists of the popularity ranking for every evaluated user.
-    fn popular_lists(&self, popularity: &Popularity, length: usize) -> Result<TopLists> {
-        let unavailable = self.store.unavailable_items()?;
-        Ok(self
-            .relevant
+    fn popular_lists(&self, length: usize) -> TopLists {
+        self.relevant
             .keys()
             .map(|user| {
-                let h = &self.histories[user];
-                let has =
-                    |i: u32| h.ratings.contains_key(&i) || h.owned.contains(&i) || unavailable.contains(&i);
-                (user.clone(), popularity.top_for(length, has))
+                let owned = &self.histories[user].owned;
+                let has = |i: u32| owned.contains(&i) || self.unavailable.contains(&i);
+                (user.clone(), self.popularity.top_for(length, has))
             })
-            .collect())
+            .collect()
+    }
+
+    /// Top-N quality of `ranked` against the evaluated users' relevant items.
+    fn quality(&self, ranked: &TopLists, top_n: usize) -> RankingQuality {
+        RankingQuality::measure(
+            ranked,
+            &self.relevant,
+            self.store.item_count(),
+            &self.popularity,
+            top_n,
+        )
     }
 }
 
@@ -361,7 +371,6 @@ fn score_point(
     test: &[HeldOut],
     request: &EvaluationRequest,
     config: &Config,
-    popularity: &Popularity,
 ) -> Result<PointResult> {
     let store = &trained.store;
     let rc = &config.recommend;
@@ -385,7 +394,7 @@ fn score_point(
             continue;
         };
         let ratings = &trained.histories[&h.user].ratings;
-        if let (Some(p), Some(mean)) = (predictor().predict(ratings, item, rho), mean_rating(ratings)) {
+        if let (Some(p), Some(mean)) = (predictor().predict(ratings, item, rho), trained.means[&h.user]) {
             abs += (p - h.value).abs();
             sq += (p - h.value).powi(2);
             base_abs += (mean - h.value).abs();
@@ -393,7 +402,6 @@ fn score_point(
             predicted += 1;
         }
     }
-    let unavailable = store.unavailable_items()?;
     let lists = CandidateLists {
         rating: index,
         purchase: (rc.purchase_weight > 0.0).then_some((purchase, rc.purchase_weight)),
@@ -409,7 +417,13 @@ fn score_point(
         .relevant
         .keys()
         .map(|user| {
-            let scored = score_candidates(&lists, &scorer, &trained.histories[user], &unavailable, rho);
+            let scored = score_candidates(
+                &lists,
+                &scorer,
+                &trained.histories[user],
+                &trained.unavailable,
+                rho,
+            );
             let best = best_first(scored, length, |a, b| {
                 trained.names.rank(a).cmp(&trained.names.rank(b))
             });
@@ -424,13 +438,7 @@ fn score_point(
         predicted_share: predicted as f64 / test.len().max(1) as f64,
         user_mean_mae: base_abs / n,
         user_mean_rmse: (base_sq / n).sqrt(),
-        ranking: RankingQuality::measure(
-            &ranked,
-            &trained.relevant,
-            store.item_count(),
-            popularity,
-            request.top_n,
-        ),
+        ranking: trained.quality(&ranked, request.top_n),
     })
 }
 
@@ -473,30 +481,26 @@ pub fn evaluate(request: &EvaluationRequest, work_dir: &Path) -> Result<Evaluati
             Some(p) => p,
             None => {
                 let store = train_store(&work_dir.join(format!("train-{}", stores.len())), &config, &train)?;
-                stores.push((fingerprint, Trained::new(store, &test, request.relevant_rating)?));
+                stores.push((
+                    fingerprint,
+                    Trained::new(store, &test, request.relevant_rating, &popularity)?,
+                ));
                 stores.len() - 1
             }
         };
         let (_, trained) = &stores[position];
-        let by_id = popularity.by_id(&trained.store);
         if baseline.is_none() {
-            let lists = trained.popular_lists(&by_id, quality_length(request.top_n))?;
-            baseline = Some(RankingQuality::measure(
-                &lists,
-                &trained.relevant,
-                trained.store.item_count(),
-                &by_id,
-                request.top_n,
-            ));
+            let lists = trained.popular_lists(quality_length(request.top_n));
+            baseline = Some(trained.quality(&lists, request.top_n));
         }
         let settings = config.list_settings();
-        let index = lists_for(&trained.store, Signal::Rating, &settings)?;
+        let index = trained.lists(Signal::Rating, &settings)?;
         let purchase = if config.recommend.purchase_weight > 0.0 {
-            lists_for(&trained.store, Signal::Purchase, &settings)?
+            trained.lists(Signal::Purchase, &settings)?
         } else {
             NeighborIndex::default()
         };
-        let scored = score_point(trained, &index, &purchase, &test, request, &config, &by_id)?;
+        let scored = score_point(trained, &index, &purchase, &test, request, &config)?;
         results.push(PointResult { setting, ..scored });
         meter.update(done as u64 + 1, "settings");
     }

@@ -183,7 +183,7 @@ async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
     let ready = s.health.readiness(&s.metrics.freshness()).ready;
     s.metrics.ready.set(i64::from(ready));
     if let Some(table) = &s.other_lists {
-        s.metrics.other_shard_lists.set(table.len() as i64);
+        s.metrics.other_shard_lists.set(table.held() as i64);
     }
     (
         [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],

@@ -3,7 +3,7 @@
 //! `rated` neighborhood), then ranks with the core (`simtide_core::ranking`). Lists are
 //! read one by one, so the cost follows the user's history, not the catalogue.
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::HashMap;
 use std::sync::Arc;
 
 use anyhow::Result;
@@ -11,7 +11,9 @@ use anyhow::Result;
 use crate::config::{Config, Neighborhood, Ranking};
 use crate::kafka::list_table::ListTable;
 use crate::predict::{user_history, NeighborIndex, Predictor, ScoreTable};
-use crate::ranking::{best_first, score_candidates, CandidateLists, Recommendation, Scorer};
+use crate::ranking::{
+    best_first, candidates, predict_candidates, score_candidates, CandidateLists, Recommendation, Scorer,
+};
 use crate::signal::Signal;
 use crate::store::Store;
 
@@ -51,13 +53,8 @@ impl OtherShardLists {
     }
 
     /// How many lists the tables hold.
-    pub fn len(&self) -> usize {
-        self.rating.len() + self.purchase.as_ref().map_or(0, |t| t.len())
-    }
-
-    /// Whether the tables hold no list.
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
+    pub fn held(&self) -> usize {
+        self.rating.held() + self.purchase.as_ref().map_or(0, |t| t.held())
     }
 }
 
@@ -136,17 +133,8 @@ pub fn recommend_user(
             rc.amplification,
         ),
         Ranking::PredictedRating => {
-            // Candidates first (mass scoring lists them), then what predicting them needs.
-            let candidates: BTreeSet<u32> = score_candidates(
-                &candidate_lists,
-                &Scorer::Mass { normalised: false },
-                &history,
-                &unavailable,
-                rc.amplification,
-            )
-            .into_iter()
-            .map(|r| r.item)
-            .collect();
+            // Candidates first, then what predicting them needs.
+            let candidates = candidates(&candidate_lists, &history, &unavailable);
             let (index, table) = match rc.neighborhood {
                 // Predictions read each candidate's own list.
                 Neighborhood::List => (
@@ -169,13 +157,7 @@ pub fn recommend_user(
                 Neighborhood::List => Predictor::List(&index),
                 Neighborhood::Rated => Predictor::Rated(&table),
             };
-            score_candidates(
-                &candidate_lists,
-                &Scorer::Predicted(predictor),
-                &history,
-                &unavailable,
-                rc.amplification,
-            )
+            predict_candidates(&predictor, &history, &candidates, rc.amplification)
         }
     };
     // Ties go by item name, not by dense id: ids depend on the order a store first saw

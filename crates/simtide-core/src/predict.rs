@@ -45,6 +45,16 @@ pub struct UserHistory {
     pub owned: FxHashSet<u32>,
 }
 
+impl UserHistory {
+    /// The mean of the ratings that take part, summed in value order (the same to the
+    /// last bit whatever order they were loaded in); `None` without ratings.
+    pub fn mean_rating(&self) -> Option<f64> {
+        let mut values: Vec<f64> = self.ratings.values().copied().collect();
+        values.sort_unstable_by(f64::total_cmp);
+        (!values.is_empty()).then(|| values.iter().sum::<f64>() / values.len() as f64)
+    }
+}
+
 /// The history of a stored user, with the store's interaction cut.
 pub fn user_history(state: &UserState, cut: usize) -> UserHistory {
     let ratings = state.active_ratings(cut).into_iter().collect();

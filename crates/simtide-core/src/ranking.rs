@@ -50,9 +50,89 @@ pub struct Recommendation {
     pub from_neighbors: bool,
 }
 
+/// Every (candidate, term) pair, one per list that holds the candidate, sorted by
+/// candidate and then by value: one vector sorted once, rather than a vector per
+/// candidate (those allocations were a fifth of a request's time in a profile).
+fn mass_terms(
+    lists: &CandidateLists,
+    user: &UserHistory,
+    unavailable: &FxHashSet<u32>,
+    rho: f64,
+    normalised: bool,
+) -> Vec<(u32, f64)> {
+    // `owned` holds every item the user rated (also those the cut leaves out) or bought.
+    let eligible = |i: u32| !user.owned.contains(&i) && !unavailable.contains(&i);
+    let mut terms: Vec<(u32, f64)> = Vec::new();
+    let mut gather = |index: &NeighborIndex, items: &mut dyn Iterator<Item = u32>, weight: f64| {
+        for j in items {
+            let list = index.neighbors(j);
+            let total: f64 = if normalised {
+                list.iter().map(|(_, s)| amplified(*s, rho)).sum()
+            } else {
+                1.0
+            };
+            if total <= 0.0 {
+                continue;
+            }
+            terms.extend(
+                list.iter()
+                    .filter(|(i, _)| eligible(*i))
+                    .map(|&(i, s)| (i, weight * amplified(s, rho) / total)),
+            );
+        }
+    };
+    gather(lists.rating, &mut user.ratings.keys().copied(), 1.0);
+    if let Some((index, weight)) = lists.purchase {
+        if weight > 0.0 {
+            gather(index, &mut user.bought.iter().copied(), weight);
+        }
+    }
+    terms.sort_unstable_by(|a, b| a.0.cmp(&b.0).then(a.1.total_cmp(&b.1)));
+    terms
+}
+
+/// The user's candidates, in id order: what a caller must read lists or rows of before
+/// predicting them ([`predict_candidates`]).
+pub fn candidates(lists: &CandidateLists, user: &UserHistory, unavailable: &FxHashSet<u32>) -> Vec<u32> {
+    let mut items: Vec<u32> = mass_terms(lists, user, unavailable, 1.0, false)
+        .into_iter()
+        .map(|(i, _)| i)
+        .collect();
+    items.dedup();
+    items
+}
+
+/// The weighted-sum prediction of each candidate, the user's mean standing in where no
+/// neighbor is rated; empty for a user without ratings.
+pub fn predict_candidates(
+    predictor: &Predictor,
+    user: &UserHistory,
+    candidates: &[u32],
+    rho: f64,
+) -> Vec<Recommendation> {
+    let Some(mean) = user.mean_rating() else {
+        return Vec::new();
+    };
+    candidates
+        .iter()
+        .map(|&item| match predictor.predict(&user.ratings, item, rho) {
+            Some(p) => Recommendation {
+                item,
+                score: p,
+                from_neighbors: true,
+            },
+            None => Recommendation {
+                item,
+                score: mean,
+                from_neighbors: false,
+            },
+        })
+        .collect()
+}
+
 /// Every candidate of the user with its score, in no particular order; empty for a user
-/// with nothing to draw on. Sums are taken in value order, so a score is the same to the
-/// last bit whatever order the user's items were loaded in.
+/// with nothing to draw on. A candidate's mass terms are added in ascending order of
+/// value, so a score is the same to the last bit whatever order the lists were read in.
 pub fn score_candidates(
     lists: &CandidateLists,
     scorer: &Scorer,
@@ -60,73 +140,17 @@ pub fn score_candidates(
     unavailable: &FxHashSet<u32>,
     rho: f64,
 ) -> Vec<Recommendation> {
-    let eligible =
-        |i: u32| !user.ratings.contains_key(&i) && !user.owned.contains(&i) && !unavailable.contains(&i);
-    // Every (candidate, term), one per list that holds the candidate: one vector, sorted
-    // once, rather than a vector per candidate (the allocations were a fifth of a
-    // request's time in a profile).
-    let mut terms: Vec<(u32, f64)> = Vec::new();
-    let mut gather =
-        |index: &NeighborIndex, items: &mut dyn Iterator<Item = u32>, weight: f64, normalised: bool| {
-            for j in items {
-                let list = index.neighbors(j);
-                let total: f64 = if normalised {
-                    list.iter().map(|(_, s)| amplified(*s, rho)).sum()
-                } else {
-                    1.0
-                };
-                if total <= 0.0 {
-                    continue;
-                }
-                terms.extend(
-                    list.iter()
-                        .filter(|(i, _)| eligible(*i))
-                        .map(|&(i, s)| (i, weight * amplified(s, rho) / total)),
-                );
-            }
-        };
-    let normalised = matches!(scorer, Scorer::Mass { normalised: true });
-    gather(lists.rating, &mut user.ratings.keys().copied(), 1.0, normalised);
-    if let Some((index, weight)) = lists.purchase {
-        if weight > 0.0 {
-            gather(index, &mut user.bought.iter().copied(), weight, normalised);
-        }
-    }
-    terms.sort_unstable_by(|a, b| a.0.cmp(&b.0).then(a.1.total_cmp(&b.1)));
-    // Each candidate's terms are added in ascending order of value, whatever order the
-    // lists were read in.
-    let candidates = terms
-        .chunk_by(|a, b| a.0 == b.0)
-        .map(|run| (run[0].0, run.iter().map(|(_, t)| *t).sum::<f64>()));
     match scorer {
-        Scorer::Mass { .. } => candidates
-            .map(|(item, score)| Recommendation {
-                item,
-                score,
+        Scorer::Mass { normalised } => mass_terms(lists, user, unavailable, rho, *normalised)
+            .chunk_by(|a, b| a.0 == b.0)
+            .map(|run| Recommendation {
+                item: run[0].0,
+                score: run.iter().map(|(_, t)| *t).sum(),
                 from_neighbors: true,
             })
             .collect(),
         Scorer::Predicted(predictor) => {
-            if user.ratings.is_empty() {
-                return Vec::new();
-            }
-            let mut values: Vec<f64> = user.ratings.values().copied().collect();
-            values.sort_unstable_by(f64::total_cmp);
-            let mean = values.iter().sum::<f64>() / values.len() as f64;
-            candidates
-                .map(|(item, _)| match predictor.predict(&user.ratings, item, rho) {
-                    Some(p) => Recommendation {
-                        item,
-                        score: p,
-                        from_neighbors: true,
-                    },
-                    None => Recommendation {
-                        item,
-                        score: mean,
-                        from_neighbors: false,
-                    },
-                })
-                .collect()
+            predict_candidates(predictor, user, &candidates(lists, user, unavailable), rho)
         }
     }
 }
