@@ -1,11 +1,14 @@
 //! Liveness and readiness of the service: the facts `/readyz` reports, each check with the
-//! reason it fails, so the on-call engineer reads why, not only that. Readiness means
+//! reason it fails, so the on-call engineer reads why, not only that. Liveness means "the
+//! consuming loop still comes round": `/healthz` fails once neither the loop nor a
+//! publication has made progress for `live.stall_limit`, so an orchestrator restarts a
+//! process wedged in a retry that cannot succeed (lag alone never fails it). Readiness means
 //! "the lists on the output topics can be relied on": the broker answers, the store takes
 //! writes, partitions are assigned, every written topic exists and takes records, and the
 //! lists are fresh (consumer lag and staleness within `[readiness]`).
 
 use std::collections::BTreeMap;
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -32,6 +35,40 @@ pub struct Health {
     topic_problems: Mutex<Vec<String>>,
     /// Topic → (first failure of the current run of failed deliveries, last reason).
     failing_deliveries: Mutex<BTreeMap<String, (Instant, String)>>,
+    /// One sentence per input partition left unconsumed because its stored position is
+    /// outside the log (`kafka.position_outside_log = "refuse"`).
+    refused_positions: Mutex<Vec<String>>,
+    /// What the times of [`Health::beat`] count from.
+    born: Instant,
+    /// Milliseconds after `born` of the last progress of the loop or a publication;
+    /// [`NOT_STARTED`] until the loop first comes round (opening or migrating a large
+    /// store is not a stall).
+    last_beat_ms: AtomicU64,
+    /// Longest time without progress before `/healthz` fails.
+    stall_limit: Duration,
+}
+
+/// `last_beat_ms` before the first beat.
+const NOT_STARTED: u64 = u64::MAX;
+
+/// Why `/healthz` fails: the loop made no progress for longer than the limit.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Stalled {
+    /// Seconds since the last progress.
+    pub seconds: u64,
+    /// The limit, seconds.
+    pub limit_seconds: u64,
+}
+
+impl std::fmt::Display for Stalled {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "the consuming loop has made no progress for {}s, more than live.stall_limit = {}s; \
+             /readyz and the log say what it waits for",
+            self.seconds, self.limit_seconds
+        )
+    }
 }
 
 /// How fresh the published lists are, read from the metrics when readiness is asked.
@@ -91,9 +128,19 @@ pub struct ShardPlace {
 }
 
 impl Health {
-    /// Health tied to the shared broker state, judged by `limits`, of `shard`.
-    pub fn new(brokers: Arc<BrokerState>, limits: ReadinessConfig, shard: ShardSpec) -> Health {
+    /// Health tied to the shared broker state, judged by `limits`, of `shard`; alive
+    /// while the loop makes progress at least every `stall_limit`.
+    pub fn new(
+        brokers: Arc<BrokerState>,
+        limits: ReadinessConfig,
+        shard: ShardSpec,
+        stall_limit: Duration,
+    ) -> Health {
         Health {
+            refused_positions: Mutex::new(Vec::new()),
+            born: Instant::now(),
+            last_beat_ms: AtomicU64::new(NOT_STARTED),
+            stall_limit,
             brokers,
             shard,
             limits,
@@ -104,6 +151,36 @@ impl Health {
             topic_problems: Mutex::new(vec!["the written topics have not been checked yet".to_string()]),
             failing_deliveries: Mutex::new(BTreeMap::new()),
         }
+    }
+
+    /// Records progress: the loop came round, or a publication chunk was settled.
+    pub fn beat(&self) {
+        self.last_beat_ms
+            .store(self.born.elapsed().as_millis() as u64, Ordering::Relaxed);
+    }
+
+    /// `Err` once no progress was recorded for longer than the stall limit.
+    pub fn liveness(&self, now: Instant) -> Result<(), Stalled> {
+        let last = self.last_beat_ms.load(Ordering::Relaxed);
+        if last == NOT_STARTED {
+            return Ok(());
+        }
+        let since_born = now.saturating_duration_since(self.born).as_millis() as u64;
+        let quiet = Duration::from_millis(since_born.saturating_sub(last));
+        if quiet > self.stall_limit {
+            Err(Stalled {
+                seconds: quiet.as_secs(),
+                limit_seconds: self.stall_limit.as_secs(),
+            })
+        } else {
+            Ok(())
+        }
+    }
+
+    /// Replaces the sentences naming the partitions refused for a position outside the
+    /// log (empty: none).
+    pub fn set_refused_positions(&self, refused: Vec<String>) {
+        *self.refused_positions.lock().expect("health lock") = refused;
     }
 
     /// Records a failed store write (`Some`) or a good one (`None`).
@@ -152,7 +229,7 @@ impl Health {
     /// The current checks, with freshness judged against the configured limits.
     pub fn readiness(&self, freshness: &Freshness) -> Readiness {
         let checks = vec![
-            Check::new("store", self.store_error.lock().expect("health lock").clone()),
+            Check::new("store", self.store_problem()),
             Check::new(
                 "broker",
                 (!self.brokers.reachable())
@@ -167,6 +244,7 @@ impl Health {
             Check::new("deliveries", self.delivery_problem(Instant::now())),
             Check::new("lag", self.lag_problem(freshness)),
             Check::new("staleness", self.staleness_problem(freshness)),
+            Check::new("positions", self.positions_problem()),
             Check::new(
                 "running",
                 self.stopping
@@ -183,6 +261,31 @@ impl Health {
             publishing: self.publishing.load(Ordering::Relaxed),
             checks,
         }
+    }
+
+    /// The last store write's error, and a malformed value the store's merge operators
+    /// met (reported by RocksDB as corruption; it stays until the process restarts).
+    fn store_problem(&self) -> Option<String> {
+        let error = self.store_error.lock().expect("health lock").clone();
+        let Some(place) = crate::store::merge::malformed_operand() else {
+            return error;
+        };
+        let corruption =
+            format!("the store holds a value its merge operator cannot read (corruption) at {place}");
+        Some(match error {
+            Some(e) => format!("{corruption}; {e}"),
+            None => corruption,
+        })
+    }
+
+    fn positions_problem(&self) -> Option<String> {
+        let refused = self.refused_positions.lock().expect("health lock");
+        (!refused.is_empty()).then(|| {
+            format!(
+                "not consumed until an operator decides (kafka.position_outside_log): {}",
+                refused.join("; ")
+            )
+        })
     }
 
     fn topics_problem(&self) -> Option<String> {
@@ -233,7 +336,12 @@ mod tests {
     use super::*;
 
     fn health(limits: ReadinessConfig) -> Health {
-        let h = Health::new(Arc::new(BrokerState::default()), limits, ShardSpec::SINGLE);
+        let h = Health::new(
+            Arc::new(BrokerState::default()),
+            limits,
+            ShardSpec::SINGLE,
+            Duration::from_secs(60),
+        );
         h.set_consuming(true);
         h.set_topic_problems(Vec::new());
         h
@@ -257,6 +365,7 @@ mod tests {
             Arc::new(BrokerState::default()),
             ReadinessConfig::default(),
             ShardSpec { shards: 3, shard: 2 },
+            Duration::from_secs(60),
         );
         new.set_consuming(true);
         assert_eq!(failing(&new.readiness(&fresh())), ["topics"]);
@@ -308,5 +417,43 @@ mod tests {
         );
         h.note_delivery("dead", None);
         assert_eq!(h.delivery_problem(later), None);
+    }
+
+    #[test]
+    fn a_refused_partition_fails_readiness_naming_it() {
+        let h = health(ReadinessConfig::default());
+        h.set_refused_positions(vec!["partition 0: the stored next offset 1000 is outside".into()]);
+        let r = h.readiness(&fresh());
+        assert_eq!(failing(&r), ["positions"]);
+        let detail = &r.checks.iter().find(|c| c.name == "positions").unwrap().detail;
+        assert!(
+            detail.contains("kafka.position_outside_log") && detail.contains("partition 0"),
+            "{detail}"
+        );
+        h.set_refused_positions(Vec::new());
+        assert!(h.readiness(&fresh()).ready);
+    }
+
+    #[test]
+    fn liveness_fails_only_after_the_stall_limit_without_progress() {
+        let h = health(ReadinessConfig::default());
+        let now = Instant::now();
+        let much_later = now + Duration::from_secs(3600);
+        assert_eq!(
+            h.liveness(much_later),
+            Ok(()),
+            "not started yet: opening a store is no stall"
+        );
+        h.beat();
+        assert_eq!(h.liveness(now), Ok(()));
+        let stalled = h.liveness(now + Duration::from_secs(61)).unwrap_err();
+        assert!(
+            stalled.seconds >= 61 && stalled.limit_seconds == 60,
+            "{stalled:?}"
+        );
+        assert!(
+            stalled.to_string().contains("live.stall_limit = 60s"),
+            "{stalled}"
+        );
     }
 }

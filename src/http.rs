@@ -16,7 +16,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use axum::extract::{Path, Query, State};
+use axum::extract::State;
 use axum::http::{header, HeaderMap, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -25,8 +25,10 @@ use serde::Serialize;
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
 
+mod extract;
 mod recommendations;
 
+use self::extract::{ApiPath, ApiQuery};
 use crate::cluster::{owner, ShardSpec};
 use crate::config::Config;
 use crate::health::Health;
@@ -150,7 +152,7 @@ pub async fn bind(listen: &str) -> Result<TcpListener> {
 /// The routes.
 pub fn router(state: HttpState) -> Router {
     Router::new()
-        .route("/healthz", get(|| async { "alive\n" }))
+        .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
         .route("/metrics", get(metrics))
         .route("/v1/lists/{item}", get(list))
@@ -166,6 +168,17 @@ pub fn router(state: HttpState) -> Router {
             )
         })
         .with_state(state)
+}
+
+/// 200 while the consuming loop makes progress; 503 with the reason once it has not
+/// for `live.stall_limit` (the orchestrator's cue to restart).
+async fn healthz(State(s): State<HttpState>) -> Response {
+    match s.health.liveness(std::time::Instant::now()) {
+        Ok(()) => "alive\n".into_response(),
+        Err(stalled) => {
+            ApiError::new(StatusCode::SERVICE_UNAVAILABLE, "stalled", stalled.to_string()).into_response()
+        }
+    }
 }
 
 async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
@@ -243,16 +256,23 @@ async fn with_store<T: Send + 'static>(
                 s.request_timeout.as_millis()
             ),
         )),
-        Ok(Err(e)) => Err(ApiError::new(
-            StatusCode::INTERNAL_SERVER_ERROR,
-            "internal",
-            e.to_string(),
-        )),
-        Ok(Ok(Err(e))) => Err(ApiError::new(
-            StatusCode::SERVICE_UNAVAILABLE,
-            "store",
-            format!("{e:#}"),
-        )),
+        // The reasons go to the log, not to an anonymous caller: they can name files.
+        Ok(Err(e)) => {
+            tracing::error!(error = %e, "a lookup failed");
+            Err(ApiError::new(
+                StatusCode::INTERNAL_SERVER_ERROR,
+                "internal",
+                "the lookup failed; the service log has the reason",
+            ))
+        }
+        Ok(Ok(Err(e))) => {
+            tracing::warn!(error = %format!("{e:#}"), "a lookup could not read the store");
+            Err(ApiError::new(
+                StatusCode::SERVICE_UNAVAILABLE,
+                "store",
+                "the store could not answer this lookup; /readyz and the service log have the reason",
+            ))
+        }
         Ok(Ok(Ok(value))) => Ok(value),
     }
 }
@@ -265,8 +285,8 @@ struct ListQuery {
 
 async fn list(
     State(s): State<HttpState>,
-    Path(item): Path<String>,
-    Query(q): Query<ListQuery>,
+    ApiPath(item): ApiPath<String>,
+    ApiQuery(q): ApiQuery<ListQuery>,
 ) -> Result<Json<NeighborRecord>, ApiError> {
     check_id(&s, "item", &item)?;
     owned_here(&s, &[&item])?;
@@ -299,26 +319,55 @@ async fn list(
     })
 }
 
-async fn pair(State(s): State<HttpState>, Path((a, b)): Path<(String, String)>) -> Result<String, ApiError> {
+/// What a pair lookup found.
+enum PairAnswer {
+    /// The explain view.
+    Explained(String),
+    /// An item is not in the store.
+    Unknown,
+    /// Fewer co-raters than `similarity.min_common_users` (their number).
+    BelowSupport(u64),
+}
+
+/// The explain view of a pair, refused below `similarity.min_common_users`: with one
+/// co-rater the sums are that person's exact rating deviations, which an anonymous
+/// caller must not read.
+async fn pair(
+    State(s): State<HttpState>,
+    ApiPath((a, b)): ApiPath<(String, String)>,
+) -> Result<String, ApiError> {
     check_id(&s, "first item", &a)?;
     check_id(&s, "second item", &b)?;
     owned_here(&s, &[&a, &b])?;
     let settings = s.lists;
     let (qa, qb) = (a.clone(), b.clone());
     let found = with_store(&s, move |store| {
-        if store.item_id(&qa).is_none() || store.item_id(&qb).is_none() {
-            return Ok(None);
+        let (Some(ia), Some(ib)) = (store.item_id(&qa), store.item_id(&qb)) else {
+            return Ok(PairAnswer::Unknown);
+        };
+        let co_raters = store.rating_pair(ia, ib)?.map_or(0, |p| p.n.max(0) as u64);
+        if co_raters < settings.min_common_users {
+            return Ok(PairAnswer::BelowSupport(co_raters));
         }
-        explain_pair(store, &qa, &qb, &settings).map(Some)
+        explain_pair(store, &qa, &qb, &settings).map(PairAnswer::Explained)
     })
     .await?;
-    found.ok_or_else(|| {
-        ApiError::new(
+    match found {
+        PairAnswer::Explained(text) => Ok(text),
+        PairAnswer::Unknown => Err(ApiError::new(
             StatusCode::NOT_FOUND,
             "not_found",
             format!("{a:?} or {b:?} is not in the store"),
-        )
-    })
+        )),
+        PairAnswer::BelowSupport(n) => Err(ApiError::new(
+            StatusCode::NOT_FOUND,
+            "below_support",
+            format!(
+                "the pair has {n} co-rater(s), fewer than similarity.min_common_users = {}: its sums would show individual ratings",
+                settings.min_common_users
+            ),
+        )),
+    }
 }
 
 /// Whether the request carries the configured token (compared in constant time).
@@ -338,7 +387,7 @@ fn authorized(headers: &HeaderMap, token: &str) -> bool {
             == 0
 }
 
-async fn admin(State(s): State<HttpState>, Path(action): Path<String>, headers: HeaderMap) -> Response {
+async fn admin(State(s): State<HttpState>, ApiPath(action): ApiPath<String>, headers: HeaderMap) -> Response {
     if s.admin_token.is_empty() {
         return ApiError::new(
             StatusCode::FORBIDDEN,
@@ -478,8 +527,44 @@ pub fn serve_metrics_in_background(listen: &str, metrics: Arc<Metrics>) -> Resul
 }
 
 /// Serves until the task is dropped.
-pub async fn serve(listener: TcpListener, state: HttpState) {
-    if let Err(e) = axum::serve(listener, router(state)).await {
-        tracing::error!(error = %e, "HTTP listener stopped");
+pub async fn serve(listener: TcpListener, state: HttpState, limits: ConnectionLimits) {
+    let app = router(state);
+    let places = Arc::new(Semaphore::new(limits.max_connections));
+    loop {
+        // At the cap, new connections wait in the listen backlog until one closes.
+        let Ok(place) = places.clone().acquire_owned().await else {
+            return;
+        };
+        let stream = match listener.accept().await {
+            Ok((stream, _)) => stream,
+            Err(e) => {
+                tracing::warn!(error = %e, "HTTP accept failed");
+                tokio::time::sleep(Duration::from_millis(100)).await;
+                continue;
+            }
+        };
+        let service = hyper_util::service::TowerToHyperService::new(app.clone());
+        let header_timeout = limits.header_timeout;
+        tokio::spawn(async move {
+            let _place = place;
+            let mut connection = hyper::server::conn::http1::Builder::new();
+            connection
+                .timer(hyper_util::rt::TokioTimer::new())
+                .header_read_timeout(header_timeout);
+            // A client that stalls or hangs up only ends its own connection.
+            let _ = connection
+                .serve_connection(hyper_util::rt::TokioIo::new(stream), service)
+                .await;
+        });
     }
+}
+
+/// What one client may hold of the listener: connections at once, and the time to send a
+/// request's headers (a client that opens connections and sends nothing cannot hold them).
+#[derive(Debug, Clone, Copy)]
+pub struct ConnectionLimits {
+    /// `http.max_connections`.
+    pub max_connections: usize,
+    /// `http.header_timeout`.
+    pub header_timeout: Duration,
 }

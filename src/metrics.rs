@@ -40,10 +40,14 @@ pub mod names {
     pub const CONSUMER_LAG_MESSAGES: &str = "simtide_consumer_lag_messages";
     /// `simtide_dead_letters_total`.
     pub const DEAD_LETTERS_TOTAL: &str = "simtide_dead_letters_total";
+    /// `simtide_dead_letters_undeliverable_total`.
+    pub const DEAD_LETTERS_UNDELIVERABLE_TOTAL: &str = "simtide_dead_letters_undeliverable_total";
     /// `simtide_entities`.
     pub const ENTITIES: &str = "simtide_entities";
     /// `simtide_event_time_lag_seconds`.
     pub const EVENT_TIME_LAG_SECONDS: &str = "simtide_event_time_lag_seconds";
+    /// `simtide_erasures_rejected_total`.
+    pub const ERASURES_REJECTED_TOTAL: &str = "simtide_erasures_rejected_total";
     /// `simtide_events_total`.
     pub const EVENTS_TOTAL: &str = "simtide_events_total";
     /// `simtide_last_publish_timestamp_seconds`.
@@ -56,6 +60,10 @@ pub mod names {
     pub const LIST_RANK_BIASED_OVERLAP_RATIO: &str = "simtide_list_rank_biased_overlap_ratio";
     /// `simtide_lists_published_total`.
     pub const LISTS_PUBLISHED_TOTAL: &str = "simtide_lists_published_total";
+    /// `simtide_input_offsets_skipped_total`.
+    pub const INPUT_OFFSETS_SKIPPED_TOTAL: &str = "simtide_input_offsets_skipped_total";
+    /// `simtide_input_partitions_refused`.
+    pub const INPUT_PARTITIONS_REFUSED: &str = "simtide_input_partitions_refused";
     /// `simtide_other_shard_lists`.
     pub const OTHER_SHARD_LISTS: &str = "simtide_other_shard_lists";
     /// `simtide_pair_updates_total`.
@@ -102,6 +110,14 @@ pub struct Metrics {
     pub rejected: IntCounterVec,
     /// Dead letters acknowledged by the broker, by reason.
     pub dead_letters: IntCounterVec,
+    /// Dead letters the broker refused for good, recorded in the rejects file instead.
+    pub dead_letters_undeliverable: IntCounter,
+    /// Refused messages that look like erasures (dead-lettered, not applied).
+    pub erasures_rejected: IntCounter,
+    /// Input partitions not consumed because their stored position is outside the log.
+    pub partitions_refused: IntGauge,
+    /// Input offsets never applied because a policy resumed outside the stored position.
+    pub offsets_skipped: IntCounter,
     /// Micro-batches applied.
     pub batches: IntCounter,
     /// Time to apply one batch.
@@ -240,6 +256,26 @@ impl Metrics {
                 "Refused events delivered to the dead-letter topic, by reason.",
                 &["reason"],
             )),
+            dead_letters_undeliverable: r.add(IntCounter::new(
+                names::DEAD_LETTERS_UNDELIVERABLE_TOTAL,
+                "Refused events whose dead letter the broker refused for good (too large, not authorised, invalid topic); each is recorded in the store's rejects file without its payload and consumption goes on.",
+            )
+            .expect("valid")),
+            erasures_rejected: r.add(IntCounter::new(
+                names::ERASURES_REJECTED_TOTAL,
+                "Refused messages that name erase_user: the person's data stays until a corrected erasure arrives.",
+            )
+            .expect("valid")),
+            partitions_refused: r.add(IntGauge::new(
+                names::INPUT_PARTITIONS_REFUSED,
+                "Input partitions left unconsumed because the store's position is outside the retained log and kafka.position_outside_log is refuse.",
+            )
+            .expect("valid")),
+            offsets_skipped: r.add(IntCounter::new(
+                names::INPUT_OFFSETS_SKIPPED_TOTAL,
+                "Input offsets never applied because kafka.position_outside_log resumed a partition away from the store's position.",
+            )
+            .expect("valid")),
             batches: r.add(IntCounter::new(names::BATCHES_TOTAL, "Micro-batches applied.").expect("valid")),
             batch_seconds: r.add(histogram(
                 names::BATCH_DURATION_SECONDS,

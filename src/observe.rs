@@ -7,6 +7,7 @@
 use std::collections::BTreeMap;
 
 use crate::decode::RejectReason;
+use crate::kafka::outside_log::OutsidePosition;
 use crate::log_limit;
 use crate::metrics::Metrics;
 use crate::pipeline::BatchSummary;
@@ -86,6 +87,35 @@ pub enum Observation<'a> {
         undelivered: usize,
         /// The first reason the client gave.
         first_reason: &'a str,
+    },
+    /// The input partitions left unconsumed because their stored position is outside
+    /// the log (all of them; the set changed).
+    PositionsRefused {
+        /// Each refused partition's finding.
+        refused: &'a [&'a OutsidePosition],
+    },
+    /// A partition whose stored position was outside the log resumed elsewhere by policy.
+    OffsetsSkipped {
+        /// What was found.
+        outside: &'a OutsidePosition,
+        /// Where consumption resumes.
+        at: i64,
+        /// Offsets of the current log never applied.
+        skipped: u64,
+    },
+    /// Refused messages that look like erasures were dead-lettered.
+    ErasuresRejected {
+        /// How many.
+        count: usize,
+    },
+    /// The broker refused a dead letter for good; it is recorded in the rejects file.
+    DeadLetterUndeliverable {
+        /// Where the refused message came from.
+        partition: i32,
+        /// Its offset.
+        offset: i64,
+        /// The broker's reason.
+        error: &'a str,
     },
     /// A state-changing HTTP request came without the right token.
     AdminRefused,
@@ -234,6 +264,44 @@ impl Observation<'_> {
                     );
                 }
                 m.delivery_failures.inc_by(*undelivered as u64);
+            }
+            Observation::PositionsRefused { refused } => {
+                for outside in refused.iter() {
+                    tracing::error!(
+                        partition = outside.partition,
+                        "input partition not consumed: {outside}; set kafka.position_outside_log to resume_at_log_start or resume_at_log_end to accept the loss"
+                    );
+                }
+                m.partitions_refused.set(refused.len() as i64);
+            }
+            Observation::OffsetsSkipped { outside, at, skipped } => {
+                tracing::warn!(
+                    partition = outside.partition,
+                    resumed_at = at,
+                    skipped,
+                    "{outside}; resuming by kafka.position_outside_log"
+                );
+                m.offsets_skipped.inc_by(*skipped);
+            }
+            Observation::ErasuresRejected { count } => {
+                tracing::error!(
+                    count,
+                    "erase_user events were refused and dead-lettered: the users' data stays until a corrected erasure is sent"
+                );
+                m.erasures_rejected.inc_by(*count as u64);
+            }
+            Observation::DeadLetterUndeliverable {
+                partition,
+                offset,
+                error,
+            } => {
+                tracing::error!(
+                    partition,
+                    offset,
+                    error,
+                    "the broker refused a dead letter for good; recorded in the rejects file, consumption goes on"
+                );
+                m.dead_letters_undeliverable.inc();
             }
             Observation::AdminRefused => {
                 if let Some(suppressed) = log_limit::admit("admin_refused") {

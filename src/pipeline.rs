@@ -7,7 +7,7 @@
 
 use std::collections::{BTreeMap, HashMap};
 
-use anyhow::Result;
+use anyhow::{bail, Result};
 
 use crate::cluster::ShardSpec;
 use crate::decode::RejectReason;
@@ -41,29 +41,43 @@ pub struct BatchSummary {
 /// Dense ids of one kind of name (users or items) within a batch: known ones, and the
 /// new ones assigned from the store's counter.
 struct NameIds {
+    /// `user` or `item`, for the error that says the ids ran out.
+    kind: &'static str,
     known: HashMap<String, u32>,
     next: u32,
     added: Vec<(u32, String)>,
 }
 
+/// The first dense id never given out: ids are u32 and stay below this, so a store that
+/// has used them all refuses a new name instead of wrapping round onto id 0.
+pub const ID_LIMIT: u32 = u32::MAX;
+
 impl NameIds {
-    fn starting_at(next: u32) -> NameIds {
+    fn starting_at(kind: &'static str, next: u32) -> NameIds {
         NameIds {
+            kind,
             known: HashMap::new(),
             next,
             added: Vec::new(),
         }
     }
 
-    fn id(&mut self, name: &str, stored: impl Fn(&str) -> Option<u32>) -> u32 {
+    fn id(&mut self, name: &str, stored: impl Fn(&str) -> Option<u32>) -> Result<u32> {
         if let Some(id) = stored(name).or_else(|| self.known.get(name).copied()) {
-            return id;
+            return Ok(id);
         }
         let id = self.next;
+        if id == ID_LIMIT {
+            bail!(
+                "the store has given out all {ID_LIMIT} dense {kind} ids and cannot take a new {kind}; \
+                 nothing of this batch was applied (simtide_entities{{entity=\"{kind}s\"}} shows the ids in use)",
+                kind = self.kind
+            );
+        }
         self.next += 1;
         self.known.insert(name.to_string(), id);
         self.added.push((id, name.to_string()));
-        id
+        Ok(id)
     }
 }
 
@@ -104,39 +118,39 @@ impl<'a> Interner<'a> {
         })
     }
 
-    fn user(&mut self, name: &str) -> u32 {
+    fn user(&mut self, name: &str) -> Result<u32> {
         let stored = &self.stored_users;
         self.users.id(name, |n| stored.get(n).copied())
     }
 
-    fn item(&mut self, name: &str) -> u32 {
+    fn item(&mut self, name: &str) -> Result<u32> {
         let store = self.store;
         self.items.id(name, |n| store.item_id(n))
     }
 
-    fn action(&mut self, body: &EventBody) -> Action {
-        match body {
+    fn action(&mut self, body: &EventBody) -> Result<Action> {
+        Ok(match body {
             EventBody::Rating { user, item, value } => Action::Rate {
-                user: self.user(user),
-                item: self.item(item),
+                user: self.user(user)?,
+                item: self.item(item)?,
                 value: *value,
             },
             EventBody::Unrating { user, item } => Action::Unrate {
-                user: self.user(user),
-                item: self.item(item),
+                user: self.user(user)?,
+                item: self.item(item)?,
             },
             EventBody::Purchase { user, item } => Action::Purchase {
-                user: self.user(user),
-                item: self.item(item),
+                user: self.user(user)?,
+                item: self.item(item)?,
             },
             EventBody::EraseUser { user } => Action::Erase {
-                user: self.user(user),
+                user: self.user(user)?,
             },
             EventBody::ItemStatus { item, available } => Action::ItemStatus {
-                item: self.item(item),
+                item: self.item(item)?,
                 available: *available,
             },
-        }
+        })
     }
 }
 
@@ -171,8 +185,8 @@ impl Pending {
     pub fn new(store: &Store) -> Pending {
         let ledger = store.ledger().clone();
         Pending {
-            users: NameIds::starting_at(ledger.next_user),
-            items: NameIds::starting_at(ledger.next_item),
+            users: NameIds::starting_at("user", ledger.next_user),
+            items: NameIds::starting_at("item", ledger.next_item),
             states: HashMap::new(),
             statuses: HashMap::new(),
             effects: SegmentEffects::default(),
@@ -223,13 +237,13 @@ impl Pending {
             .map(|e| {
                 let seq = next_seq;
                 next_seq += 1;
-                Sequenced {
+                Ok(Sequenced {
                     seq,
                     at: e.at,
-                    action: interner.action(&e.body),
-                }
+                    action: interner.action(&e.body)?,
+                })
             })
-            .collect();
+            .collect::<Result<_>>()?;
         let mut unloaded: Vec<u32> = sequenced
             .iter()
             .filter_map(|s| s.action.user())
@@ -412,4 +426,31 @@ pub fn apply_and_commit(
     advance(pending.ledger_mut());
     pending.commit(store, PairWrite::InBatch)?;
     Ok(summary)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{NameIds, ID_LIMIT};
+
+    #[test]
+    fn the_last_dense_id_is_given_then_new_names_are_refused_not_wrapped() {
+        let mut ids = NameIds::starting_at("item", ID_LIMIT - 1);
+        assert_eq!(ids.id("rake", |_| None).unwrap(), ID_LIMIT - 1);
+        assert_eq!(
+            ids.id("rake", |_| None).unwrap(),
+            ID_LIMIT - 1,
+            "a known name keeps its id"
+        );
+        assert_eq!(
+            ids.id("hoe", |n| (n == "hoe").then_some(7)).unwrap(),
+            7,
+            "a stored one too"
+        );
+        let refused = ids.id("trowel", |_| None).unwrap_err().to_string();
+        assert!(
+            refused.contains("all 4294967295 dense item ids") && refused.contains("cannot take a new item"),
+            "{refused}"
+        );
+        assert_eq!(ids.next, ID_LIMIT, "nothing wrapped round to 0");
+    }
 }

@@ -12,8 +12,9 @@ use flate2::read::MultiGzDecoder;
 
 use crate::decode::csv_records::CsvColumns;
 use crate::decode::json::decode_json_line;
-use crate::decode::{Limits, RejectReason, Rejection};
+use crate::decode::{refuse_if_ahead, Limits, RejectReason, Rejection};
 use crate::event::Event;
+use crate::timefmt::now_nanos;
 
 /// How a file's records are written, decided by its name (`.csv` or `.csv.gz` is CSV,
 /// anything else JSON lines); gzip is recognised by its magic bytes, not its name.
@@ -213,10 +214,13 @@ impl RecordReader {
                         String::from_utf8_lossy(record.as_slice()).into_owned(),
                     ),
                     Ok(text) if text.iter().all(|c| c.trim().is_empty()) => Decoded::Blank,
-                    Ok(text) => match columns.decode(&text, &self.limits) {
-                        Ok(event) => Decoded::Event(event),
-                        Err(r) => Decoded::Rejected(r, text.iter().collect::<Vec<_>>().join(",")),
-                    },
+                    Ok(text) => {
+                        let raw = || text.iter().collect::<Vec<_>>().join(",");
+                        match columns.decode(&text, &self.limits) {
+                            Ok(event) => judged_against_clock(event, &self.limits, raw),
+                            Err(r) => Decoded::Rejected(r, raw()),
+                        }
+                    }
                 };
                 InputRecord {
                     ordinal,
@@ -254,7 +258,16 @@ fn decode_json_bytes(buf: &[u8], limits: &Limits) -> Decoded {
         return Decoded::Blank;
     }
     match decode_json_line(text, limits) {
-        Ok(event) => Decoded::Event(event),
+        Ok(event) => judged_against_clock(event, limits, || text.to_string()),
         Err(r) => Decoded::Rejected(r, text.to_string()),
+    }
+}
+
+/// A decoded event of a file, refused when dated further past the clock than
+/// `input.max_future_skew` (a file has no broker timestamp to read it against).
+fn judged_against_clock(event: Event, limits: &Limits, raw: impl FnOnce() -> String) -> Decoded {
+    match refuse_if_ahead(&event, now_nanos(), limits) {
+        Ok(()) => Decoded::Event(event),
+        Err(r) => Decoded::Rejected(r, raw()),
     }
 }

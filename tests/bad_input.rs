@@ -63,6 +63,12 @@ fn json_lines_apply_only_valid_records() {
             "at",
             RejectReason::BadTime,
         ),
+        // Far past the clock (input.max_future_skew, 1 hour): it would pin ann's rake.
+        (
+            r#"{"kind":"rating","user":"ann","item":"rake","value":1,"at":"2261-01-01T00:00:00Z"}"#.into(),
+            "at",
+            RejectReason::TooFarAhead,
+        ),
     ];
     // Interleave: valid, bad, valid, bad, …, then the remaining valid lines.
     let mut lines = Vec::new();
@@ -107,6 +113,7 @@ fn json_lines_apply_only_valid_records() {
         assert_eq!(r["line"], *line, "{r}");
         assert_eq!(r["field"], *field, "{r}");
         assert_eq!(r["reason"], reason.code(), "{r}");
+        assert!(r.get("raw").is_none(), "no record text by default: {r}");
     }
 
     let clean_store = dir.path().join("clean-store");

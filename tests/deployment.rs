@@ -92,7 +92,7 @@ fn kubernetes_manifest_passes_the_api_schemas() {
         String::from_utf8_lossy(&out.stderr)
     );
     assert!(out.status.success(), "{text}");
-    assert_eq!(text.matches(" passed for resource ").count(), 4, "{text}");
+    assert_eq!(text.matches(" passed for resource ").count(), 6, "{text}");
 }
 
 #[test]
@@ -108,9 +108,13 @@ fn kubernetes_statefulsets_run_every_shard_with_a_store_claim_readiness_and_a_st
     let dir = tempfile::tempdir().unwrap();
     let file = dir.path().join("simtide.toml");
     std::fs::write(&file, toml_text).unwrap();
+    // The admin token file is the mounted Secret's, which only exists in the pod.
+    let token = dir.path().join("admin-token");
+    std::fs::write(&token, "a-token\n").unwrap();
     let checked = Command::new(env!("CARGO_BIN_EXE_simtide"))
         .args(["check-config", file.to_str().unwrap()])
         .env("SIMTIDE_CLUSTER__SHARD", "2")
+        .env("SIMTIDE_HTTP__ADMIN_TOKEN_FILE", &token)
         .output()
         .unwrap();
     assert!(
@@ -174,6 +178,103 @@ fn kubernetes_statefulsets_run_every_shard_with_a_store_claim_readiness_and_a_st
         assert_eq!(
             simtide::cluster::host_ordinal(&format!("{name}-{}", shards - 1)),
             Some(shards as u32 - 1)
+        );
+    }
+}
+
+#[test]
+fn kubernetes_pods_are_hardened_and_a_shard_never_shares_a_node_with_its_standby() {
+    let documents = manifest();
+    let config_map = documents.iter().find(|d| d["kind"] == "ConfigMap").unwrap();
+    let config: toml::Value = toml::from_str(config_map["data"]["simtide.toml"].as_str().unwrap()).unwrap();
+    let token_file = config["http"]["admin_token_file"]
+        .as_str()
+        .expect("the token comes from a file");
+    assert!(
+        config["http"].get("admin_token").is_none(),
+        "no token in the ConfigMap"
+    );
+    let cargo = std::fs::read_to_string(root().join("Cargo.toml")).unwrap();
+    let version = cargo
+        .lines()
+        .find_map(|l| l.strip_prefix("version = \""))
+        .and_then(|v| v.strip_suffix('"'))
+        .unwrap();
+
+    let sets: Vec<&Value> = documents.iter().filter(|d| d["kind"] == "StatefulSet").collect();
+    for set in &sets {
+        let name = set["metadata"]["name"].as_str().unwrap();
+        let pod = &set["spec"]["template"]["spec"];
+        assert_eq!(pod["securityContext"]["runAsNonRoot"], true, "{name}");
+        assert_eq!(
+            pod["securityContext"]["seccompProfile"]["type"], "RuntimeDefault",
+            "{name}"
+        );
+        let container = &pod["containers"][0];
+        assert_eq!(
+            container["image"],
+            format!("simtide:{version}").as_str(),
+            "{name}: a versioned tag"
+        );
+        let security = &container["securityContext"];
+        assert_eq!(security["allowPrivilegeEscalation"], false, "{name}");
+        assert_eq!(security["readOnlyRootFilesystem"], true, "{name}");
+        assert_eq!(
+            security["capabilities"]["drop"],
+            serde_json::json!(["ALL"]),
+            "{name}"
+        );
+        for bound in ["requests", "limits"] {
+            for resource in ["cpu", "memory"] {
+                assert!(
+                    container["resources"][bound][resource].is_string(),
+                    "{name}: {bound}.{resource}"
+                );
+            }
+        }
+        // Writable: the store claim and an emptyDir at /tmp (the lookup view's scratch).
+        let mounts = container["volumeMounts"].as_array().unwrap();
+        let volumes = pod["volumes"].as_array().unwrap();
+        let volume_of = |path: &str| {
+            let mount = mounts
+                .iter()
+                .find(|m| m["mountPath"] == path)
+                .unwrap_or_else(|| panic!("{name}: {path}"));
+            volumes.iter().find(|v| v["name"] == mount["name"]).cloned()
+        };
+        assert!(
+            volume_of("/tmp").is_some_and(|v| v.get("emptyDir").is_some()),
+            "{name}"
+        );
+        let token_dir = Path::new(token_file).parent().unwrap().to_str().unwrap();
+        let secret = volume_of(token_dir).unwrap_or_else(|| panic!("{name}: the token's Secret"));
+        assert_eq!(secret["secret"]["secretName"], "simtide-admin", "{name}");
+        // Required anti-affinity on the pod index: simtide-2 and simtide-standby-2 apart.
+        let term = &pod["affinity"]["podAntiAffinity"]["requiredDuringSchedulingIgnoredDuringExecution"][0];
+        assert_eq!(term["topologyKey"], "kubernetes.io/hostname", "{name}");
+        assert_eq!(
+            term["matchLabelKeys"],
+            serde_json::json!(["apps.kubernetes.io/pod-index"]),
+            "{name}"
+        );
+        assert_eq!(
+            term["labelSelector"]["matchLabels"]["app.kubernetes.io/name"], "simtide",
+            "{name}"
+        );
+        // A disruption budget selects exactly this StatefulSet's pods.
+        let labels = &set["spec"]["template"]["metadata"]["labels"];
+        let budget = documents
+            .iter()
+            .filter(|d| d["kind"] == "PodDisruptionBudget")
+            .find(|d| &d["spec"]["selector"]["matchLabels"] == labels)
+            .unwrap_or_else(|| panic!("{name}: no disruption budget selects its pods"));
+        assert_eq!(budget["spec"]["maxUnavailable"], 1, "{name}");
+    }
+    let ignored = std::fs::read_to_string(root().join(".dockerignore")).expect("a .dockerignore");
+    for entry in ["target", ".git"] {
+        assert!(
+            ignored.lines().any(|l| l.trim_start_matches('/') == entry),
+            "{entry} is not sent to the build"
         );
     }
 }

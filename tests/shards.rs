@@ -55,7 +55,7 @@ fn stages(dir: &Path) -> [Vec<PathBuf>; 3] {
     let withdrawn = dir.join("withdrawn.jsonl");
     std::fs::write(
         &withdrawn,
-        "{\"kind\":\"item_status\",\"item\":\"m1\",\"available\":false,\"at\":\"2030-01-01T00:00:00Z\"}\n",
+        "{\"kind\":\"item_status\",\"item\":\"m1\",\"available\":false,\"at\":\"2026-08-01T00:00:00Z\"}\n",
     )
     .unwrap();
     [

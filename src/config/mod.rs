@@ -24,8 +24,8 @@ pub use simtide_core::score::PurchaseScore;
 use size_text::ByteSize;
 
 pub use service::{
-    HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, PublishConfig, ReadinessConfig, StartPosition,
-    StoreConfig,
+    HttpConfig, KafkaConfig, LiveConfig, LogConfig, LogFormat, OutsideLogPolicy, PublishConfig,
+    ReadinessConfig, StartPosition, StoreConfig,
 };
 
 /// Prefix of the environment variables that override configuration keys.
@@ -110,11 +110,23 @@ impl Default for SimilarityConfig {
 pub struct InputConfig {
     /// Longest accepted user or item id, in bytes of UTF-8.
     pub max_id_bytes: usize,
+    /// Largest accepted Kafka message (key, value and headers). A larger one is
+    /// dead-lettered as a description without its content, which could not be
+    /// produced again anyway.
+    pub max_message_bytes: ByteSize,
+    /// Longest time an event's `at` may lie after the record's broker timestamp (the
+    /// clock, for files); a later one is refused as `too_far_ahead`.
+    #[serde(with = "duration_text")]
+    pub max_future_skew: std::time::Duration,
 }
 
 impl Default for InputConfig {
     fn default() -> Self {
-        InputConfig { max_id_bytes: 256 }
+        InputConfig {
+            max_id_bytes: 256,
+            max_message_bytes: ByteSize(1 << 20),
+            max_future_skew: std::time::Duration::from_secs(3600),
+        }
     }
 }
 
@@ -130,6 +142,10 @@ pub struct BackfillConfig {
     /// segments: fewer merges for RocksDB and, when everything fits, lists scored from one
     /// sorted set of files. The result does not depend on it.
     pub memory_budget: ByteSize,
+    /// Whether the rejects file keeps each refused record's text. Off by default: the
+    /// text is personal data that erasure does not reach; the file and line (or
+    /// partition and offset) find the record in its source.
+    pub rejects_keep_text: bool,
 }
 
 /// Smallest accepted `backfill.memory_budget` and `live.memory_budget`: with less, every
@@ -141,6 +157,7 @@ impl Default for BackfillConfig {
         BackfillConfig {
             batch_events: 50_000,
             memory_budget: ByteSize(2 << 30),
+            rejects_keep_text: false,
         }
     }
 }
@@ -243,6 +260,8 @@ impl Config {
             max_id_bytes: self.input.max_id_bytes,
             rating_min: self.similarity.rating_min,
             rating_max: self.similarity.rating_max,
+            max_record_bytes: self.input.max_message_bytes.0 as usize,
+            max_future_skew_ns: i64::try_from(self.input.max_future_skew.as_nanos()).unwrap_or(i64::MAX),
         }
     }
 
@@ -307,8 +326,29 @@ impl Config {
             },
         )?;
         config.cluster.resolve(crate::cluster::host_name().as_deref())?;
+        config.read_admin_token_file()?;
         config.validate()?;
         Ok(config)
+    }
+
+    /// Reads `http.admin_token` from `http.admin_token_file` when that is set (a mounted
+    /// Secret), so the token never sits in the configuration file or the environment.
+    fn read_admin_token_file(&mut self) -> Result<()> {
+        let path = &self.http.admin_token_file;
+        if path.is_empty() {
+            return Ok(());
+        }
+        if !self.http.admin_token.is_empty() {
+            bail!("http.admin_token and http.admin_token_file are both set: keep one");
+        }
+        let text = std::fs::read_to_string(path)
+            .with_context(|| format!("http.admin_token_file: cannot read {path}"))?;
+        let token = text.trim_end_matches(['\n', '\r']);
+        if token.is_empty() {
+            bail!("http.admin_token_file: {path} is empty");
+        }
+        self.http.admin_token = token.to_string();
+        Ok(())
     }
 
     /// Refuses values that would make the maths meaningless, naming the key.
@@ -357,6 +397,12 @@ impl Config {
         }
         if self.input.max_id_bytes == 0 {
             bail!("input.max_id_bytes must be at least 1");
+        }
+        if self.input.max_message_bytes.0 < 1024 {
+            bail!(
+                "input.max_message_bytes must be at least 1KiB, got {}",
+                self.input.max_message_bytes
+            );
         }
         if self.backfill.batch_events == 0 {
             bail!("backfill.batch_events must be at least 1");
@@ -408,11 +454,17 @@ impl Config {
         if self.http.max_concurrent_lookups == 0 {
             bail!("http.max_concurrent_lookups must be at least 1");
         }
+        if self.http.max_connections == 0 {
+            bail!("http.max_connections must be at least 1");
+        }
         for (key, d) in [
             ("publish.interval", self.publish.interval),
             ("live.shutdown_timeout", self.live.shutdown_timeout),
             ("live.delivery_timeout", self.live.delivery_timeout),
+            ("live.stall_limit", self.live.stall_limit),
             ("http.request_timeout", self.http.request_timeout),
+            ("http.header_timeout", self.http.header_timeout),
+            ("kafka.dead_letter_retention", self.kafka.dead_letter_retention),
             (
                 "readiness.max_delivery_failure",
                 self.readiness.max_delivery_failure,

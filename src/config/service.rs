@@ -40,6 +40,22 @@ pub enum StartPosition {
     Latest,
 }
 
+/// What the service does with a stored position that the partition's log no longer
+/// holds (docs/design.md, "Positions outside the log"): the log was cut by retention, an
+/// old snapshot was restored, or the topic was replaced.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum OutsideLogPolicy {
+    /// Leave the partition unconsumed and report it (readiness, metric, alert) until an
+    /// operator decides: nothing is skipped without someone knowing.
+    #[default]
+    Refuse,
+    /// Resume at the partition's first retained offset, counting what was lost.
+    ResumeAtLogStart,
+    /// Resume at the partition's end, counting what is skipped.
+    ResumeAtLogEnd,
+}
+
 /// `[kafka]`: the event bus.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
@@ -57,8 +73,14 @@ pub struct KafkaConfig {
     pub purchase_output_topic: String,
     /// Topic that receives every event that failed validation, with the reason in headers.
     pub dead_letter_topic: String,
+    /// How long the dead-letter topic keeps a record (`retention.ms` when simtide creates
+    /// it): refused events are personal data too, and an erased user's stay until then.
+    #[serde(with = "duration_text")]
+    pub dead_letter_retention: Duration,
     /// Where a partition the store holds no position for starts.
     pub start: StartPosition,
+    /// What to do when a partition's stored position lies outside its retained log.
+    pub position_outside_log: OutsideLogPolicy,
     /// Create missing output and dead-letter topics (compacted outputs) at start-up.
     pub create_topics: bool,
     /// Partitions of topics the service creates.
@@ -85,7 +107,9 @@ impl Default for KafkaConfig {
             output_topic: "item-lists.rating".to_string(),
             purchase_output_topic: "item-lists.purchase".to_string(),
             dead_letter_topic: "shop-events-dead-letter".to_string(),
+            dead_letter_retention: Duration::from_secs(7 * 24 * 3600),
             start: StartPosition::Earliest,
+            position_outside_log: OutsideLogPolicy::Refuse,
             create_topics: true,
             topic_partitions: 1,
             topic_replication: 1,
@@ -115,6 +139,11 @@ pub struct LiveConfig {
     /// before each publication cycle anyway; this bounds memory when a cycle is far off
     /// or the input arrives faster than usual (a catch-up after downtime).
     pub memory_budget: ByteSize,
+    /// `/healthz` fails once the consuming loop has made no progress for this long (a
+    /// retry that cannot succeed), so an orchestrator restarts the process; lag alone
+    /// never fails it.
+    #[serde(with = "duration_text")]
+    pub stall_limit: Duration,
 }
 
 impl Default for LiveConfig {
@@ -125,6 +154,7 @@ impl Default for LiveConfig {
             shutdown_timeout: Duration::from_secs(30),
             delivery_timeout: Duration::from_secs(10),
             memory_budget: ByteSize(1 << 30),
+            stall_limit: Duration::from_secs(300),
         }
     }
 }
@@ -161,6 +191,14 @@ pub struct HttpConfig {
     /// Longest time a request may take, waiting for a place included.
     #[serde(with = "duration_text")]
     pub request_timeout: Duration,
+    /// Connections served at once; further ones wait until one closes.
+    pub max_connections: usize,
+    /// Longest time a client may take to send a request's headers.
+    #[serde(with = "duration_text")]
+    pub header_timeout: Duration,
+    /// A file holding the admin token (a mounted Secret); read at start-up, its trailing
+    /// newline dropped. Set this or `admin_token`, not both.
+    pub admin_token_file: String,
 }
 
 impl Default for HttpConfig {
@@ -170,6 +208,9 @@ impl Default for HttpConfig {
             admin_token: String::new(),
             max_concurrent_lookups: 16,
             request_timeout: Duration::from_secs(2),
+            max_connections: 256,
+            header_timeout: Duration::from_secs(5),
+            admin_token_file: String::new(),
         }
     }
 }

@@ -4,11 +4,12 @@
 //! from its store and the others' from the list topic it follows (docs/design.md,
 //! "Recommendations").
 
-use axum::extract::{Path, Query, State};
+use axum::extract::State;
 use axum::http::StatusCode;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 
+use super::extract::{ApiPath, ApiQuery};
 use super::{check_id, with_store, ApiError, HttpState};
 use crate::recommend::{recommend_user, StoredLists};
 
@@ -63,8 +64,8 @@ fn parse_count(text: Option<&str>, default: usize) -> Result<usize, ApiError> {
 /// while a shard has not yet read the other shards' lists.
 pub(super) async fn for_user(
     State(s): State<HttpState>,
-    Path(user): Path<String>,
-    Query(q): Query<CountQuery>,
+    ApiPath(user): ApiPath<String>,
+    ApiQuery(q): ApiQuery<CountQuery>,
 ) -> Result<Json<Recommended>, ApiError> {
     check_id(&s, "user", &user)?;
     let count = parse_count(q.count.as_deref(), s.config.recommend.count)?;

@@ -12,7 +12,12 @@ use crate::store::{FilePosition, PairWrite};
 
 /// Reads records up to the ordinal `boundary` (or the end of the file) into a batch; true
 /// with it when the file ended.
-fn read_batch(reader: &mut RecordReader, boundary: u64, source: &str) -> Result<(ReadBatch, bool)> {
+fn read_batch(
+    reader: &mut RecordReader,
+    boundary: u64,
+    source: &str,
+    keep_text: bool,
+) -> Result<(ReadBatch, bool)> {
     let mut batch = ReadBatch::default();
     while reader.ordinal() < boundary {
         let Some(record) = reader.next_record()? else {
@@ -29,7 +34,7 @@ fn read_batch(reader: &mut RecordReader, boundary: u64, source: &str) -> Result<
                     line: record.line,
                     record: record.ordinal,
                 };
-                batch.reject(source, origin, &rejection, &raw);
+                batch.reject(source, origin, &rejection, keep_text.then_some(raw.as_str()));
                 batch.records += 1;
             }
         }
@@ -74,7 +79,8 @@ pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
         reader.skip_to(position.next_record)?;
         loop {
             let boundary = (reader.ordinal() / batch_len + 1) * batch_len;
-            let (batch, at_end) = read_batch(&mut reader, boundary, &input.canonical)?;
+            let keep_text = request.config.backfill.rejects_keep_text;
+            let (batch, at_end) = read_batch(&mut reader, boundary, &input.canonical, keep_text)?;
             // A file that ends exactly on a boundary is only known to be done on the next
             // read, which then commits an empty batch that marks it done.
             let next_record = reader.ordinal();

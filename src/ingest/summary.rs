@@ -18,6 +18,9 @@ pub struct BackfillSummary {
     pub rejects: BTreeMap<RejectReason, u64>,
     /// Files skipped because an earlier run applied them completely.
     pub skipped_files: Vec<String>,
+    /// Topic offsets never applied because a stored position was outside its
+    /// partition's log and `kafka.position_outside_log` resumed elsewhere.
+    pub skipped_offsets: u64,
     /// Pair contributions added or retracted in this run.
     pub pair_updates: u64,
     /// Re-centerings in this run.
@@ -70,6 +73,13 @@ impl fmt::Display for BackfillSummary {
         )?;
         for skipped in &self.skipped_files {
             writeln!(f, "  skipped (already applied): {skipped}")?;
+        }
+        if self.skipped_offsets > 0 {
+            writeln!(
+                f,
+                "  skipped offsets   {:>12}   (outside the retained log; kafka.position_outside_log)",
+                self.skipped_offsets
+            )?;
         }
         writeln!(
             f,

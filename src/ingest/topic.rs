@@ -31,7 +31,13 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
         .get(topic)
         .cloned()
         .unwrap_or_default();
-    let plan = ReplayPlan::to_current_end(&OffsetsClient::new(kafka, &bus)?, topic, &stored)?;
+    let plan = ReplayPlan::to_current_end(
+        &OffsetsClient::new(kafka, &bus)?,
+        topic,
+        &stored,
+        kafka.position_outside_log,
+    )?;
+    writer.note_offsets_skipped(plan.skipped);
     tracing::info!(
         topic,
         messages = plan.messages(),
@@ -67,7 +73,8 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
                     offset: m.offset,
                 };
                 let raw = String::from_utf8_lossy(m.value.as_deref().unwrap_or_default());
-                batch.reject(topic, origin, &r.rejection, &raw);
+                let keep = config.backfill.rejects_keep_text;
+                batch.reject(topic, origin, &r.rejection, keep.then_some(raw.as_ref()));
             }
             batch.events = taken.events;
             let next_offsets = taken.next_offsets;

@@ -9,11 +9,11 @@
 //! "Bulk backfill"). At the end every dirty list is published.
 
 use std::collections::BTreeMap;
-use std::fs::{File, OpenOptions};
-use std::io::{Seek, SeekFrom, Write};
+use std::fs::File;
+use std::io::Write;
 use std::time::Instant;
 
-use anyhow::{bail, Context, Result};
+use anyhow::{bail, Result};
 use serde_json::{json, Value};
 
 use super::summary::BackfillSummary;
@@ -25,7 +25,7 @@ use crate::meter::{Display, Meter, Unit};
 use crate::observe::Observation;
 use crate::pipeline::Pending;
 use crate::publish::publish_dirty;
-use crate::store::{rejects_path, Ledger, PairRows, PairWrite, SegmentRows, Store};
+use crate::store::{open_rejects, rejects_path, Ledger, PairRows, PairWrite, SegmentRows, Store};
 use crate::timefmt::now_nanos;
 
 /// Where a refused record came from, as the rejects file names it.
@@ -60,8 +60,9 @@ pub struct ReadBatch {
 }
 
 impl ReadBatch {
-    /// Records a refused record from `source`.
-    pub fn reject(&mut self, source: &str, origin: RecordOrigin, rejection: &Rejection, raw: &str) {
+    /// Records a refused record from `source`; its text only when given
+    /// (`backfill.rejects_keep_text`).
+    pub fn reject(&mut self, source: &str, origin: RecordOrigin, rejection: &Rejection, raw: Option<&str>) {
         tracing::debug!(%rejection, "rejected record");
         *self.rejects.entry(rejection.reason).or_default() += 1;
         let mut line = json!({
@@ -69,8 +70,10 @@ impl ReadBatch {
             "field": rejection.field,
             "reason": rejection.reason.code(),
             "detail": rejection.detail,
-            "raw": raw,
         });
+        if let (Some(raw), Value::Object(fields)) = (raw, &mut line) {
+            fields.insert("raw".into(), raw.into());
+        }
         let position = match origin {
             RecordOrigin::File { line, record } => json!({ "line": line, "record": record }),
             RecordOrigin::Topic { partition, offset } => json!({ "partition": partition, "offset": offset }),
@@ -155,6 +158,12 @@ impl<'a> BatchWriter<'a> {
     /// Records per second over the run so far.
     pub fn records_per_second(&self) -> f64 {
         self.summary.records() as f64 / self.started.elapsed().as_secs_f64().max(1e-9)
+    }
+
+    /// Records topic offsets the run will never apply (a position outside the log,
+    /// resumed elsewhere by policy), for the summary.
+    pub fn note_offsets_skipped(&mut self, skipped: u64) {
+        self.summary.skipped_offsets += skipped;
     }
 
     /// Writes the batch's rejects and applies it to the pending segment; `advance` records
@@ -253,23 +262,4 @@ impl<'a> BatchWriter<'a> {
         self.summary.items = self.store.item_count() as u64;
         Ok(self.summary)
     }
-}
-
-/// Opens the rejects file, cutting off anything a crashed run wrote after its last commit.
-fn open_rejects(store: &Store) -> Result<File> {
-    let path = rejects_path(store.dir());
-    let mut file = OpenOptions::new()
-        .create(true)
-        .truncate(false)
-        .read(true)
-        .write(true)
-        .open(&path)
-        .with_context(|| format!("cannot open rejects file {}", path.display()))?;
-    // Only ever shorten: an operator may have deleted or emptied the file after handling it.
-    let committed = store.ledger().rejects_file_len;
-    if file.metadata()?.len() > committed {
-        file.set_len(committed)?;
-    }
-    file.seek(SeekFrom::End(0))?;
-    Ok(file)
 }

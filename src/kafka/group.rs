@@ -4,8 +4,11 @@
 //! adding partitions as the topic grows. Either way the store is the truth for
 //! positions: an assigned partition starts at the store's next offset (not the group's
 //! committed one), and before partitions are revoked the batch in flight is committed and
-//! the group offsets are brought up to date. What the store holds is asked of a
-//! [`PositionKeeper`], so this module knows no store.
+//! the group offsets are brought up to date. A stored position the partition's log no
+//! longer holds is judged by `kafka.position_outside_log` ([`super::outside_log`]) at
+//! assignment, and again whenever the client reports a position out of range: the
+//! client's own reset never moves a position silently. What the store holds is asked of
+//! a [`PositionKeeper`], so this module knows no store.
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::sync::Mutex;
@@ -13,14 +16,18 @@ use std::time::Duration;
 
 use anyhow::Result;
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
-use rdkafka::error::KafkaError;
+use rdkafka::error::{KafkaError, RDKafkaErrorCode};
 use rdkafka::types::RDKafkaRespErr;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::client::{base_config, describe_error, BusContext};
 use super::message::InMessage;
-use super::offsets::partition_list;
-use crate::config::{KafkaConfig, StartPosition};
+use super::offsets::{partition_list, OffsetsClient};
+use super::outside_log::{decide, OutsidePosition, StartDecision};
+use crate::config::{KafkaConfig, OutsideLogPolicy, StartPosition};
+
+/// How long the watermarks of one partition may take to read at assignment.
+const WATERMARK_WAIT: Duration = Duration::from_secs(5);
 
 /// What the rebalance handler needs from the owner of the positions (the live service).
 pub trait PositionKeeper: Send + Sync + 'static {
@@ -31,6 +38,23 @@ pub trait PositionKeeper: Send + Sync + 'static {
     fn commit_before_revoke(&self, grace: Duration) -> Option<BTreeMap<i32, i64>>;
     /// Whether any partition is assigned now (readiness).
     fn set_consuming(&self, consuming: bool);
+    /// The partitions left unconsumed because their stored position is outside the log
+    /// and the policy refuses (all of them, each time the set changes).
+    fn set_refused(&self, refused: &BTreeMap<i32, OutsidePosition>);
+    /// A partition whose stored position was outside the log resumes at `at` by policy,
+    /// never applying `skipped` offsets.
+    fn note_resumed(&self, outside: &OutsidePosition, at: i64, skipped: u64);
+}
+
+/// A consume error as the loop sees it: the text, scrubbed of secrets, and whether the
+/// client found a fetch position outside the partition's log.
+#[derive(Debug, Clone)]
+pub struct ConsumeError {
+    /// The client's error, scrubbed.
+    pub text: String,
+    /// The position of some assigned partition is outside its log
+    /// (`auto.offset.reset=error`): [`GroupConsumer::recheck_positions`] finds which.
+    pub position_out_of_range: bool,
 }
 
 /// Consumer context: the bus context plus the position keeper.
@@ -40,6 +64,11 @@ pub struct GroupContext<K: PositionKeeper> {
     topic: String,
     start: StartPosition,
     revoke_grace: Duration,
+    /// Reads watermarks (a client of its own: the consumer is inside its callback).
+    watermarks: OffsetsClient,
+    policy: OutsideLogPolicy,
+    /// Partitions assigned to this member but not consumed, by policy.
+    refused: Mutex<BTreeMap<i32, OutsidePosition>>,
 }
 
 impl<K: PositionKeeper> ClientContext for GroupContext<K> {
@@ -68,31 +97,76 @@ fn start_offset(stored: &BTreeMap<i32, i64>, partition: i32, start: StartPositio
 }
 
 impl<K: PositionKeeper> GroupContext<K> {
-    /// Sets each partition of `tpl` to start where [`start_offset`] says; returns the
-    /// store's positions it read.
-    fn seed_offsets(&self, tpl: &mut TopicPartitionList) -> BTreeMap<i32, i64> {
+    /// Sets each partition of `tpl` to start where [`start_offset`] says, judging a
+    /// stored position against the partition's log first; returns the list to assign
+    /// (without the partitions refused) and the store's positions it read.
+    fn seed_offsets(&self, tpl: &TopicPartitionList) -> (TopicPartitionList, BTreeMap<i32, i64>) {
         let stored = self.keeper.stored_offsets();
         let mut described = Vec::new();
-        let partitions: Vec<(String, i32)> = tpl
-            .elements()
-            .iter()
-            .map(|e| (e.topic().to_string(), e.partition()))
-            .collect();
-        for (topic, partition) in partitions {
-            let offset = start_offset(&stored, partition, self.start);
+        let mut admitted = TopicPartitionList::new();
+        let mut refused_now = false;
+        for element in tpl.elements() {
+            let (topic, partition) = (element.topic(), element.partition());
+            let mut offset = start_offset(&stored, partition, self.start);
+            if let Offset::Offset(next) = offset {
+                match self.judge(partition, next) {
+                    StartDecision::Inside(at) | StartDecision::Resumed { at, .. } => {
+                        offset = Offset::Offset(at)
+                    }
+                    StartDecision::Refused(outside) => {
+                        described.push(format!("{partition}@refused"));
+                        self.refused
+                            .lock()
+                            .expect("refused lock")
+                            .insert(partition, outside);
+                        refused_now = true;
+                        continue;
+                    }
+                }
+            }
             described.push(format!("{partition}@{offset:?}"));
-            // Setting an offset on a partition the list holds cannot fail.
-            let _ = tpl.set_partition_offset(&topic, partition, offset);
+            // Adding a partition to a fresh list cannot fail.
+            let _ = admitted.add_partition_offset(topic, partition, offset);
+        }
+        if refused_now {
+            self.keeper
+                .set_refused(&self.refused.lock().expect("refused lock"));
         }
         tracing::info!(topic = %self.topic, partitions = %described.join(" "), "partitions assigned; starting at the store's positions");
-        stored
+        (admitted, stored)
     }
 
-    fn assign(&self, consumer: &BaseConsumer<Self>, tpl: &mut TopicPartitionList) {
-        let stored = self.seed_offsets(tpl);
+    /// Judges a position against the partition's watermarks under the policy, telling
+    /// the keeper of a resumption. A position whose watermarks cannot be read is taken as
+    /// inside: the client's out-of-range error is the backstop.
+    fn judge(&self, partition: i32, next: i64) -> StartDecision {
+        let Ok(marks) = self.watermarks.watermarks(&self.topic, partition, WATERMARK_WAIT) else {
+            return StartDecision::Inside(next);
+        };
+        let decision = decide(partition, next, marks, self.policy);
+        if let StartDecision::Resumed { at, skipped, outside } = &decision {
+            self.keeper.note_resumed(outside, *at, *skipped);
+        }
+        decision
+    }
+
+    /// Forgets the refusals of partitions this member no longer holds.
+    fn forget_refused(&self, revoked: &TopicPartitionList) {
+        let mut refused = self.refused.lock().expect("refused lock");
+        let before = refused.len();
+        for element in revoked.elements() {
+            refused.remove(&element.partition());
+        }
+        if refused.len() != before {
+            self.keeper.set_refused(&refused);
+        }
+    }
+
+    fn assign(&self, consumer: &BaseConsumer<Self>, tpl: &TopicPartitionList) {
+        let (admitted, stored) = self.seed_offsets(tpl);
         let result = match consumer.rebalance_protocol() {
-            RebalanceProtocol::Cooperative => consumer.incremental_assign(tpl),
-            _ => consumer.assign(tpl),
+            RebalanceProtocol::Cooperative => consumer.incremental_assign(&admitted),
+            _ => consumer.assign(&admitted),
         };
         match result {
             Ok(()) => self.keeper.set_consuming(true),
@@ -104,7 +178,7 @@ impl<K: PositionKeeper> GroupContext<K> {
         // partition that stays idle (or a group that never committed before).
         let known: BTreeMap<i32, i64> = stored
             .into_iter()
-            .filter(|(p, _)| tpl.elements().iter().any(|e| e.partition() == *p))
+            .filter(|(p, _)| admitted.elements().iter().any(|e| e.partition() == *p))
             .collect();
         if !known.is_empty() {
             if let Err(e) = consumer.commit(&partition_list(&self.topic, &known), CommitMode::Async) {
@@ -124,8 +198,9 @@ impl<K: PositionKeeper> GroupContext<K> {
             partitions = tpl.count(),
             "partitions revoked after committing the batch in flight"
         );
+        self.forget_refused(tpl);
         let result = match consumer.rebalance_protocol() {
-            RebalanceProtocol::Cooperative => consumer.incremental_unassign(tpl),
+            RebalanceProtocol::Cooperative => consumer.incremental_unassign(&held_of(consumer, tpl)),
             _ => consumer.unassign(),
         };
         if let Err(e) = result {
@@ -134,6 +209,19 @@ impl<K: PositionKeeper> GroupContext<K> {
         let still_assigned = consumer.assignment().map(|a| a.count() > 0).unwrap_or(false);
         self.keeper.set_consuming(still_assigned);
     }
+}
+
+/// The partitions of `tpl` the consumer really has assigned (a refused partition was
+/// never assigned, so it is not unassigned either).
+fn held_of<C: ConsumerContext>(consumer: &BaseConsumer<C>, tpl: &TopicPartitionList) -> TopicPartitionList {
+    let assigned = consumer.assignment().unwrap_or_default();
+    let mut held = TopicPartitionList::new();
+    for e in tpl.elements() {
+        if assigned.find_partition(e.topic(), e.partition()).is_some() {
+            held.add_partition(e.topic(), e.partition());
+        }
+    }
+    held
 }
 
 impl<K: PositionKeeper> ConsumerContext for GroupContext<K> {
@@ -193,13 +281,19 @@ impl<K: PositionKeeper> GroupConsumer<K> {
         config.set("enable.auto.commit", "false");
         config.set("enable.auto.offset.store", "false");
         config.set("enable.partition.eof", "false");
+        // A fetch position outside the log is an error for the loop to judge, never a
+        // silent jump (docs/design.md, "Positions outside the log").
+        config.set("auto.offset.reset", "error");
         let scrubber = bus.scrubber().clone();
         let context = GroupContext {
+            watermarks: OffsetsClient::new(kafka, &bus)?,
             bus,
             keeper,
             topic: kafka.input_topic.clone(),
             start: kafka.start,
             revoke_grace,
+            policy: kafka.position_outside_log,
+            refused: Mutex::new(BTreeMap::new()),
         };
         let consumer: BaseConsumer<GroupContext<K>> = config
             .create_with_context(context)
@@ -238,9 +332,8 @@ impl<K: PositionKeeper> GroupConsumer<K> {
             return;
         }
         let context = self.consumer.context();
-        let mut tpl = partition_list(&self.topic, &new);
-        context.seed_offsets(&mut tpl);
-        match self.consumer.incremental_assign(&tpl) {
+        let (admitted, _) = context.seed_offsets(&partition_list(&self.topic, &new));
+        match self.consumer.incremental_assign(&admitted) {
             Ok(()) => {
                 assigned.extend(new.keys());
                 context.keeper.set_consuming(true);
@@ -253,12 +346,73 @@ impl<K: PositionKeeper> GroupConsumer<K> {
 
     /// The next message within `timeout` (rebalance callbacks run inside this call, on
     /// the caller's thread); `None` when none came; an error's text is scrubbed.
-    pub fn poll(&self, timeout: Duration) -> Option<Result<InMessage, String>> {
+    pub fn poll(&self, timeout: Duration) -> Option<Result<InMessage, ConsumeError>> {
         self.consumer.poll(timeout).map(|received| {
             received
                 .map(|m| InMessage::copied_from(&m))
-                .map_err(|e| self.consumer.context().bus.scrubber().scrub(&e.to_string()))
+                .map_err(|e| ConsumeError {
+                    text: self.consumer.context().bus.scrubber().scrub(&e.to_string()),
+                    position_out_of_range: e.rdkafka_error_code() == Some(RDKafkaErrorCode::AutoOffsetReset),
+                })
         })
+    }
+
+    /// After the client found a fetch position outside a partition's log: judges every
+    /// assigned partition's position (the client's, or the store's before the first
+    /// message) against its watermarks; a refused partition is paused, a resumed one
+    /// moved to where the policy says, one found inside fetched again from there.
+    pub fn recheck_positions(&self) {
+        let context = self.consumer.context();
+        let stored = context.keeper.stored_offsets();
+        let Ok(positions) = self.consumer.position() else {
+            return;
+        };
+        let mut refused_now = false;
+        for element in positions.elements() {
+            let partition = element.partition();
+            if context
+                .refused
+                .lock()
+                .expect("refused lock")
+                .contains_key(&partition)
+            {
+                continue;
+            }
+            let next = match element.offset() {
+                Offset::Offset(at) => at,
+                _ => match stored.get(&partition) {
+                    Some(&at) => at,
+                    None => continue,
+                },
+            };
+            match context.judge(partition, next) {
+                StartDecision::Inside(at) | StartDecision::Resumed { at, .. } => {
+                    if let Err(e) =
+                        self.consumer
+                            .seek(&self.topic, partition, Offset::Offset(at), WATERMARK_WAIT)
+                    {
+                        tracing::warn!(partition, error = %e, "cannot move the fetch position; the client reports again");
+                    }
+                }
+                StartDecision::Refused(outside) => {
+                    let single = partition_list(&self.topic, &BTreeMap::from([(partition, next)]));
+                    if let Err(e) = self.consumer.pause(&single) {
+                        tracing::warn!(partition, error = %e, "cannot pause the partition");
+                    }
+                    context
+                        .refused
+                        .lock()
+                        .expect("refused lock")
+                        .insert(partition, outside);
+                    refused_now = true;
+                }
+            }
+        }
+        if refused_now {
+            context
+                .keeper
+                .set_refused(&context.refused.lock().expect("refused lock"));
+        }
     }
 
     /// Commits group offsets after a store write (asynchronously: they only inform

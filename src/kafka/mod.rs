@@ -1,5 +1,6 @@
 //! Everything that speaks Kafka: client construction and logging (`client`), the message
-//! copied out at the boundary (`message`), partitions and offsets (`offsets`), the group
+//! copied out at the boundary (`message`), partitions and offsets (`offsets`), positions
+//! the log no longer holds (`outside_log`), the group
 //! consumer with its rebalance handler (`group`), the publishing lease of standby replicas
 //! (`lease`), replaying a topic to its end (`replay`), a list topic read as a table
 //! (`list_table`),
@@ -14,6 +15,7 @@ pub mod lease;
 pub mod list_table;
 pub mod message;
 pub mod offsets;
+pub mod outside_log;
 pub mod producer;
 pub mod replay;
 pub mod topics;

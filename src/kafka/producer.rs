@@ -41,7 +41,38 @@ struct Acks {
 
 #[derive(Default)]
 struct AckState {
-    answered: Vec<Option<std::result::Result<(), String>>>,
+    answered: Vec<Option<std::result::Result<(), Refusal>>>,
+}
+
+/// Why the client or the broker did not take a record.
+#[derive(Debug, Clone)]
+struct Refusal {
+    /// The error, scrubbed.
+    reason: String,
+    /// Whether sending it again can never succeed.
+    for_good: bool,
+}
+
+/// Whether a produce error means the record will never be taken however often it is
+/// sent: it is too large, malformed or not allowed, or the topic's name is invalid.
+/// Everything else (a broker away, a leader moving, a topic not yet created, a timeout)
+/// may pass on a later attempt.
+fn refused_for_good(error: &KafkaError) -> bool {
+    matches!(
+        error.rdkafka_error_code(),
+        Some(
+            RDKafkaErrorCode::MessageSizeTooLarge
+                | RDKafkaErrorCode::InvalidMessageSize
+                | RDKafkaErrorCode::MessageBatchTooLarge
+                | RDKafkaErrorCode::InvalidMessage
+                | RDKafkaErrorCode::InvalidRecord
+                | RDKafkaErrorCode::InvalidTopic
+                | RDKafkaErrorCode::TopicAuthorizationFailed
+                | RDKafkaErrorCode::ClusterAuthorizationFailed
+                | RDKafkaErrorCode::UnsupportedForMessageFormat
+                | RDKafkaErrorCode::PolicyViolation
+        )
+    )
 }
 
 /// Producer context: the shared bus context plus delivery bookkeeping.
@@ -78,7 +109,10 @@ impl ProducerContext for DeliveryContext {
                 self.bus.brokers().set_reachable(true);
                 Ok(())
             }
-            Err((e, _)) => Err(self.bus.scrubber().scrub(&e.to_string())),
+            Err((e, _)) => Err(Refusal {
+                reason: self.bus.scrubber().scrub(&e.to_string()),
+                for_good: refused_for_good(e),
+            }),
         };
         let mut state = self.acks.state.lock().expect("ack lock");
         if let Some(slot) = state.answered.get_mut(index) {
@@ -101,6 +135,9 @@ pub struct RecordProducer {
 pub struct DeliveryReport {
     /// Indexes of records the broker did not acknowledge, with the reason.
     pub failed: Vec<(usize, String)>,
+    /// Those of `failed` that can never be delivered (too large, not authorised,
+    /// invalid): sending them again would only repeat the refusal.
+    pub refused_for_good: Vec<usize>,
     /// The producer was muted (a standby): nothing was sent, nothing failed.
     pub withheld: bool,
 }
@@ -196,7 +233,13 @@ impl RecordProducer {
                         std::thread::sleep(Duration::from_millis(5));
                     }
                     Err((e, _)) => {
-                        failed.push((index, e.to_string()));
+                        failed.push((
+                            index,
+                            Refusal {
+                                reason: self.producer.context().bus.scrubber().scrub(&e.to_string()),
+                                for_good: refused_for_good(&e),
+                            },
+                        ));
                         not_sent[index] = true;
                         break;
                     }
@@ -219,7 +262,7 @@ pub struct Sending<'a> {
     producer: &'a RecordProducer,
     _one_at_a_time: MutexGuard<'a, ()>,
     deadline: Instant,
-    failed: Vec<(usize, String)>,
+    failed: Vec<(usize, Refusal)>,
     not_sent: Vec<bool>,
     /// Nothing was sent: the producer is muted.
     withheld: bool,
@@ -232,8 +275,8 @@ impl Sending<'_> {
     pub fn settle(self) -> DeliveryReport {
         if self.withheld {
             return DeliveryReport {
-                failed: Vec::new(),
                 withheld: true,
+                ..DeliveryReport::default()
             };
         }
         let producer = self.producer;
@@ -245,10 +288,7 @@ impl Sending<'_> {
         if producer.producer.flush(left).is_err() {
             producer.producer.purge(PurgeConfig::default().queue());
         }
-        let mut report = DeliveryReport {
-            failed: self.failed,
-            withheld: false,
-        };
+        let mut refusals = self.failed;
         let state = producer.acks.state.lock().expect("ack lock");
         for (index, answer) in state.answered.iter().enumerate() {
             if self.not_sent[index] {
@@ -256,13 +296,24 @@ impl Sending<'_> {
             }
             match answer {
                 Some(Ok(())) => {}
-                Some(Err(reason)) => report.failed.push((index, reason.clone())),
-                None => report
-                    .failed
-                    .push((index, "no acknowledgement before the deadline".into())),
+                Some(Err(refusal)) => refusals.push((index, refusal.clone())),
+                None => refusals.push((
+                    index,
+                    Refusal {
+                        reason: "no acknowledgement before the deadline".into(),
+                        for_good: false,
+                    },
+                )),
             }
         }
-        report.failed.sort_by_key(|(i, _)| *i);
+        refusals.sort_by_key(|(i, _)| *i);
+        let mut report = DeliveryReport::default();
+        for (index, refusal) in refusals {
+            if refusal.for_good {
+                report.refused_for_good.push(index);
+            }
+            report.failed.push((index, refusal.reason));
+        }
         report
     }
 }

@@ -4,14 +4,15 @@
 use std::collections::BTreeMap;
 use std::time::Duration;
 
-use anyhow::{Context, Result};
+use anyhow::{bail, Context, Result};
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::{Offset, TopicPartitionList};
 
 use super::client::{base_config, describe_error, BusContext};
 use super::message::InMessage;
 use super::offsets::{OffsetsClient, REQUEST_TIMEOUT};
-use crate::config::KafkaConfig;
+use super::outside_log::{decide, StartDecision};
+use crate::config::{KafkaConfig, OutsideLogPolicy};
 
 /// How long one poll waits for a message before the positions are checked.
 const POLL_WAIT: Duration = Duration::from_millis(500);
@@ -21,23 +22,53 @@ const POLL_WAIT: Duration = Duration::from_millis(500);
 pub struct ReplayPlan {
     /// Partition → (first offset to read, offset to stop before).
     pub ranges: BTreeMap<i32, (i64, i64)>,
+    /// Offsets that will never be applied because a stored position was outside its
+    /// partition's log and the policy resumed elsewhere.
+    pub skipped: u64,
 }
 
 impl ReplayPlan {
-    /// Every partition of `topic` from its stored next offset (or its first retained one,
-    /// whichever is later) to its current end.
+    /// Every partition of `topic` from its stored next offset (or its first retained
+    /// one, for a partition the store never read) to its current end. A stored position
+    /// outside the partition's log is judged by `policy`, as the live service judges it
+    /// (docs/design.md, "Positions outside the log"): refused, the plan fails naming it.
     pub fn to_current_end(
         client: &OffsetsClient,
         topic: &str,
         stored: &BTreeMap<i32, i64>,
+        policy: OutsideLogPolicy,
     ) -> Result<ReplayPlan> {
         let mut ranges = BTreeMap::new();
+        let mut skipped = 0;
         for p in client.partitions(topic)? {
             let (low, high) = client.watermarks(topic, p, REQUEST_TIMEOUT)?;
-            let start = stored.get(&p).copied().unwrap_or(low).max(low);
+            let start = match stored.get(&p) {
+                None => low,
+                Some(&next) => match decide(p, next, (low, high), policy) {
+                    StartDecision::Inside(at) => at,
+                    StartDecision::Refused(outside) => bail!(
+                        "{topic} {outside}. Nothing was applied. To accept the loss, run again with \
+                         kafka.position_outside_log = \"resume_at_log_start\" or \"resume_at_log_end\""
+                    ),
+                    StartDecision::Resumed {
+                        at,
+                        skipped: n,
+                        outside,
+                    } => {
+                        tracing::warn!(
+                            partition = p,
+                            resumed_at = at,
+                            skipped = n,
+                            "{outside}; resuming by kafka.position_outside_log"
+                        );
+                        skipped += n;
+                        at
+                    }
+                },
+            };
             ranges.insert(p, (start, high));
         }
-        Ok(ReplayPlan { ranges })
+        Ok(ReplayPlan { ranges, skipped })
     }
 
     /// Messages the replay will read (at most; compaction may have removed some).
@@ -65,6 +96,9 @@ impl TopicReplay {
         let mut config = base_config(kafka);
         config.set("group.id", format!("{}-backfill", kafka.group));
         config.set("enable.auto.commit", "false");
+        // The plan judged every start; a position that leaves the log while reading is
+        // an error, never a silent jump.
+        config.set("auto.offset.reset", "error");
         let consumer: BaseConsumer<BusContext> = config
             .create_with_context(bus.clone())
             .map_err(|e| describe_error(bus.scrubber(), "cannot create the Kafka consumer", &e))?;

@@ -121,6 +121,11 @@ pub async fn ensure_topics(
         if compacted {
             new = new.set("cleanup.policy", "compact");
         }
+        // Dead letters hold refused events, personal data included: they expire.
+        let retention_ms = kafka_owned.dead_letter_retention.as_millis().to_string();
+        if topic == kafka_owned.dead_letter_topic {
+            new = new.set("retention.ms", &retention_ms);
+        }
         let outcome = admin.create_topics([&new], &options).await;
         match outcome.map(|mut results| results.pop()) {
             Ok(Some(Ok(_))) => {

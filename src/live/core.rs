@@ -5,13 +5,15 @@
 //! always waits for the running cycle first.
 
 use std::collections::BTreeMap;
+use std::fs::File;
+use std::io::Write;
 use std::sync::Arc;
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
 
-use super::batch::PendingBatch;
+use super::batch::{PendingBatch, Rejected};
 use super::cycle::{
     count_catalogue, destination, list_record, measure_store, note_delivery, CycleOutcome, CycleRun,
 };
@@ -34,7 +36,7 @@ use crate::score::ListSettings;
 use crate::shutdown::Shutdown;
 use crate::signal::Signal;
 use crate::store::mirror::RowMirror;
-use crate::store::{PairWrite, Store};
+use crate::store::{open_rejects, PairWrite, Store};
 use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
@@ -129,10 +131,13 @@ pub struct Core {
     shutdown: Shutdown,
     /// Record timestamps of written messages not yet covered by a publication.
     unpublished_ms: Vec<UnixMillis>,
+    /// The store's rejects file: dead letters the broker refused for good are recorded
+    /// here (without their content), its length written with the next store write.
+    rejects: File,
 }
 
 impl Core {
-    /// Wraps an open store. Retries end early once shutdown begins.
+    /// Wraps an open store and its rejects file. Retries end early once shutdown begins.
     pub fn new(
         store: Store,
         config: &Config,
@@ -140,8 +145,9 @@ impl Core {
         health: Arc<Health>,
         metrics: Arc<Metrics>,
         shutdown: Shutdown,
-    ) -> Core {
-        Core {
+    ) -> Result<Core> {
+        Ok(Core {
+            rejects: open_rejects(&store)?,
             store: Arc::new(store),
             pending: PendingBatch::default(),
             segment: None,
@@ -159,7 +165,7 @@ impl Core {
             metrics,
             shutdown,
             unpublished_ms: Vec::new(),
-        }
+        })
     }
 
     /// Compacts the whole store (an operator asked for it).
@@ -260,13 +266,26 @@ impl Core {
         if self.pending.is_empty() {
             return BatchApply::Nothing;
         }
-        if !self.deliver_dead_letters(deadline) {
+        let Some(undeliverable) = self.deliver_dead_letters(deadline) else {
             self.abandon_batch();
             return BatchApply::Abandoned;
-        }
+        };
         let rejects = self.pending.reject_counts();
         if !rejects.is_empty() && self.config.cluster.spec().produces_dead_letters() {
-            Observation::DeadLettersDelivered { by_reason: &rejects }.emit(&self.metrics);
+            let mut delivered = rejects.clone();
+            for (index, _) in &undeliverable {
+                let reason = self.pending.rejected[*index].rejection.reason;
+                delivered.entry(reason).and_modify(|n| *n -= 1);
+            }
+            delivered.retain(|_, n| *n > 0);
+            Observation::DeadLettersDelivered {
+                by_reason: &delivered,
+            }
+            .emit(&self.metrics);
+        }
+        let erasures = self.pending.rejected_erasures();
+        if erasures > 0 {
+            Observation::ErasuresRejected { count: erasures }.emit(&self.metrics);
         }
         let started = Instant::now();
         let segment = self
@@ -302,6 +321,14 @@ impl Core {
         };
         self.health.set_store_error(None);
         self.metrics.clear_batch_stalled();
+        if !undeliverable.is_empty() {
+            let topic = &self.config.kafka.input_topic;
+            match record_undeliverable(&mut self.rejects, topic, &self.pending.rejected, &undeliverable) {
+                Ok(len) => segment.pending.ledger_mut().rejects_file_len = len,
+                // The refusals were counted and logged; only the file's line is missing.
+                Err(e) => tracing::error!(error = %e, "cannot append to the rejects file"),
+            }
+        }
         let batch = std::mem::take(&mut self.pending);
         segment.advance(&self.config.kafka.input_topic, &batch.next_offsets);
         segment.timestamps.extend(batch.timestamps);
@@ -371,39 +398,73 @@ impl Core {
     }
 
     /// Delivers the pending batch's dead letters, retrying what the broker did not take
-    /// until `deadline`; false when it gave up (deadline or shutdown).
+    /// until `deadline`. Returns the letters the broker refused for good (index into the
+    /// batch's rejected messages, and the reason), which are counted and recorded in the
+    /// rejects file instead: retrying them would hold the partition for ever. `None`
+    /// when it gave up on the others (deadline or shutdown).
     /// Only shard 0 of a sharded setup delivers (every shard refuses and counts the same
     /// events), so each dead letter reaches the topic once.
-    fn deliver_dead_letters(&self, deadline: Option<Instant>) -> bool {
+    fn deliver_dead_letters(&self, deadline: Option<Instant>) -> Option<Vec<(usize, String)>> {
+        let mut refused_for_good = Vec::new();
         if !self.config.cluster.spec().produces_dead_letters() {
-            return true;
+            return Some(refused_for_good);
         }
         let kafka = &self.config.kafka;
-        let mut letters: Vec<OutRecord> = self
+        // (index among the batch's rejected messages, its dead letter)
+        let mut letters: Vec<(usize, OutRecord)> = self
             .pending
             .rejected
             .iter()
             .map(|r| r.dead_letter(&kafka.input_topic, &kafka.dead_letter_topic))
+            .enumerate()
             .collect();
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
         while !letters.is_empty() {
-            let report = self.deliver(&letters);
-            if report.all_delivered() {
-                return true;
+            let records: Vec<OutRecord> = letters.iter().map(|(_, r)| r.clone()).collect();
+            let report = self.deliver(&records);
+            for &k in &report.refused_for_good {
+                let reason = &report
+                    .failed
+                    .iter()
+                    .find(|(i, _)| *i == k)
+                    .expect("a refusal is a failure")
+                    .1;
+                let m = &self.pending.rejected[letters[k].0].message;
+                Observation::DeadLetterUndeliverable {
+                    partition: m.partition,
+                    offset: m.offset,
+                    error: reason,
+                }
+                .emit(&self.metrics);
+                refused_for_good.push((letters[k].0, reason.clone()));
+            }
+            let retry: Vec<usize> = report
+                .failed
+                .iter()
+                .map(|(k, _)| *k)
+                .filter(|k| !report.refused_for_good.contains(k))
+                .collect();
+            if retry.is_empty() {
+                return Some(refused_for_good);
             }
             Observation::DeliveryFailed {
                 what: "dead letters",
-                count: report.failed.len(),
-                first_reason: &report.failed[0].1,
+                count: retry.len(),
+                first_reason: &report
+                    .failed
+                    .iter()
+                    .find(|(k, _)| *k == retry[0])
+                    .expect("listed")
+                    .1,
             }
             .emit(&self.metrics);
             self.metrics.note_batch_stalled();
-            letters = report.failed.iter().map(|(i, _)| letters[*i].clone()).collect();
+            letters = retry.iter().map(|&k| letters[k].clone()).collect();
             if !backoff.wait(deadline, &self.shutdown) {
-                return false;
+                return None;
             }
         }
-        true
+        Some(refused_for_good)
     }
 
     /// Produces `records` and tells readiness, per topic, whether the broker took them.
@@ -458,6 +519,7 @@ impl Core {
                 return Ok(false);
             }
             self.counters.lists_delivered += records.len() as u64;
+            self.health.beat();
         }
         self.store.set_delivered_to(&destination(&self.config.kafka))?;
         Ok(true)
@@ -533,4 +595,34 @@ impl Core {
     fn refresh_store_gauges(&self) {
         measure_store(&self.store, &self.metrics);
     }
+}
+
+/// Appends one line per dead letter the broker refused for good to the rejects file:
+/// where the message is and why it was refused twice, never its content (it stays in the
+/// input topic's log for as long as the topic retains it). Returns the file's new length
+/// for the ledger.
+fn record_undeliverable(
+    file: &mut File,
+    topic: &str,
+    rejected: &[Rejected],
+    undeliverable: &[(usize, String)],
+) -> std::io::Result<u64> {
+    let mut lines = String::new();
+    for (index, error) in undeliverable {
+        let r = &rejected[*index];
+        let line = serde_json::json!({
+            "source": topic,
+            "partition": r.message.partition,
+            "offset": r.message.offset,
+            "field": r.rejection.field,
+            "reason": r.rejection.reason.code(),
+            "detail": r.rejection.detail,
+            "dead_letter_refused": error,
+        });
+        lines.push_str(&line.to_string());
+        lines.push('\n');
+    }
+    file.write_all(lines.as_bytes())?;
+    file.flush()?;
+    Ok(file.metadata()?.len())
 }

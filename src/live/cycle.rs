@@ -270,6 +270,7 @@ impl CycleRun {
             // instance republishes every list when it gains the lease.
             self.store
                 .write_publications(&writes, Delivery::StoredOnly, now)?;
+            self.health.beat();
             return Ok(true);
         }
         note_delivery(&self.health, &records, &report);
@@ -296,6 +297,11 @@ impl CycleRun {
         outcome.undelivered += report.failed.len() as u64;
         self.store
             .write_publications(&writes, Delivery::Delivered(destination), now)?;
-        Ok(report.failed.len() < records.len())
+        let progressed = report.failed.len() < records.len();
+        if progressed {
+            // A long cycle the loop waits for is progress, not a stall.
+            self.health.beat();
+        }
+        Ok(progressed)
     }
 }

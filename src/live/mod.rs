@@ -327,7 +327,12 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
     let brokers = Arc::new(BrokerState::default());
     let bus = BusContext::new(brokers.clone(), scrubber);
     let shard = config.cluster.spec();
-    let health = Arc::new(Health::new(brokers, config.readiness.clone(), shard));
+    let health = Arc::new(Health::new(
+        brokers,
+        config.readiness.clone(),
+        shard,
+        config.live.stall_limit,
+    ));
     let metrics = Arc::new(Metrics::for_shard(shard));
     let admin = Arc::new(AdminRequests::default());
     let store_dir = options
@@ -405,7 +410,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
         health.clone(),
         metrics.clone(),
         shutdown.clone(),
-    )));
+    )?));
     let in_sync = {
         let c = core.lock().expect("core lock");
         c.seed_positions();
@@ -428,7 +433,7 @@ pub fn start(config: &Config, options: RunOptions, shutdown: Shutdown) -> Result
     let consumer = GroupConsumer::join(
         &config.kafka,
         bus,
-        StorePositions::new(core.clone(), health.clone()),
+        StorePositions::new(core.clone(), health.clone(), metrics.clone()),
         config.live.shutdown_timeout,
         membership,
     )?;
@@ -480,6 +485,10 @@ fn start_http(runtime: &tokio::runtime::Runtime, config: &Config, served: Served
             config: Arc::new(config.clone()),
             other_lists: served.other_lists,
         },
+        crate::http::ConnectionLimits {
+            max_connections: config.http.max_connections,
+            header_timeout: config.http.header_timeout,
+        },
     ));
     Ok(())
 }
@@ -520,6 +529,7 @@ impl Service {
         let mut next_publish = Instant::now() + interval;
         let mut next_listing_look = Instant::now();
         while !self.shutdown.is_begun() {
+            self.health.beat();
             if Instant::now() >= next_listing_look {
                 let listed = self.listed_partitions.lock().expect("partitions lock").clone();
                 self.consumer.assign_new_partitions(&listed);
@@ -545,7 +555,12 @@ impl Service {
                         self.core().take(message);
                     }
                 }
-                Some(Err(error)) => Observation::ConsumeFailed { error: &error }.emit(&self.metrics),
+                Some(Err(error)) => {
+                    Observation::ConsumeFailed { error: &error.text }.emit(&self.metrics);
+                    if error.position_out_of_range {
+                        self.consumer.recheck_positions();
+                    }
+                }
                 None => {}
             }
             let flushed = self.core().flush_if_due();

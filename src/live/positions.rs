@@ -1,6 +1,6 @@
 //! What the group consumer's rebalance handler asks of the live service: the positions
-//! the store holds, a commit of the batch in flight before partitions are revoked, and
-//! readiness's "consuming" flag.
+//! the store holds, a commit of the batch in flight before partitions are revoked,
+//! readiness's "consuming" flag, and what became of positions the log no longer holds.
 
 use std::collections::BTreeMap;
 use std::sync::{Arc, Mutex};
@@ -9,17 +9,25 @@ use std::time::{Duration, Instant};
 use super::core::{Core, Flushed};
 use crate::health::Health;
 use crate::kafka::group::PositionKeeper;
+use crate::kafka::outside_log::OutsidePosition;
+use crate::metrics::Metrics;
+use crate::observe::Observation;
 
 /// The live service's side of a rebalance.
 pub struct StorePositions {
     core: Arc<Mutex<Core>>,
     health: Arc<Health>,
+    metrics: Arc<Metrics>,
 }
 
 impl StorePositions {
     /// Answers from the service state behind `core`.
-    pub fn new(core: Arc<Mutex<Core>>, health: Arc<Health>) -> StorePositions {
-        StorePositions { core, health }
+    pub fn new(core: Arc<Mutex<Core>>, health: Arc<Health>, metrics: Arc<Metrics>) -> StorePositions {
+        StorePositions {
+            core,
+            health,
+            metrics,
+        }
     }
 }
 
@@ -42,5 +50,16 @@ impl PositionKeeper for StorePositions {
 
     fn set_consuming(&self, consuming: bool) {
         self.health.set_consuming(consuming);
+    }
+
+    fn set_refused(&self, refused: &BTreeMap<i32, OutsidePosition>) {
+        let refused: Vec<&OutsidePosition> = refused.values().collect();
+        Observation::PositionsRefused { refused: &refused }.emit(&self.metrics);
+        self.health
+            .set_refused_positions(refused.iter().map(|o| o.to_string()).collect());
+    }
+
+    fn note_resumed(&self, outside: &OutsidePosition, at: i64, skipped: u64) {
+        Observation::OffsetsSkipped { outside, at, skipped }.emit(&self.metrics);
     }
 }

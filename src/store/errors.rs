@@ -24,6 +24,12 @@ pub enum OpenError {
         /// The file whose absence shows it.
         marker: PathBuf,
     },
+    /// A snapshot or reshard was still writing this directory when it stopped.
+    #[error("{} is an incomplete copy: a snapshot or reshard stopped while writing it. Delete it and run that command again (it starts over; the final directory never held a partial copy)", .dir.display())]
+    Incomplete {
+        /// The directory given.
+        dir: PathBuf,
+    },
     /// The database was created but never initialised by simtide.
     #[error("store {} was never initialised", .dir.display())]
     NeverInitialised {

@@ -2,6 +2,14 @@
 //! by read-modify-write, so a batch writes blindly and RocksDB adds up operands lazily.
 //! Every operator here is associative and commutative, so full and partial merges share
 //! one function.
+//!
+//! A malformed operand fails the merge: RocksDB then reports the read or compaction as
+//! corruption, and the key is named in the error log and on `/readyz`
+//! ([`malformed_operand`]). Skipping it would turn corruption into wrong sums or lost
+//! dirty marks that nothing reports.
+
+use std::fmt::Display;
+use std::sync::OnceLock;
 
 use rocksdb::compaction_filter::Decision;
 use rocksdb::MergeOperands;
@@ -12,14 +20,32 @@ use super::codec::{
 };
 use crate::model::{DirtyMark, RatingPairStats};
 
-/// Sums rating pair statistics field by field. A malformed operand is skipped with an
-/// error log rather than poisoning the key (it can only come from a foreign writer).
-pub fn merge_rating_pairs(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+/// The first malformed merge operand this process met: the family, the key in hex and
+/// what was wrong. Merge operators get no context of their own, so this is process-wide.
+static MALFORMED: OnceLock<String> = OnceLock::new();
+
+/// Where the store holds a value its merge operator could not read, if it met one: the
+/// store check of `/readyz` names it.
+pub fn malformed_operand() -> Option<&'static str> {
+    MALFORMED.get().map(String::as_str)
+}
+
+/// Fails a merge over a malformed operand of `family` at `key`, naming both.
+fn refuse(family: &str, key: &[u8], error: impl Display) -> Option<Vec<u8>> {
+    let hex: String = key.iter().map(|b| format!("{b:02x}")).collect();
+    let place = format!("column family {family}, key {hex}: {error}");
+    tracing::error!(%place, "malformed merge operand; the read or compaction fails as corruption");
+    let _ = MALFORMED.set(place);
+    None
+}
+
+/// Sums rating pair statistics field by field; a malformed operand fails the merge.
+pub fn merge_rating_pairs(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
     let mut total = RatingPairStats::default();
     for bytes in existing.into_iter().chain(operands) {
         match decode_rating_pair(bytes) {
             Ok(delta) => total.add(&delta),
-            Err(e) => tracing::error!(error = %e, "skipping malformed rating pair operand"),
+            Err(e) => return refuse("pairs", key, e),
         }
     }
     let mut out = Vec::with_capacity(RATING_PAIR_MAX_LEN);
@@ -27,24 +53,26 @@ pub fn merge_rating_pairs(_key: &[u8], existing: Option<&[u8]>, operands: &Merge
     Some(out)
 }
 
-/// Sums co-buyer counts.
-pub fn merge_counts(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+/// Sums co-buyer counts; a malformed operand fails the merge.
+pub fn merge_counts(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
     let mut total: i64 = 0;
     for bytes in existing.into_iter().chain(operands) {
         match decode_count(bytes) {
             Ok(c) => total = total.wrapping_add(c),
-            Err(e) => tracing::error!(error = %e, "skipping malformed count operand"),
+            Err(e) => return refuse("purchase_pairs", key, e),
         }
     }
     Some(total.to_le_bytes().to_vec())
 }
 
-/// Keeps the earliest dirty time and any neighbor flag.
-pub fn merge_dirty(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+/// Keeps the earliest dirty time and any neighbor flag; a malformed operand fails the
+/// merge.
+pub fn merge_dirty(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
     let mut combined: Option<DirtyMark> = None;
     for bytes in existing.into_iter().chain(operands) {
-        if let Ok(mark) = decode_dirty_mark(bytes) {
-            combined = Some(combined.map_or(mark, |c| c.combine(&mark)));
+        match decode_dirty_mark(bytes) {
+            Ok(mark) => combined = Some(combined.map_or(mark, |c| c.combine(&mark))),
+            Err(e) => return refuse("dirty", key, e),
         }
     }
     combined.map(|m| encode_dirty_mark(&m).to_vec())

@@ -34,10 +34,14 @@ mod reads;
 pub mod reshard;
 mod rows;
 mod snapshot;
+pub mod staged;
 
+use std::fs::{File, OpenOptions};
+use std::io::{Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
+use anyhow::{Context, Result};
 use rocksdb::{ColumnFamily, DB};
 
 pub use commit::{BatchCommit, Delivery, MarkAfterWrite, PairWrite, PublicationWrite};
@@ -104,9 +108,30 @@ pub fn db_path(dir: &Path) -> PathBuf {
     dir.join("db")
 }
 
-/// Where a backfill's rejected records are written inside a store directory.
+/// Where rejected records are written inside a store directory: a backfill's, and the
+/// live service's dead letters the broker refused for good.
 pub fn rejects_path(dir: &Path) -> PathBuf {
     dir.join("rejects.jsonl")
+}
+
+/// Opens the rejects file for appending, cutting off anything a crashed run wrote after
+/// its last commit (the ledger records the file's length with every write).
+pub fn open_rejects(store: &Store) -> Result<File> {
+    let path = rejects_path(store.dir());
+    let mut file = OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .read(true)
+        .write(true)
+        .open(&path)
+        .with_context(|| format!("cannot open rejects file {}", path.display()))?;
+    // Only ever shorten: an operator may have deleted or emptied the file after handling it.
+    let committed = store.ledger().rejects_file_len;
+    if file.metadata()?.len() > committed {
+        file.set_len(committed)?;
+    }
+    file.seek(SeekFrom::End(0))?;
+    Ok(file)
 }
 
 impl Store {

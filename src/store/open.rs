@@ -117,6 +117,13 @@ impl Store {
     /// Opens (creating if needed) a store for writing. Refuses a store whose statistics
     /// were shaped by other settings, naming each differing setting.
     pub fn open(dir: &Path, config: &Config) -> Result<Store> {
+        super::staged::refuse_incomplete(dir)?;
+        Store::open_creating(dir, config)
+    }
+
+    /// [`Store::open`] without refusing a directory still being built: only for the
+    /// command building it (`simtide reshard`, in its staging directory).
+    pub(super) fn open_creating(dir: &Path, config: &Config) -> Result<Store> {
         std::fs::create_dir_all(dir)
             .with_context(|| format!("cannot create store directory {}", dir.display()))?;
         Store::open_primary(dir, Some(StatsFingerprint::from_config(config)))
@@ -125,6 +132,7 @@ impl Store {
     /// Opens an existing store for writing with the settings it holds (`simtide
     /// snapshot`, which copies whatever the store is). Refused while a service holds it.
     pub fn open_as_stored(dir: &Path) -> Result<Store> {
+        super::staged::refuse_incomplete(dir)?;
         let marker = db_path(dir).join("CURRENT");
         if !marker.exists() {
             return Err(OpenError::NotAStore {
@@ -186,6 +194,7 @@ impl Store {
     /// Opens a store for reading while a writer may hold it open, as a RocksDB secondary
     /// instance caught up with the primary at open time.
     pub fn open_read_only(dir: &Path) -> Result<Store> {
+        super::staged::refuse_incomplete(dir)?;
         let path = db_path(dir);
         let marker = path.join("CURRENT");
         if !marker.exists() {

@@ -41,7 +41,17 @@ pub fn reshard(from: &[PathBuf], to: &Path, config: &Config) -> Result<ReshardSu
             to.display()
         );
     }
-    let target = Store::open(to, config)?;
+    // Built beside `to` and renamed when whole: a killed reshard leaves no store that
+    // `run` would open with an empty ledger.
+    super::staged::build_whole(to, "a resharded store", |staging| {
+        fill_new_shard(&sources, old, staging, config)
+    })
+}
+
+/// Copies into the fresh store at `to` what shard `config.cluster` of the new layout
+/// keeps from the checked `sources` (one whole set of `old` shards).
+fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config) -> Result<ReshardSummary> {
+    let target = Store::open_creating(to, config)?;
     let new = target.shard();
     let by_shard: Vec<&Store> = (0..old.shards)
         .map(|i| {

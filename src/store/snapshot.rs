@@ -8,31 +8,21 @@
 use std::fmt::Write as _;
 use std::path::Path;
 
-use anyhow::{bail, Context, Result};
+use anyhow::{Context, Result};
 use rocksdb::checkpoint::Checkpoint;
 
 use super::{db_path, rejects_path, Store};
 
 impl Store {
     /// Writes a consistent copy of this store to `to`, a directory that must not exist
-    /// yet. Works on the writer and on a view of a running service's store; a copy cut
-    /// short (a full disk) is removed, so a directory that exists is a whole snapshot.
+    /// yet. Works on the writer and on a view of a running service's store. The copy is
+    /// built beside `to` and renamed when whole (`staged`), so a directory that exists
+    /// is a whole snapshot, even after a kill.
     pub fn snapshot_to(&self, to: &Path) -> Result<()> {
-        if to.exists() {
-            bail!(
-                "{} already exists: a snapshot goes to a new directory",
-                to.display()
-            );
-        }
-        let made = self.write_snapshot(to);
-        if made.is_err() {
-            let _ = std::fs::remove_dir_all(to);
-        }
-        made
+        super::staged::build_whole(to, "a snapshot", |staging| self.write_snapshot(staging))
     }
 
     fn write_snapshot(&self, to: &Path) -> Result<()> {
-        std::fs::create_dir_all(to).with_context(|| format!("cannot create {}", to.display()))?;
         Checkpoint::new(&self.db)
             .and_then(|c| c.create_checkpoint(db_path(to)))
             .with_context(|| {

@@ -118,24 +118,54 @@ impl Broker {
 
     /// Creates a topic (tansu does not auto-create), compacted when asked.
     pub fn create_topic(&self, name: &str, partitions: i32, compacted: bool) {
-        let admin: AdminClient<DefaultClientContext> = ClientConfig::new()
-            .set("bootstrap.servers", self.bootstrap())
-            .create()
-            .expect("admin client");
         let mut topic = NewTopic::new(name, partitions, TopicReplication::Fixed(1));
         if compacted {
             topic = topic.set("cleanup.policy", "compact");
         }
+        let results = self
+            .admin(|admin, runtime| runtime.block_on(admin.create_topics([&topic], &AdminOptions::new())));
+        for r in results {
+            r.unwrap_or_else(|(t, e)| panic!("creating topic {t}: {e}"));
+        }
+    }
+
+    /// The topics the broker lists.
+    pub fn topics(&self) -> Vec<String> {
+        let client: rdkafka::consumer::BaseConsumer = ClientConfig::new()
+            .set("bootstrap.servers", self.bootstrap())
+            .create()
+            .expect("metadata client");
+        let metadata = rdkafka::consumer::Consumer::fetch_metadata(&client, None, Duration::from_secs(10))
+            .expect("the broker lists its topics");
+        metadata.topics().iter().map(|t| t.name().to_string()).collect()
+    }
+
+    /// Deletes a topic and its records (to replace it under a stopped service).
+    pub fn delete_topic(&self, name: &str) {
+        let results =
+            self.admin(|admin, runtime| runtime.block_on(admin.delete_topics(&[name], &AdminOptions::new())));
+        for r in results {
+            r.unwrap_or_else(|(t, e)| panic!("deleting topic {t}: {e}"));
+        }
+    }
+
+    /// Runs one admin request against the broker and returns its per-topic results.
+    fn admin<R>(
+        &self,
+        request: impl FnOnce(
+            &AdminClient<DefaultClientContext>,
+            &tokio::runtime::Runtime,
+        ) -> rdkafka::error::KafkaResult<R>,
+    ) -> R {
+        let admin: AdminClient<DefaultClientContext> = ClientConfig::new()
+            .set("bootstrap.servers", self.bootstrap())
+            .create()
+            .expect("admin client");
         let runtime = tokio::runtime::Builder::new_current_thread()
             .enable_all()
             .build()
             .unwrap();
-        let results = runtime
-            .block_on(admin.create_topics([&topic], &AdminOptions::new()))
-            .expect("create_topics answered");
-        for r in results {
-            r.unwrap_or_else(|(t, e)| panic!("creating topic {t}: {e}"));
-        }
+        request(&admin, &runtime).expect("the broker answered the admin request")
     }
 }
 

@@ -145,6 +145,8 @@ mod tests {
         max_id_bytes: 64,
         rating_min: 1.0,
         rating_max: 5.0,
+        max_record_bytes: 1 << 20,
+        max_future_skew_ns: 3_600_000_000_000,
     };
 
     fn rec(cells: &[&str]) -> csv::StringRecord {

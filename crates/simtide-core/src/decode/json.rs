@@ -122,10 +122,43 @@ mod tests {
         max_id_bytes: 8,
         rating_min: 1.0,
         rating_max: 5.0,
+        max_record_bytes: 1 << 20,
+        max_future_skew_ns: 3_600_000_000_000,
     };
 
     fn rejected(line: &str) -> Rejection {
         decode_json_line(line, &LIMITS).unwrap_err()
+    }
+
+    #[test]
+    fn an_event_dated_past_the_skew_is_refused_naming_at() {
+        use crate::decode::{refuse_if_ahead, RejectReason};
+        use crate::timefmt::parse_event_time;
+        let read_at = parse_event_time("2026-05-01T10:00:00Z").unwrap();
+        let event = |at: &str| {
+            decode_json_line(
+                &format!(r#"{{"kind":"erase_user","user":"u1","at":"{at}"}}"#),
+                &LIMITS,
+            )
+            .unwrap()
+        };
+        // Exactly one hour ahead is still accepted; a second more is not.
+        assert_eq!(
+            refuse_if_ahead(&event("2026-05-01T11:00:00Z"), read_at, &LIMITS),
+            Ok(())
+        );
+        assert_eq!(
+            refuse_if_ahead(&event("2020-01-01T00:00:00Z"), read_at, &LIMITS),
+            Ok(())
+        );
+        let r = refuse_if_ahead(&event("2026-05-01T11:00:01Z"), read_at, &LIMITS).unwrap_err();
+        assert_eq!((r.field, r.reason), ("at", RejectReason::TooFarAhead));
+        let r = refuse_if_ahead(&event("2261-01-01T00:00:00Z"), read_at, &LIMITS).unwrap_err();
+        assert!(
+            r.detail.contains("2261-01-01T00:00:00Z") && r.detail.contains("input.max_future_skew = 3600s"),
+            "{}",
+            r.detail
+        );
     }
 
     #[test]

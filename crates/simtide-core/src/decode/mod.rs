@@ -9,7 +9,7 @@ pub mod json;
 use std::fmt;
 
 use crate::event::{Event, EventBody, EventKind, UnixNanos};
-use crate::timefmt::parse_event_time;
+use crate::timefmt::{format_rfc3339, parse_event_time, NANOS_PER_SECOND};
 
 /// Why an input record was refused; the `code` is what counters are labelled with.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
@@ -36,11 +36,15 @@ pub enum RejectReason {
     BadTime,
     /// `quantity` is not a positive whole number.
     BadQuantity,
+    /// The message is larger than `input.max_message_bytes`.
+    TooLarge,
+    /// `at` lies further after the record's own time than `input.max_future_skew`.
+    TooFarAhead,
 }
 
 impl RejectReason {
     /// Every reason, for complete counter listings.
-    pub const ALL: [RejectReason; 11] = [
+    pub const ALL: [RejectReason; 13] = [
         RejectReason::BadJson,
         RejectReason::BadCsv,
         RejectReason::MissingField,
@@ -52,6 +56,8 @@ impl RejectReason {
         RejectReason::UnknownKind,
         RejectReason::BadTime,
         RejectReason::BadQuantity,
+        RejectReason::TooLarge,
+        RejectReason::TooFarAhead,
     ];
 
     /// Stable snake_case name used in counters, rejects files and summaries.
@@ -68,6 +74,8 @@ impl RejectReason {
             RejectReason::UnknownKind => "unknown_kind",
             RejectReason::BadTime => "bad_time",
             RejectReason::BadQuantity => "bad_quantity",
+            RejectReason::TooLarge => "too_large",
+            RejectReason::TooFarAhead => "too_far_ahead",
         }
     }
 }
@@ -116,6 +124,34 @@ pub struct Limits {
     pub rating_min: f64,
     /// Highest valid rating.
     pub rating_max: f64,
+    /// Largest accepted message, in bytes of key, value and headers
+    /// (`input.max_message_bytes`; Kafka messages only).
+    pub max_record_bytes: usize,
+    /// Longest time, in nanoseconds, an event's `at` may lie after the time it is read
+    /// against (the record's timestamp, or the clock for files).
+    pub max_future_skew_ns: i64,
+}
+
+/// Refuses `event` when its `at` lies more than `limits.max_future_skew_ns` after
+/// `reference`: the broker's timestamp of the record it came in, or the clock when a file
+/// is read. The newest `at` wins per user and item, so one event dated decades ahead
+/// would pin an item (or, as an erasure, silence a user) until then.
+pub fn refuse_if_ahead(event: &Event, reference: UnixNanos, limits: &Limits) -> Result<(), Rejection> {
+    let ahead = event.at.0.saturating_sub(reference.0);
+    if ahead <= limits.max_future_skew_ns {
+        return Ok(());
+    }
+    Err(Rejection::new(
+        "at",
+        RejectReason::TooFarAhead,
+        format!(
+            "{} is {}s after the time it was read against ({}: the record's timestamp, or the clock for a file), more than input.max_future_skew = {}s",
+            format_rfc3339(event.at),
+            ahead / NANOS_PER_SECOND,
+            format_rfc3339(reference),
+            limits.max_future_skew_ns / NANOS_PER_SECOND
+        ),
+    ))
 }
 
 /// A record's fields, as either decoder sees them. Each accessor returns `Ok(None)` when
