@@ -7,7 +7,7 @@
 mod files;
 mod summary;
 mod topic;
-mod writer;
+pub(crate) mod writer;
 
 use std::path::PathBuf;
 use std::sync::Arc;

@@ -65,25 +65,33 @@ impl ReadBatch {
     pub fn reject(&mut self, source: &str, origin: RecordOrigin, rejection: &Rejection, raw: Option<&str>) {
         tracing::debug!(%rejection, "rejected record");
         *self.rejects.entry(rejection.reason).or_default() += 1;
-        let mut line = json!({
-            "source": source,
-            "field": rejection.field,
-            "reason": rejection.reason.code(),
-            "detail": rejection.detail,
-        });
+        let mut line = reject_line(source, origin, rejection);
         if let (Some(raw), Value::Object(fields)) = (raw, &mut line) {
             fields.insert("raw".into(), raw.into());
-        }
-        let position = match origin {
-            RecordOrigin::File { line, record } => json!({ "line": line, "record": record }),
-            RecordOrigin::Topic { partition, offset } => json!({ "partition": partition, "offset": offset }),
-        };
-        if let (Value::Object(fields), Value::Object(at)) = (&mut line, position) {
-            fields.extend(at);
         }
         self.reject_lines.push_str(&line.to_string());
         self.reject_lines.push('\n');
     }
+}
+
+/// One line of the rejects file, without the record's text: where the record is and
+/// why it was refused. Shared by backfills and the live service's undeliverable dead
+/// letters, so the file has one shape whoever wrote a line.
+pub fn reject_line(source: &str, origin: RecordOrigin, rejection: &Rejection) -> Value {
+    let mut line = json!({
+        "source": source,
+        "field": rejection.field,
+        "reason": rejection.reason.code(),
+        "detail": rejection.detail,
+    });
+    let position = match origin {
+        RecordOrigin::File { line, record } => json!({ "line": line, "record": record }),
+        RecordOrigin::Topic { partition, offset } => json!({ "partition": partition, "offset": offset }),
+    };
+    if let (Value::Object(fields), Value::Object(at)) = (&mut line, position) {
+        fields.extend(at);
+    }
+    line
 }
 
 /// Applies batches to one store for one backfill run, segment by segment.

@@ -26,6 +26,7 @@ use crate::engine::tally::EventTally;
 use crate::engine::EngineSettings;
 use crate::event::UnixMillis;
 use crate::health::Health;
+use crate::ingest::writer::{reject_line, RecordOrigin};
 use crate::kafka::message::InMessage;
 use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::metrics::Metrics;
@@ -610,15 +611,14 @@ fn record_undeliverable(
     let mut lines = String::new();
     for (index, error) in undeliverable {
         let r = &rejected[*index];
-        let line = serde_json::json!({
-            "source": topic,
-            "partition": r.message.partition,
-            "offset": r.message.offset,
-            "field": r.rejection.field,
-            "reason": r.rejection.reason.code(),
-            "detail": r.rejection.detail,
-            "dead_letter_refused": error,
-        });
+        let origin = RecordOrigin::Topic {
+            partition: r.message.partition,
+            offset: r.message.offset,
+        };
+        let mut line = reject_line(topic, origin, &r.rejection);
+        if let serde_json::Value::Object(fields) = &mut line {
+            fields.insert("dead_letter_refused".into(), error.as_str().into());
+        }
         lines.push_str(&line.to_string());
         lines.push('\n');
     }
