@@ -359,7 +359,10 @@ impl Metrics {
             )
             .expect("valid")),
             entities: r.add(IntGaugeVec::new(
-                Opts::new(names::ENTITIES, "Items, users and rating pairs (pairs estimated by RocksDB)."),
+                Opts::new(
+                    names::ENTITIES,
+                    "Item and user ids given out (forgotten users' included) and rating pairs (estimated by RocksDB).",
+                ),
                 &["entity"],
             )
             .expect("valid")),

@@ -17,8 +17,8 @@ use crate::engine::user_state::UserState;
 use crate::engine::{
     apply_batch, apply_batch_for_shard, Action, BatchEffects, EngineSettings, ItemStatus, Sequenced,
 };
-use crate::event::{Event, EventBody};
-use crate::store::{BatchCommit, Ledger, PairWrite, Store};
+use crate::event::{Event, EventBody, UnixNanos};
+use crate::store::{BatchCommit, ForgottenUser, Ledger, PairWrite, Store};
 use crate::timefmt::now_nanos;
 
 /// What one applied batch did.
@@ -44,6 +44,8 @@ struct NameIds {
     /// `user` or `item`, for the error that says the ids ran out.
     kind: &'static str,
     known: HashMap<String, u32>,
+    /// The first id this segment gives out: ids below it are the store's.
+    first: u32,
     next: u32,
     added: Vec<(u32, String)>,
 }
@@ -57,6 +59,7 @@ impl NameIds {
         NameIds {
             kind,
             known: HashMap::new(),
+            first: next,
             next,
             added: Vec::new(),
         }
@@ -82,12 +85,19 @@ impl NameIds {
 }
 
 /// Assigns dense ids to the names a batch uses: stored ids first, then the ones the
-/// segment assigned, then new ones from the segment's counters.
+/// segment assigned, then new ones from the segment's counters. Notes the users an
+/// erasure may leave forgotten (docs/design.md, "Personal data"): the targets of
+/// erasures, and names the store forgot, whose new ids start with the erasure time.
 struct Interner<'a> {
     store: &'a Store,
     stored_users: HashMap<String, u32>,
+    /// Names the store forgot among this batch's unknown names, with their erasure times.
+    forgotten_names: HashMap<String, UnixNanos>,
     users: &'a mut NameIds,
     items: &'a mut NameIds,
+    forgettable: &'a mut HashMap<u32, String>,
+    /// New ids of forgotten names, with the erasure time their history starts with.
+    returning: Vec<(u32, UnixNanos)>,
 }
 
 impl<'a> Interner<'a> {
@@ -96,6 +106,7 @@ impl<'a> Interner<'a> {
         events: &[Event],
         users: &'a mut NameIds,
         items: &'a mut NameIds,
+        forgettable: &'a mut HashMap<u32, String>,
     ) -> Result<Self> {
         let mut names: Vec<&str> = events
             .iter()
@@ -105,6 +116,20 @@ impl<'a> Interner<'a> {
         names.sort_unstable();
         names.dedup();
         let known = store.user_ids(&names)?;
+        let unknown: Vec<&str> = names
+            .iter()
+            .zip(&known)
+            .filter_map(|(n, id)| id.is_none().then_some(*n))
+            .collect();
+        let forgotten_names = if store.ledger().erasure_tombstones && !unknown.is_empty() {
+            unknown
+                .iter()
+                .zip(store.erasure_times(&unknown)?)
+                .filter_map(|(n, at)| at.map(|at| (n.to_string(), at)))
+                .collect()
+        } else {
+            HashMap::new()
+        };
         let stored_users = names
             .iter()
             .zip(known)
@@ -113,14 +138,28 @@ impl<'a> Interner<'a> {
         Ok(Interner {
             store,
             stored_users,
+            forgotten_names,
             users,
             items,
+            forgettable,
+            returning: Vec::new(),
         })
     }
 
     fn user(&mut self, name: &str) -> Result<u32> {
         let stored = &self.stored_users;
-        self.users.id(name, |n| stored.get(n).copied())
+        let id = self.users.id(name, |n| stored.get(n).copied())?;
+        if let Some(erased_at) = self.forgotten_names.remove(name) {
+            self.returning.push((id, erased_at));
+            self.forgettable.insert(id, name.to_string());
+        }
+        Ok(id)
+    }
+
+    fn erased_user(&mut self, name: &str) -> Result<u32> {
+        let id = self.user(name)?;
+        self.forgettable.entry(id).or_insert_with(|| name.to_string());
+        Ok(id)
     }
 
     fn item(&mut self, name: &str) -> Result<u32> {
@@ -144,7 +183,7 @@ impl<'a> Interner<'a> {
                 item: self.item(item)?,
             },
             EventBody::EraseUser { user } => Action::Erase {
-                user: self.user(user)?,
+                user: self.erased_user(user)?,
             },
             EventBody::ItemStatus { item, available } => Action::ItemStatus {
                 item: self.item(item)?,
@@ -170,6 +209,8 @@ pub struct Pending {
     users: NameIds,
     items: NameIds,
     states: HashMap<u32, UserState>,
+    /// Names of the users an erasure may leave forgotten, by id.
+    forgettable: HashMap<u32, String>,
     statuses: HashMap<u32, ItemStatus>,
     effects: SegmentEffects,
     ledger: Ledger,
@@ -188,6 +229,7 @@ impl Pending {
             users: NameIds::starting_at("user", ledger.next_user),
             items: NameIds::starting_at("item", ledger.next_item),
             states: HashMap::new(),
+            forgettable: HashMap::new(),
             statuses: HashMap::new(),
             effects: SegmentEffects::default(),
             ledger,
@@ -230,7 +272,13 @@ impl Pending {
         events: &[Event],
         rejects: &BTreeMap<RejectReason, u64>,
     ) -> Result<BatchSummary> {
-        let mut interner = Interner::new(store, events, &mut self.users, &mut self.items)?;
+        let mut interner = Interner::new(
+            store,
+            events,
+            &mut self.users,
+            &mut self.items,
+            &mut self.forgettable,
+        )?;
         let mut next_seq = self.ledger.next_seq;
         let sequenced: Vec<Sequenced> = events
             .iter()
@@ -244,6 +292,14 @@ impl Pending {
                 })
             })
             .collect::<Result<_>>()?;
+        for (user, erased_at) in std::mem::take(&mut interner.returning) {
+            let state = UserState {
+                erased_at: Some(erased_at),
+                ..UserState::default()
+            };
+            self.state_bytes += state.approx_bytes();
+            self.states.insert(user, state);
+        }
         let mut unloaded: Vec<u32> = sequenced
             .iter()
             .filter_map(|s| s.action.user())
@@ -321,10 +377,12 @@ impl Pending {
             sum_seconds = started.elapsed().as_secs_f64(),
             "segment sealed"
         );
+        let forgotten = forgotten_users(&self.forgettable, &self.states, self.users.first);
         Sealed {
             new_users: self.users.added,
             new_items: self.items.added,
             states: self.states,
+            forgotten,
             effects,
             ledger: self.ledger,
         }
@@ -345,8 +403,33 @@ pub struct Sealed {
     new_users: Vec<(u32, String)>,
     new_items: Vec<(u32, String)>,
     states: HashMap<u32, UserState>,
+    forgotten: Vec<ForgottenUser>,
     effects: BatchEffects,
     ledger: Ledger,
+}
+
+/// The users among `forgettable` whose history is empty after an erasure: the write
+/// forgets them (docs/design.md, "Personal data"). Ids below `first_new` are stored.
+fn forgotten_users(
+    forgettable: &HashMap<u32, String>,
+    states: &HashMap<u32, UserState>,
+    first_new: u32,
+) -> Vec<ForgottenUser> {
+    let mut forgotten: Vec<ForgottenUser> = forgettable
+        .iter()
+        .filter_map(|(&id, name)| {
+            let state = states.get(&id)?;
+            let erased_at = state.erased_at?;
+            (state.ratings.is_empty() && state.purchases.is_empty()).then(|| ForgottenUser {
+                id,
+                name: name.clone(),
+                erased_at,
+                stored: id < first_new,
+            })
+        })
+        .collect();
+    forgotten.sort_unstable_by_key(|f| f.id);
+    forgotten
 }
 
 impl Sealed {
@@ -356,12 +439,14 @@ impl Sealed {
             .effects
             .touched_users
             .iter()
+            .filter(|u| self.forgotten.binary_search_by_key(*u, |f| f.id).is_err())
             .map(|u| (*u, self.states.get(u).expect("touched users are loaded")))
             .collect();
         BatchCommit {
             new_users: &self.new_users,
             new_items: &self.new_items,
             users: changed_users,
+            forgotten: &self.forgotten,
             effects: &self.effects,
             pairs,
             ledger: &self.ledger,

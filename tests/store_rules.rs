@@ -5,7 +5,7 @@ mod common;
 
 use common::Settings;
 use simtide::engine::user_state::Outcome;
-use simtide::event::EventKind;
+use simtide::event::{EventKind, UnixNanos};
 
 use std::path::Path;
 
@@ -241,8 +241,63 @@ fn erasure_equals_never_having_seen_the_user() {
         "fixed-point sums make the retraction exact"
     );
     let s = Store::open_read_only(&s1).unwrap();
-    let bo = s.user_state("bo").unwrap().expect("an erasure record is kept");
-    assert!(bo.ratings.is_empty() && bo.purchases.is_empty() && bo.erased_at.is_some());
+    assert_eq!(s.user_ids(&["bo"]).unwrap(), vec![None], "no id is kept");
+    assert_eq!(s.user_state("bo").unwrap(), None, "no history is kept");
+    assert_eq!(
+        s.erasure_times(&["bo"]).unwrap(),
+        vec![Some(UnixNanos(500 * 1_000_000_000))],
+        "only the tombstone, with the erasure time"
+    );
+}
+
+/// docs/design.md, "Personal data": across separate writes (one backfill per file), a
+/// forgotten user's old events stay stale behind the tombstone, an erasure of a
+/// never-seen user writes only a tombstone, and a user who comes back with newer events
+/// gets a new id whose history starts at the erasure, so a second replay stays stale.
+#[test]
+fn a_forgotten_user_stays_forgotten_across_writes_and_can_come_back() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = common::config(Settings::EXACT);
+    let store = dir.path().join("store");
+    let step = |name: &str, lines: &[String]| {
+        let file = dir.path().join(name);
+        write(&file, lines);
+        common::backfill(&store, &[&file], &config)
+    };
+    step("rated.jsonl", &garden_ratings());
+    let first_id = Store::open_read_only(&store).unwrap().user_ids(&["bo"]).unwrap()[0].expect("bo rated");
+    step(
+        "erased.jsonl",
+        &[
+            r#"{"kind":"erase_user","user":"bo","at":500}"#.to_string(),
+            r#"{"kind":"erase_user","user":"never-seen","at":500}"#.to_string(),
+        ],
+    );
+    let s = step(
+        "replayed.jsonl",
+        &[rate("bo", "rake", 5.0, 40), rate("never-seen", "rake", 1.0, 30)],
+    );
+    assert_eq!(s.events.count(EventKind::Rating, Outcome::Stale), 2);
+    let erased = Store::open_read_only(&store).unwrap();
+    assert_eq!(erased.user_ids(&["bo", "never-seen"]).unwrap(), vec![None, None]);
+    assert_eq!(
+        erased.erasure_times(&["bo", "never-seen"]).unwrap(),
+        vec![Some(UnixNanos(500_000_000_000)); 2]
+    );
+    drop(erased);
+
+    let s = step(
+        "back.jsonl",
+        &[rate("bo", "rake", 4.0, 600), rate("bo", "hoe", 2.0, 300)],
+    );
+    assert_eq!(s.events.count(EventKind::Rating, Outcome::Applied), 1);
+    assert_eq!(s.events.count(EventKind::Rating, Outcome::Stale), 1);
+    let back = Store::open_read_only(&store).unwrap();
+    let new_id = back.user_ids(&["bo"]).unwrap()[0].expect("bo is back");
+    assert!(new_id > first_id, "a new id, never the old one");
+    let state = back.user_state("bo").unwrap().unwrap();
+    assert_eq!(state.erased_at, Some(UnixNanos(500_000_000_000)));
+    assert_eq!(state.ratings.len(), 1);
 }
 
 #[test]

@@ -66,7 +66,7 @@ fn a_previous_layout_store_is_migrated_forward_and_holds_the_same_sums() {
 
     let refused = Store::open_read_only(&store).err().unwrap().to_string();
     assert!(
-        refused.contains("layout version 1, this build reads version 2")
+        refused.contains("layout version 1, this build reads version 3")
             && refused.contains("migrated forward when the store is opened for writing"),
         "{refused}"
     );
@@ -84,6 +84,7 @@ fn a_previous_layout_store_is_migrated_forward_and_holds_the_same_sums() {
     assert!(out.status.success(), "{log}");
     assert!(log.contains("migrating it to version 2"), "{log}");
     assert!(log.contains("store migrated to layout version 2"), "{log}");
+    assert!(log.contains("store migrated to layout version 3"), "{log}");
 
     let (migrated, before) = (
         Store::open_read_only(&store).unwrap(),
@@ -107,13 +108,13 @@ fn a_previous_layout_store_is_migrated_forward_and_holds_the_same_sums() {
 fn a_newer_layout_is_refused_naming_both_versions() {
     let dir = tempfile::tempdir().unwrap();
     let (store, _) = current_store_and_copy(dir.path());
-    rewrite_as_version(&store, 3);
+    rewrite_as_version(&store, 4);
     let refused = Store::open(&store, &common::config(Settings::EXACT))
         .err()
         .unwrap()
         .to_string();
     assert!(
-        refused.contains("layout version 3, this build reads version 2")
+        refused.contains("layout version 4, this build reads version 3")
             && refused.contains("written by a newer simtide"),
         "{refused}"
     );
@@ -156,4 +157,146 @@ fn a_migration_cut_short_resumes_after_its_last_batch() {
             "rating row {item}"
         );
     }
+}
+
+/// Rewrites a current store's users in the version-2 form: a `U` + id → name entry for
+/// every user; each user in `forgotten` (name, erasure time in ns) kept as its name, a
+/// fresh id and an empty history with the erasure time instead of a tombstone; no
+/// tombstones and no erasure key; version 2.
+fn rewrite_users_as_version_2(dir: &Path, forgotten: &[(&str, i64)]) {
+    use simtide::engine::user_state::UserState;
+    use simtide::event::UnixNanos;
+    let path = dir.join("db");
+    let names = DB::list_cf(&Options::default(), &path).unwrap();
+    let db = DB::open_cf(&Options::default(), &path, &names).unwrap();
+    let (ids, users, meta) = (
+        db.cf_handle("ids").unwrap(),
+        db.cf_handle("users").unwrap(),
+        db.cf_handle("meta").unwrap(),
+    );
+    let ledger: simtide::store::Ledger =
+        serde_json::from_slice(&db.get_cf(meta, b"progress").unwrap().unwrap()).unwrap();
+    let mut batch = WriteBatch::default();
+    let mut used = std::collections::HashSet::new();
+    for entry in db.iterator_cf(ids, IteratorMode::Start) {
+        let (key, value) = entry.unwrap();
+        if key[0] == b'u' {
+            batch.put_cf(ids, [&b"U"[..], &value].concat(), &key[1..]);
+            used.insert(u32::from_be_bytes(value[..].try_into().unwrap()));
+        }
+    }
+    // Ids a current store gave out and left unused (its forgotten users' ids).
+    let mut unused = (0..ledger.next_user).filter(|id| !used.contains(id));
+    for (name, at) in forgotten {
+        let id = unused.next().expect("a forgotten user left its id unused");
+        batch.put_cf(ids, [b"u", name.as_bytes()].concat(), id.to_be_bytes());
+        batch.put_cf(ids, [&b"U"[..], &id.to_be_bytes()].concat(), name.as_bytes());
+        let state = UserState {
+            erased_at: Some(UnixNanos(*at)),
+            ..UserState::default()
+        };
+        batch.put_cf(
+            users,
+            id.to_be_bytes(),
+            simtide::store::codec::encode_user(&state),
+        );
+    }
+    batch.delete_range_cf(ids, b"e", b"f");
+    batch.delete_cf(meta, b"erasure_key");
+    let mut old_ledger = serde_json::to_value(&ledger).unwrap();
+    old_ledger.as_object_mut().unwrap().remove("erasure_tombstones");
+    batch.put_cf(meta, b"progress", serde_json::to_vec(&old_ledger).unwrap());
+    batch.put_cf(meta, b"schema_version", 2u32.to_le_bytes());
+    db.write(batch).unwrap();
+}
+
+/// docs/design.md, "Upgrades" and "Personal data": a version-2 store, which kept an
+/// erased user's name, id and empty history and every user's id → name entry, is
+/// migrated to tombstones: the name is found nowhere in the store's entries or files,
+/// the erasure time is kept, an old event of the user stays stale, and everything else
+/// equals the store it came from (the garden data erases one customer, fw-0007).
+#[test]
+fn a_store_that_kept_erased_users_is_migrated_to_tombstones() {
+    const ERASED: &str = "fw-0007";
+    let dir = tempfile::tempdir().unwrap();
+    let (store, copy) = current_store_and_copy(dir.path());
+    let erased_at = Store::open_read_only(&copy)
+        .unwrap()
+        .erasure_times(&[ERASED])
+        .unwrap()[0]
+        .expect("the garden data erases fw-0007");
+    rewrite_users_as_version_2(&store, &[(ERASED, erased_at.0)]);
+    let refused = Store::open_read_only(&store).err().unwrap().to_string();
+    assert!(
+        refused.contains("layout version 2, this build reads version 3"),
+        "{refused}"
+    );
+    let config = common::config(Settings::EXACT);
+    drop(Store::open(&store, &config).expect("migrated and opened"));
+
+    let name = ERASED.as_bytes();
+    {
+        let path = store.join("db");
+        let families = DB::list_cf(&Options::default(), &path).unwrap();
+        let db = DB::open_cf_for_read_only(&Options::default(), &path, &families, false).unwrap();
+        for family in &families {
+            let cf = db.cf_handle(family).unwrap();
+            for entry in db.iterator_cf(cf, IteratorMode::Start) {
+                let (key, value) = entry.unwrap();
+                assert!(
+                    !key.windows(name.len()).any(|w| w == name)
+                        && !value.windows(name.len()).any(|w| w == name),
+                    "{family} still holds {ERASED}"
+                );
+                assert!(
+                    family != "ids" || key[0] != b'U',
+                    "a user's id → name entry is left"
+                );
+            }
+        }
+    }
+    for entry in std::fs::read_dir(store.join("db")).unwrap() {
+        let file = entry.unwrap().path();
+        let bytes = std::fs::read(&file).unwrap();
+        assert!(
+            !bytes.windows(name.len()).any(|w| w == name),
+            "{} holds {ERASED}",
+            file.display()
+        );
+    }
+    let (migrated, before) = (
+        Store::open_read_only(&store).unwrap(),
+        Store::open_read_only(&copy).unwrap(),
+    );
+    assert_eq!(migrated.user_ids(&[ERASED]).unwrap(), vec![None]);
+    assert_eq!(migrated.erasure_times(&[ERASED]).unwrap(), vec![Some(erased_at)]);
+    assert_eq!(migrated.ledger(), before.ledger());
+    for user in ["fw-0001", "fw-0002", "fw-0010"] {
+        assert_eq!(
+            migrated.user_state(user).unwrap(),
+            before.user_state(user).unwrap(),
+            "{user}"
+        );
+    }
+    drop((migrated, before));
+    assert_eq!(
+        common::export_without_times(&store, &dir.path().join("a.jsonl")),
+        common::export_without_times(&copy, &dir.path().join("b.jsonl"))
+    );
+    let replay = dir.path().join("replay.jsonl");
+    std::fs::write(
+        &replay,
+        format!(
+            r#"{{"kind":"purchase","user":"{ERASED}","item":"slug-copper-tape","at":"2026-03-09T02:13:00Z"}}"#
+        ),
+    )
+    .unwrap();
+    let summary = common::backfill(&store, &[&replay], &config);
+    assert_eq!(
+        summary.events.count(
+            simtide::event::EventKind::Purchase,
+            simtide::engine::user_state::Outcome::Stale
+        ),
+        1
+    );
 }

@@ -35,7 +35,7 @@ pub struct BackfillSummary {
     pub publish_seconds: f64,
     /// The publication cycle at the end.
     pub publication: CycleReport,
-    /// Users known to the store.
+    /// User ids the store has given out (forgotten users' included: ids are never reused).
     pub users: u64,
     /// Items known to the store.
     pub items: u64,
@@ -124,7 +124,7 @@ impl fmt::Display for BackfillSummary {
         )?;
         write!(
             f,
-            "  store now holds   {} users, {} items",
+            "  ids given out     {} users, {} items (forgotten users' ids included)",
             self.users, self.items
         )
     }

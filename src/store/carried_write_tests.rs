@@ -144,3 +144,41 @@ fn a_write_killed_after_its_table_files_is_finished_at_the_next_open() {
         "the interrupted store ends like the whole one"
     );
 }
+
+/// docs/design.md, "Personal data": the eighth segment erases customer c3. Killed after
+/// its table files, its batch (carried by the marker) is written at the next open, and
+/// the scrub that batch asks for (`scrub_pending`) is finished before the open returns.
+#[test]
+fn a_forgetting_write_killed_after_its_table_files_is_scrubbed_at_the_next_open() {
+    let dir = tempfile::tempdir().unwrap();
+    let all = batches();
+    {
+        let mut store = Store::open(dir.path(), &config()).unwrap();
+        for batch in &all[..7] {
+            segment(&store, batch)
+                .seal()
+                .write(&mut store, PairWrite::RatingsIngested)
+                .unwrap();
+        }
+        assert!(
+            store.user_ids(&["c3"]).unwrap()[0].is_some(),
+            "c3 is stored before"
+        );
+        segment(&store, &all[7])
+            .seal()
+            .ingest_ratings_only(&store)
+            .unwrap();
+    }
+    let store = Store::open(dir.path(), &config()).unwrap();
+    assert_eq!(
+        store.user_ids(&["c3"]).unwrap(),
+        vec![None],
+        "the carried batch forgot c3"
+    );
+    assert!(store.erasure_times(&["c3"]).unwrap()[0].is_some());
+    let scrub_left = store
+        .db
+        .get_cf(store.cf(super::CF_META), super::erasure::META_SCRUB_PENDING)
+        .unwrap();
+    assert_eq!(scrub_left, None, "the scrub the batch asked for is finished");
+}

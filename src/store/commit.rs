@@ -2,9 +2,12 @@
 //! deltas under both orders, statuses, dirty marks, the ledger), and the lists a
 //! publication cycle stores with the dirty marks they answer.
 
+use std::collections::HashSet;
+
 use anyhow::{bail, Context, Result};
 use rocksdb::{ColumnFamily, WriteBatch, WriteOptions};
 
+use super::erasure::{encode_erased_at, user_name_key, ForgottenUser, META_SCRUB_PENDING};
 use super::ingest::SEGMENT_MARKER_KEY;
 use super::ledger::Ledger;
 use super::oriented::{oriented_rating_stats, OrientedRows};
@@ -34,12 +37,15 @@ const BATCH_SLACK_BYTES: usize = 4096;
 
 /// Everything one micro-batch writes, persisted atomically by [`Store::commit`].
 pub struct BatchCommit<'a> {
-    /// Users first seen in this batch.
+    /// Users first seen in this batch (the forgotten ones among them are not written).
     pub new_users: &'a [(u32, String)],
     /// Items first seen in this batch.
     pub new_items: &'a [(u32, String)],
-    /// Users whose state changed.
+    /// Users whose state changed and who are not forgotten.
     pub users: Vec<(u32, &'a UserState)>,
+    /// Users whose history an erasure emptied: their ids and histories are deleted and
+    /// a tombstone keeps the erasure time (docs/design.md, "Personal data").
+    pub forgotten: &'a [ForgottenUser],
     /// The engine's deltas, dirty marks and statuses.
     pub effects: &'a BatchEffects,
     /// How the pair deltas reach the store.
@@ -119,6 +125,9 @@ impl Store {
         for (id, name) in c.new_items {
             self.items.push(*id, name.clone());
         }
+        if c.forgotten.iter().any(|f| f.stored) {
+            self.scrub_forgotten(c.forgotten)?;
+        }
         Ok(())
     }
 
@@ -152,15 +161,31 @@ impl Store {
             + BATCH_SLACK_BYTES;
         let mut wb = WriteBatch::with_capacity_bytes(estimate);
         let ids = self.cf(CF_IDS);
+        let users = self.cf(CF_USERS);
+        let forgotten: HashSet<u32> = c.forgotten.iter().map(|f| f.id).collect();
         for (id, name) in c.new_users {
-            wb.put_cf(ids, [b"u", name.as_bytes()].concat(), id.to_be_bytes());
-            wb.put_cf(ids, [&b"U"[..], &id.to_be_bytes()].concat(), name.as_bytes());
+            if !forgotten.contains(id) {
+                wb.put_cf(ids, user_name_key(name), id.to_be_bytes());
+            }
+        }
+        for f in c.forgotten {
+            if f.stored {
+                wb.delete_cf(ids, user_name_key(&f.name));
+                wb.delete_cf(users, codec::id_key(f.id));
+            }
+            wb.put_cf(
+                ids,
+                self.erasure_key.tombstone(&f.name),
+                encode_erased_at(f.erased_at),
+            );
+        }
+        if c.forgotten.iter().any(|f| f.stored) {
+            wb.put_cf(self.cf(CF_META), META_SCRUB_PENDING, []);
         }
         for (id, name) in c.new_items {
             wb.put_cf(ids, [b"i", name.as_bytes()].concat(), id.to_be_bytes());
             wb.put_cf(ids, [&b"I"[..], &id.to_be_bytes()].concat(), name.as_bytes());
         }
-        let users = self.cf(CF_USERS);
         for (id, state) in &c.users {
             wb.put_cf(users, codec::id_key(*id), codec::encode_user(state));
         }
@@ -204,6 +229,7 @@ impl Store {
             }
         }
         let mut ledger = c.ledger.clone();
+        ledger.erasure_tombstones |= !c.forgotten.is_empty();
         ledger.pair_keys_written |=
             !c.effects.rating_pairs.is_empty() || !c.effects.purchase_pairs.is_empty();
         wb.put_cf(self.cf(CF_META), META_LEDGER, serde_json::to_vec(&ledger)?);

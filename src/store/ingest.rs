@@ -4,8 +4,8 @@
 //!
 //! A segment is committed in two steps that RocksDB cannot join atomically: the table
 //! files of each pair family, then one WriteBatch with users, ids, marks and the ledger.
-//! The last key of every ingested file is a marker holding the segment's end position
-//! (`next_seq` after its last event); the WriteBatch deletes it. A run killed between the
+//! With each family's files goes one more file holding only a marker key, with the
+//! segment's end position (`next_seq` after its last event); the WriteBatch deletes it. A run killed between the
 //! steps finds the marker on restart, replays the same segment up to that position, skips
 //! the families that already hold it and writes the rest, so no sum is added twice.
 
@@ -202,8 +202,7 @@ impl Store {
         std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
         let fresh = !self.ledger.pair_keys_written;
         let parts = split_rows(&family.rows, file_count(family.rows.len()));
-        let last = parts.len() - 1;
-        let paths: Vec<PathBuf> = (0..parts.len())
+        let mut paths: Vec<PathBuf> = (0..parts.len())
             .map(|i| dir.join(format!("{}-{segment_end}-{i}.sst", family.family)))
             .collect();
         let family = &family;
@@ -211,19 +210,19 @@ impl Store {
             let writers: Vec<_> = parts
                 .into_iter()
                 .zip(&paths)
-                .enumerate()
-                .map(|(i, (rows, path))| {
-                    let marker = (i == last).then_some(SegmentMarker {
-                        end: segment_end,
-                        rest,
-                    });
-                    scope.spawn(move || write_table(family, rows, path, fresh, marker))
-                })
+                .map(|(rows, path)| scope.spawn(move || write_table(family, rows, path, fresh)))
                 .collect();
             writers
                 .into_iter()
                 .try_for_each(|w| w.join().expect("table writers do not panic"))
         })?;
+        let marker_path = dir.join(format!("{}-{segment_end}-marker.sst", family.family));
+        let marker = SegmentMarker {
+            end: segment_end,
+            rest,
+        };
+        write_marker(family.family, &marker, &marker_path)?;
+        paths.push(marker_path);
         let mut opts = IngestExternalFileOptions::default();
         opts.set_move_files(true);
         self.db
@@ -266,16 +265,10 @@ fn split_rows<T>(rows: &OrientedRows<'_, T>, parts: usize) -> Vec<Range<u32>> {
 }
 
 /// Writes one table file with the entries of `rows`: each as a put (into a store that
-/// never held a pair) or a merge operand, then the segment marker when asked. Compressed
-/// like the family: on the MovieLens snapshot LZ4 halves the files (866 MB to 449 MB) at
-/// no cost in time, since writing them is bound by the disk as much as by the processor.
-fn write_table<T>(
-    family: &FamilyRows<'_, T>,
-    rows: Range<u32>,
-    path: &Path,
-    fresh: bool,
-    marker: Option<SegmentMarker<'_>>,
-) -> Result<()> {
+/// never held a pair) or a merge operand. Compressed like the family: on the MovieLens
+/// snapshot LZ4 halves the files (866 MB to 449 MB) at no cost in time, since writing
+/// them is bound by the disk as much as by the processor.
+fn write_table<T>(family: &FamilyRows<'_, T>, rows: Range<u32>, path: &Path, fresh: bool) -> Result<()> {
     let opts = cf_options(family.family);
     let mut writer = SstFileWriter::create(&opts);
     writer
@@ -292,9 +285,22 @@ fn write_table<T>(
             writer.merge(key, &value)
         }
     })?;
-    if let Some(marker) = marker {
-        writer.put(SEGMENT_MARKER_KEY, marker.encode())?;
-    }
+    writer
+        .finish()
+        .with_context(|| format!("cannot finish table file {}", path.display()))
+}
+
+/// Writes the segment marker as a table file of its own, ingested with the pair files.
+/// Apart from them, the marker's value (which may carry users' histories and names, see
+/// [`SegmentMarker`]) can be compacted away without rewriting the pair sums
+/// (docs/design.md, "Personal data").
+fn write_marker(family: &str, marker: &SegmentMarker<'_>, path: &Path) -> Result<()> {
+    let options = cf_options(family);
+    let mut writer = SstFileWriter::create(&options);
+    writer
+        .open(path)
+        .with_context(|| format!("cannot create table file {}", path.display()))?;
+    writer.put(SEGMENT_MARKER_KEY, marker.encode())?;
     writer
         .finish()
         .with_context(|| format!("cannot finish table file {}", path.display()))

@@ -45,6 +45,10 @@ pub struct Ledger {
     /// Whether any pair or buyer-count key was ever written (until then a put equals a
     /// merge).
     pub pair_keys_written: bool,
+    /// Whether the `ids` family holds any erasure tombstone: until then a new user
+    /// name is not looked up among them (docs/design.md, "Personal data").
+    #[serde(default)]
+    pub erasure_tombstones: bool,
     /// Next offset to consume, by input topic and partition: the live service's position,
     /// which it trusts over the consumer group's committed offsets.
     #[serde(default)]

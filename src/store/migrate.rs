@@ -8,6 +8,10 @@
 //! s_other as i128, all little-endian; version 2 holds them in the compact form of
 //! [`encode_rating_pair`]. Nothing else differs.
 //!
+//! Version 2 kept a `U` + id → name entry for every user, and an erased user as its name,
+//! id and an empty history; version 3 keeps neither ([`forget_erased_users`]). A store is
+//! migrated one version at a time.
+//!
 //! The migration never lets this build's merge operator or compaction filter see a
 //! version-1 value: the schema is read from a read-only open (no flush, no compaction),
 //! and the migration opens the pair family with a version-1 merge operator, folds every
@@ -15,6 +19,7 @@
 //! batch records the last key it holds, so a migration cut short resumes after it; the
 //! last batch sets the version.
 
+use std::collections::HashMap;
 use std::path::Path;
 
 use anyhow::{bail, Context, Result};
@@ -22,14 +27,21 @@ use rocksdb::{
     ColumnFamilyDescriptor, DBRecoveryMode, Direction, IteratorMode, MergeOperands, Options, WriteBatch, DB,
 };
 
-use super::codec::encode_rating_pair;
+use super::codec::{decode_user, encode_rating_pair, id_key};
+use super::erasure::{encode_erased_at, finish_left_scrub, ErasureKey, META_SCRUB_PENDING};
 use super::errors::OpenError;
-use super::open::{cf_options, db_options};
-use super::{db_path, ALL_CFS, CF_META, CF_PAIRS, META_SCHEMA, SCHEMA_VERSION};
+use super::open::{cf_options, db_options, read_ledger};
+use super::{
+    db_path, ALL_CFS, CF_IDS, CF_META, CF_PAIRS, CF_USERS, META_LEDGER, META_SCHEMA, SCHEMA_VERSION,
+};
+use crate::event::UnixNanos;
 use crate::model::RatingPairStats;
 
-/// The layout this module migrates from.
+/// The layout with fixed rating pair values.
 const FIXED_PAIRS_VERSION: u32 = 1;
+
+/// The layout that kept erased users' names, ids and empty histories.
+const KEPT_ERASED_USERS_VERSION: u32 = 2;
 
 /// Length of a version-1 rating pair value.
 const FIXED_PAIR_LEN: usize = 8 + 3 * 16;
@@ -78,17 +90,24 @@ pub(super) fn prepare_layout(dir: &Path) -> Result<()> {
             return Ok(());
         }
     };
-    match version {
-        None => Ok(()),
-        Some(SCHEMA_VERSION) => Ok(()),
-        Some(FIXED_PAIRS_VERSION) => migrate_fixed_pairs(dir, &path),
-        Some(other) => Err(OpenError::SchemaMismatch {
-            dir: dir.to_path_buf(),
-            found: Some(other),
-            supported: SCHEMA_VERSION,
-        }
-        .into()),
+    let Some(mut version) = version else {
+        return Ok(());
+    };
+    while version != SCHEMA_VERSION {
+        version = match version {
+            FIXED_PAIRS_VERSION => migrate_fixed_pairs(dir, &path)?,
+            KEPT_ERASED_USERS_VERSION => forget_erased_users(dir, &path)?,
+            other => {
+                return Err(OpenError::SchemaMismatch {
+                    dir: dir.to_path_buf(),
+                    found: Some(other),
+                    supported: SCHEMA_VERSION,
+                }
+                .into())
+            }
+        };
     }
+    Ok(())
 }
 
 /// Decodes a version-1 rating pair value.
@@ -119,11 +138,13 @@ fn merge_fixed(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -
     Some(out)
 }
 
-/// Rewrites every version-1 rating pair value in the compact form, then records version 2.
-fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<()> {
+/// Rewrites every version-1 rating pair value in the compact form, then records version
+/// 2, which it returns.
+fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<u32> {
+    const TO: u32 = KEPT_ERASED_USERS_VERSION;
     tracing::info!(
         store = %dir.display(),
-        "store layout version {FIXED_PAIRS_VERSION} found: migrating it to version {SCHEMA_VERSION} in place (take a snapshot before upgrading: README, \"Upgrades\")"
+        "store layout version {FIXED_PAIRS_VERSION} found: migrating it to version {TO} in place (take a snapshot before upgrading: README, \"Upgrades\")"
     );
     let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
         .iter()
@@ -184,11 +205,79 @@ fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<()> {
     }
     done += in_batch as u64;
     batch.delete_cf(meta, META_MIGRATED_UP_TO);
-    batch.put_cf(meta, META_SCHEMA, SCHEMA_VERSION.to_le_bytes());
+    batch.put_cf(meta, META_SCHEMA, TO.to_le_bytes());
     db.write(batch)?;
     db.flush_wal(true)?;
-    tracing::info!(pairs = done, "store migrated to layout version {SCHEMA_VERSION}");
-    Ok(())
+    tracing::info!(pairs = done, "store migrated to layout version {TO}");
+    Ok(TO)
+}
+
+/// Replaces each erased user with an empty history by a tombstone, deletes every user's
+/// id → name entry, makes the store's erasure key and records version 3, in one write;
+/// then scrubs the files as a write that forgot users does. Returns 3.
+fn forget_erased_users(dir: &Path, path: &Path) -> Result<u32> {
+    const TO: u32 = KEPT_ERASED_USERS_VERSION + 1;
+    tracing::info!(
+        store = %dir.display(),
+        "store layout version {KEPT_ERASED_USERS_VERSION} found: migrating it to version {TO} in place (erased users become tombstones)"
+    );
+    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
+        .iter()
+        .map(|&name| ColumnFamilyDescriptor::new(name, cf_options(name)))
+        .collect();
+    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
+        .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
+    let (ids, users, meta) = (
+        db.cf_handle(CF_IDS).expect("ids family exists"),
+        db.cf_handle(CF_USERS).expect("users family exists"),
+        db.cf_handle(CF_META).expect("meta family exists"),
+    );
+    let mut erased: HashMap<u32, UnixNanos> = HashMap::new();
+    for entry in db.iterator_cf(users, IteratorMode::Start) {
+        let (key, value) = entry?;
+        let id = u32::from_be_bytes(key.as_ref().try_into().context("user key")?);
+        let state = decode_user(&value).with_context(|| format!("{}: user {id}", dir.display()))?;
+        if let (Some(at), true) = (
+            state.erased_at,
+            state.ratings.is_empty() && state.purchases.is_empty(),
+        ) {
+            erased.insert(id, at);
+        }
+    }
+    // A version-2 store holds no key; one that does (relabelled by hand from a later
+    // layout) keeps it, so that its tombstones stay readable.
+    let key = match ErasureKey::read(&db)? {
+        Some(key) => key,
+        None => ErasureKey::random()?,
+    };
+    let mut batch = WriteBatch::default();
+    let mut forgotten = 0u64;
+    for entry in db.iterator_cf(ids, IteratorMode::From(b"u", Direction::Forward)) {
+        let (name_key, id) = entry?;
+        if name_key.first() != Some(&b'u') {
+            break;
+        }
+        let id = u32::from_be_bytes(id.as_ref().try_into().context("user id value")?);
+        let Some(&at) = erased.get(&id) else {
+            continue;
+        };
+        let name = String::from_utf8_lossy(&name_key[1..]);
+        batch.delete_cf(ids, &name_key);
+        batch.delete_cf(users, id_key(id));
+        batch.put_cf(ids, key.tombstone(&name), encode_erased_at(at));
+        forgotten += 1;
+    }
+    batch.delete_range_cf(ids, b"U", b"V");
+    let mut ledger = read_ledger(&db)?;
+    ledger.erasure_tombstones |= forgotten > 0;
+    batch.put_cf(meta, META_LEDGER, serde_json::to_vec(&ledger)?);
+    key.put(&db, &mut batch);
+    batch.put_cf(meta, META_SCRUB_PENDING, []);
+    batch.put_cf(meta, META_SCHEMA, TO.to_le_bytes());
+    db.write(batch)?;
+    finish_left_scrub(&db)?;
+    tracing::info!(forgotten, "store migrated to layout version {TO}");
+    Ok(TO)
 }
 
 #[cfg(test)]

@@ -1,8 +1,10 @@
 //! The RocksDB store: the only module that touches the database (docs/design.md, "Storage").
 //!
 //! Column families:
-//! - `ids`: `u`/`i` + name → dense id, `U`/`I` + id → name (users, items).
-//! - `users`: user id → history and applied center ([`codec::encode_user`]).
+//! - `ids`: `u`/`i` + name → dense id, `I` + id → item name, `e` + keyed hash of a
+//!   forgotten user's name → erasure time ([`erasure`]).
+//! - `users`: user id → history and applied center ([`codec::encode_user`]); none for a
+//!   forgotten user.
 //! - `items`: item id → availability status.
 //! - `pairs`: rating pair sums. Each unordered pair is written under BOTH orders, key =
 //!   (row, other) big-endian with the norms oriented to the key, so a prefix scan on an
@@ -20,6 +22,7 @@
 mod carried_write_tests;
 pub mod codec;
 mod commit;
+mod erasure;
 pub mod errors;
 pub mod fingerprint;
 mod ids;
@@ -45,6 +48,7 @@ use anyhow::{Context, Result};
 use rocksdb::{ColumnFamily, DB};
 
 pub use commit::{BatchCommit, Delivery, MarkAfterWrite, PairWrite, PublicationWrite};
+pub use erasure::ForgottenUser;
 pub use errors::OpenError;
 pub use fingerprint::StatsFingerprint;
 use ids::ItemDirectory;
@@ -77,9 +81,10 @@ const META_FINGERPRINT: &[u8] = b"stats_fingerprint";
 const META_LEDGER: &[u8] = b"progress";
 const META_DELIVERED_TO: &[u8] = b"delivered_to";
 
-/// Layout version of this build's store. 2: compact rating pair values
+/// Layout version of this build's store. 3: forgotten users leave only a tombstone, and
+/// users have no id → name entry; 2: compact rating pair values
 /// ([`codec::encode_rating_pair`]); version 1 stored them in 56 fixed bytes.
-pub const SCHEMA_VERSION: u32 = 2;
+pub const SCHEMA_VERSION: u32 = 3;
 
 /// An open store.
 pub struct Store {
@@ -87,7 +92,8 @@ pub struct Store {
     dir: PathBuf,
     fingerprint: StatsFingerprint,
     ledger: Ledger,
-    items: ItemDirectory,
+    items: Arc<ItemDirectory>,
+    erasure_key: erasure::ErasureKey,
     access: Access,
 }
 

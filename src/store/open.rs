@@ -8,6 +8,7 @@ use std::sync::Arc;
 use anyhow::{bail, Context, Result};
 use rocksdb::{ColumnFamilyDescriptor, DBCompressionType, Options, WriteBatch, DB};
 
+use super::erasure::{finish_left_scrub, ErasureKey};
 use super::errors::OpenError;
 use super::fingerprint::StatsFingerprint;
 use super::ids::{load_items_from, ItemDirectory};
@@ -35,6 +36,15 @@ const PAIR_LEVEL0_FILES: i32 = 16;
 /// Largest total size of the write-ahead log before the families holding it are flushed.
 const MAX_TOTAL_WAL_BYTES: u64 = 256 << 20;
 
+/// Age after which RocksDB rewrites any table file, so that old sums from before an
+/// erasure's retraction do not outlive it by more than this (docs/design.md, "Personal
+/// data").
+const TABLE_FILE_REWRITE_SECONDS: u64 = 7 * 24 * 3600;
+
+/// Size past which RocksDB starts a new MANIFEST, which drops the first and last keys of
+/// table files that no longer exist (a forgotten user's name among them).
+const MAX_MANIFEST_BYTES: usize = 1 << 20;
+
 /// Background flush and compaction threads.
 const BACKGROUND_JOBS: i32 = 2;
 
@@ -52,6 +62,7 @@ pub(super) fn db_options() -> Options {
     // Small families (meta, users, ids) rarely fill a memtable; without a cap they would
     // pin every WAL file the big pair families have long since flushed.
     o.set_max_total_wal_size(MAX_TOTAL_WAL_BYTES);
+    o.set_max_manifest_file_size(MAX_MANIFEST_BYTES);
     o
 }
 
@@ -60,6 +71,7 @@ pub(super) fn db_options() -> Options {
 pub(super) fn cf_options(name: &str) -> Options {
     let mut o = Options::default();
     o.set_compression_type(DBCompressionType::Lz4);
+    o.set_periodic_compaction_seconds(TABLE_FILE_REWRITE_SECONDS);
     match name {
         CF_PAIRS => {
             o.set_merge_operator_associative("simtide_rating_pair_sum", merge::merge_rating_pairs);
@@ -93,6 +105,16 @@ pub(super) fn read_ledger(db: &DB) -> Result<Ledger> {
     Ok(match db.get_cf(meta, META_LEDGER)? {
         Some(bytes) => serde_json::from_slice(&bytes).context("stored ledger is unreadable")?,
         None => Ledger::default(),
+    })
+}
+
+/// The erasure key of a store at [`SCHEMA_VERSION`], which every such store holds.
+fn stored_erasure_key(db: &DB, dir: &Path) -> Result<ErasureKey> {
+    ErasureKey::read(db)?.with_context(|| {
+        format!(
+            "{} has no erasure key (meta/erasure_key), which every store of layout version {SCHEMA_VERSION} holds: the store is damaged; restore a snapshot",
+            dir.display()
+        )
     })
 }
 
@@ -152,7 +174,7 @@ impl Store {
         let db = DB::open_cf_descriptors(&db_options(), &path, cf_descriptors())
             .with_context(|| format!("cannot open store {}", path.display()))?;
         let meta = db.cf_handle(CF_META).expect("meta family exists");
-        let fingerprint = match (db.get_cf(meta, META_FINGERPRINT)?, asked) {
+        let (fingerprint, erasure_key) = match (db.get_cf(meta, META_FINGERPRINT)?, asked) {
             (Some(bytes), asked) => {
                 check_schema(&db, dir)?;
                 let stored: StatsFingerprint =
@@ -165,14 +187,16 @@ impl Store {
                     }
                     .into());
                 }
-                stored
+                (stored, stored_erasure_key(&db, dir)?)
             }
             (None, Some(asked)) => {
+                let key = ErasureKey::random()?;
                 let mut wb = WriteBatch::default();
                 wb.put_cf(meta, META_SCHEMA, SCHEMA_VERSION.to_le_bytes());
                 wb.put_cf(meta, META_FINGERPRINT, serde_json::to_vec(&asked)?);
+                key.put(&db, &mut wb);
                 db.write(wb)?;
-                asked
+                (asked, key)
             }
             (None, None) => {
                 return Err(OpenError::NeverInitialised {
@@ -188,7 +212,10 @@ impl Store {
                 "finished a store write that a stopped process left after its table files"
             );
         }
-        Store::finish_open(db, dir, fingerprint, Access::Primary)
+        if finish_left_scrub(&db)? {
+            tracing::info!("finished scrubbing forgotten users, which a stopped process left");
+        }
+        Store::finish_open(db, dir, fingerprint, erasure_key, Access::Primary)
     }
 
     /// Opens a store for reading while a writer may hold it open, as a RocksDB secondary
@@ -225,19 +252,27 @@ impl Store {
                 .into())
             }
         };
-        Store::finish_open(db, dir, fingerprint, Access::Secondary(secondary))
+        let erasure_key = stored_erasure_key(&db, dir)?;
+        Store::finish_open(db, dir, fingerprint, erasure_key, Access::Secondary(secondary))
     }
 
-    fn finish_open(db: DB, dir: &Path, fingerprint: StatsFingerprint, access: Access) -> Result<Store> {
+    fn finish_open(
+        db: DB,
+        dir: &Path,
+        fingerprint: StatsFingerprint,
+        erasure_key: ErasureKey,
+        access: Access,
+    ) -> Result<Store> {
         let ledger = read_ledger(&db)?;
-        let mut items = ItemDirectory::new(fingerprint.shard_spec());
-        load_items_from(&db, &mut items)?;
+        let items = ItemDirectory::new(fingerprint.shard_spec());
+        load_items_from(&db, &items)?;
         Ok(Store {
             db: Arc::new(db),
             dir: dir.to_path_buf(),
             fingerprint,
             ledger,
-            items,
+            items: Arc::new(items),
+            erasure_key,
             access,
         })
     }
@@ -245,29 +280,35 @@ impl Store {
     /// A read-only view of this store for readers in the same process (HTTP lookups): it
     /// shares the open database, so reads see every committed batch without a second
     /// instance replaying the write-ahead log; [`Store::catch_up`] refreshes its positions
-    /// and item names. A view refuses writes.
+    /// (the item names are shared with the writer, which adds them). A view refuses
+    /// writes.
     pub fn view(&self) -> Store {
         Store {
             db: self.db.clone(),
             dir: self.dir.clone(),
             fingerprint: self.fingerprint,
             ledger: self.ledger.clone(),
-            items: self.items.clone(),
+            items: Arc::clone(&self.items),
+            erasure_key: self.erasure_key.clone(),
             access: Access::View,
         }
     }
 
     /// Brings a reader up to the writer's latest committed batch: for a secondary
-    /// instance RocksDB's catch-up first, then the positions and the items added since.
-    /// Long-lived readers (HTTP lookups) call it periodically instead of reopening.
+    /// instance RocksDB's catch-up and the items added since, then the positions (a view
+    /// shares the writer's item names). Long-lived readers (HTTP lookups) call it
+    /// periodically instead of reopening.
     pub fn catch_up(&mut self) -> Result<()> {
         match self.access {
             Access::Primary => bail!("the writer is always current; only readers catch up"),
-            Access::Secondary(_) => self.db.try_catch_up_with_primary()?,
+            Access::Secondary(_) => {
+                self.db.try_catch_up_with_primary()?;
+                load_items_from(&self.db, &self.items)?;
+            }
             Access::View => {}
         }
         self.ledger = read_ledger(&self.db)?;
-        load_items_from(&self.db, &mut self.items)
+        Ok(())
     }
 }
 

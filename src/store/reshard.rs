@@ -112,6 +112,8 @@ fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config)
         META_LEDGER,
         serde_json::to_vec(by_shard[0].ledger())?,
     );
+    // The tombstones copied with `ids` are hashed with the source's key.
+    by_shard[0].erasure_key.put(&target.db, &mut wb);
     target
         .db
         .write(wb)
