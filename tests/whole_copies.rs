@@ -1,4 +1,5 @@
-//! A snapshot or a resharded store killed at any moment (docs/design.md, "Whole copies"):
+//! A snapshot (by command or by the service's admin endpoint) or a resharded store killed
+//! at any moment (docs/design.md, "Whole copies"):
 //! the target either does not exist or is whole, the unfinished copy beside it is
 //! refused by name, and running the command again finishes the job. The kill moments
 //! are spread over the command's run (fixed delays, so a failure repeats); the snapshot
@@ -188,4 +189,114 @@ fn a_reshard_killed_at_any_moment_leaves_no_store_to_reuse() {
         left_staging > 0,
         "no kill landed while the copy was being written"
     );
+}
+
+/// `POST /v1/admin/snapshot` on the running service (real broker, tansu), the service
+/// killed with SIGKILL at moments after the request: every directory under the snapshot
+/// directory is then a whole store, or an unfinished copy (`.NAME.incomplete`) that is
+/// refused by name. The next start names each leftover in a warning, and an
+/// uninterrupted snapshot is whole.
+#[test]
+fn an_admin_snapshot_killed_with_the_service_leaves_no_partial_copy() {
+    use common::live::{broker_with_topics, http_request, wait_for, write_config, LiveSettings, Service};
+    let broker = broker_with_topics();
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    let (config, port) = write_config(dir.path(), &broker.bootstrap(), &store, &LiveSettings::default());
+    let slice = common::movielens_slice(30_000, &dir.path().join("slice.csv"));
+    let out = Command::new(env!("CARGO_BIN_EXE_simtide"))
+        .args(["backfill", "--quiet", "--config"])
+        .arg(&config)
+        .arg("--store")
+        .arg(&store)
+        .arg("--input")
+        .arg(&slice)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let elsewhere = Path::new("/dev/shm");
+    let snapshots = if elsewhere.is_dir() {
+        tempfile::tempdir_in(elsewhere).unwrap()
+    } else {
+        tempfile::tempdir().unwrap()
+    };
+    let start = |k: usize| {
+        let group = format!("simtide-test-admin-snapshot-{k}");
+        let env = [
+            ("SIMTIDE_HTTP__ADMIN_TOKEN", "kill-test-token"),
+            ("SIMTIDE_STORE__SNAPSHOT_DIR", snapshots.path().to_str().unwrap()),
+            ("SIMTIDE_KAFKA__GROUP", group.as_str()),
+        ];
+        let service = Service::start_with_env(&config, port, &[], &env);
+        wait_for("the service ready", Duration::from_secs(60), || {
+            service.get("/readyz").is_some_and(|(status, _)| status == 200)
+        });
+        service
+    };
+    let snapshot = move || {
+        http_request(
+            port,
+            "POST",
+            "/v1/admin/snapshot",
+            &[("Authorization", "Bearer kill-test-token")],
+        )
+    };
+    let (mut whole, mut unfinished) = (Vec::new(), Vec::new());
+    for (k, ms) in [0u64, 10, 40, 120].iter().enumerate() {
+        let service = start(k);
+        let request = std::thread::spawn(snapshot);
+        std::thread::sleep(Duration::from_millis(*ms));
+        service.kill();
+        let _ = request.join();
+        for entry in std::fs::read_dir(snapshots.path()).unwrap() {
+            let path = entry.unwrap().path();
+            if whole.contains(&path) || unfinished.contains(&path) {
+                continue;
+            }
+            if path
+                .file_name()
+                .unwrap()
+                .to_string_lossy()
+                .ends_with(".incomplete")
+            {
+                let refused = Store::open_read_only(&path)
+                    .err()
+                    .expect("an unfinished snapshot is refused")
+                    .to_string();
+                assert!(refused.contains("incomplete copy"), "{refused}");
+                unfinished.push(path);
+            } else {
+                let copy = Store::open_read_only(&path)
+                    .unwrap_or_else(|e| panic!("{} exists but is not whole: {e:#}", path.display()));
+                assert_eq!(copy.ledger().next_seq, 30_000, "the copy holds every event");
+                whole.push(path);
+            }
+        }
+    }
+    eprintln!(
+        "admin snapshots after the kills: {} whole, {} unfinished",
+        whole.len(),
+        unfinished.len()
+    );
+    assert!(
+        !unfinished.is_empty(),
+        "no kill landed while a snapshot was being made"
+    );
+
+    let service = start(99);
+    let log = service.log_text();
+    for leftover in &unfinished {
+        assert!(
+            log.contains(&leftover.display().to_string()) && log.contains("delete it"),
+            "the start names {}: {log}",
+            leftover.display()
+        );
+    }
+    let (status, body) = snapshot().unwrap();
+    assert_eq!(status, 201, "{body}");
+    let taken: serde_json::Value = serde_json::from_str(&body).unwrap();
+    let copy = Store::open_read_only(Path::new(taken["path"].as_str().unwrap())).unwrap();
+    assert_eq!(copy.ledger().next_seq, 30_000);
+    let (status, _) = service.terminate(Duration::from_secs(60));
+    assert!(status.success());
 }

@@ -22,7 +22,7 @@ pub mod segment;
 
 use std::collections::BTreeMap;
 use std::fmt;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::Ordering;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
@@ -468,6 +468,14 @@ struct Served {
 fn start_http(runtime: &tokio::runtime::Runtime, config: &Config, served: Served) -> Result<()> {
     let listener = runtime.block_on(crate::http::bind(&config.http.listen))?;
     tracing::info!(listen = %config.http.listen, "HTTP listener up (/healthz, /readyz, /metrics, /v1/…)");
+    if !config.store.snapshot_dir.is_empty() {
+        for leftover in crate::store::staged::leftovers_under(Path::new(&config.store.snapshot_dir)) {
+            tracing::warn!(
+                path = %leftover.display(),
+                "an admin snapshot a stopped run left unfinished: it is not a snapshot; delete it"
+            );
+        }
+    }
     runtime.spawn(crate::http::serve(
         listener,
         HttpState {

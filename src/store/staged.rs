@@ -66,6 +66,21 @@ pub fn refuse_incomplete(dir: &Path) -> Result<()> {
     Ok(())
 }
 
+/// The unfinished copies a stopped run left directly under `root` (directories holding
+/// the [`INCOMPLETE`] marker): the service names them at start, since admin snapshots are
+/// named by the time and a later one never reuses, and so never removes, a leftover.
+pub fn leftovers_under(root: &Path) -> Vec<PathBuf> {
+    let Ok(entries) = std::fs::read_dir(root) else {
+        return Vec::new();
+    };
+    let mut found: Vec<PathBuf> = entries
+        .filter_map(|e| Some(e.ok()?.path()))
+        .filter(|p| p.join(INCOMPLETE).exists())
+        .collect();
+    found.sort();
+    found
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
