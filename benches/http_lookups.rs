@@ -8,6 +8,8 @@
 //!
 //! Run with `cargo bench --bench http_lookups` (part of `make bench`).
 
+// A benchmark uses a few of the integration tests' helpers; the rest are theirs.
+#[allow(dead_code)]
 #[path = "../tests/common/mod.rs"]
 mod common;
 
@@ -129,7 +131,7 @@ fn run(
             .take(200)
             .any(|p| http_get(port, p).is_some_and(|(s, _)| s == 200))
     });
-    let start = footprint(service.pid());
+    let start = footprint(service.child.id());
     if clients.is_empty() {
         std::thread::sleep(PHASE * 4);
     }
@@ -137,14 +139,14 @@ fn run(
         report_phase(port, n, "lists", &requests.lists);
         report_phase(port, n, "recommendations", &requests.recommendations);
     }
-    let end = footprint(service.pid());
+    let end = footprint(service.child.id());
     if !clients.is_empty() {
         // Requests alone: once everything is consumed, memory can only move because of them.
         wait_for("the service to catch up", Duration::from_secs(600), || {
             caught_up(&broker.bootstrap(), 3)
         });
         std::thread::sleep(Duration::from_secs(3));
-        let before = footprint(service.pid());
+        let before = footprint(service.child.id());
         report_phase(port, 8, "recommendations", &requests.recommendations);
         for (kind, paths) in [
             ("lists", &requests.lists),
@@ -156,7 +158,7 @@ fn run(
                 answered as f64 / PHASE.as_secs_f64(),
             );
         }
-        let after = footprint(service.pid());
+        let after = footprint(service.child.id());
         println!(
             "idle phases: RSS {:.0} → {:.0} MiB ({:+.1} MiB, target < 50 MB), open files {} → {}",
             before.0,

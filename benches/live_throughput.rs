@@ -15,6 +15,8 @@
 //!
 //! Run with `cargo bench --bench live_throughput` (part of `make bench`).
 
+// A benchmark uses a few of the integration tests' helpers; the rest are theirs.
+#[allow(dead_code)]
 #[path = "../tests/common/mod.rs"]
 mod common;
 
@@ -170,7 +172,7 @@ fn bare_consumer_rate(broker: &common::broker::Broker, expected: usize) -> (f64,
         tpl.add_partition_offset(INPUT, p, Offset::Beginning).unwrap();
     }
     consumer.assign(&tpl).unwrap();
-    let broker_busy = CoresBusy::start(broker.pid().into_iter().collect());
+    let broker_busy = CoresBusy::start(broker.child.iter().map(std::process::Child::id).collect());
     let reader_busy = CoresBusy::start(vec![std::process::id()]);
     let started = Instant::now();
     let mut seen = 0usize;
@@ -205,9 +207,9 @@ fn saturation(events: &[(String, String, Option<i64>)]) -> f64 {
     );
     let started = Instant::now();
     let service = Service::start(&config, port, &["--stop-at-end"]);
-    let peak_rss = watch_peak_rss(service.pid());
-    let service_busy = CoresBusy::start(vec![service.pid()]);
-    let broker_busy = CoresBusy::start(broker.pid().into_iter().collect());
+    let peak_rss = watch_peak_rss(service.child.id());
+    let service_busy = CoresBusy::start(vec![service.child.id()]);
+    let broker_busy = CoresBusy::start(broker.child.iter().map(std::process::Child::id).collect());
     // Readiness as a whole also fails while the lag is high; these two checks are the
     // moments that matter: partitions assigned, and shutdown begun (every event applied).
     let readiness = || service.get("/readyz").map(|(_, body)| body).unwrap_or_default();
@@ -282,7 +284,7 @@ fn paced(events: &[(String, String, Option<i64>)], rate: f64) {
         &defaults(),
     );
     let service = Service::start(&config, port, &[]);
-    let peak_rss = watch_peak_rss(service.pid());
+    let peak_rss = watch_peak_rss(service.child.id());
     wait_for("ready", Duration::from_secs(60), || {
         service.get("/readyz").is_some_and(|(s, _)| s == 200)
     });

@@ -14,6 +14,8 @@
 //!
 //! Run by `make bench`.
 
+// A benchmark uses a few of the integration tests' helpers; the rest are theirs.
+#[allow(dead_code)]
 #[path = "../tests/common/mod.rs"]
 mod common;
 

@@ -1,5 +1,5 @@
 """Prints the documents of a YAML file (a Kubernetes manifest) as one JSON list, so that
-tests/deployment.rs can check the manifest's wiring with serde_json."""
+tests/operator/deployment.rs can check the manifest's wiring with serde_json."""
 
 import json
 import sys

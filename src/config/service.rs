@@ -89,7 +89,7 @@ pub struct KafkaConfig {
     pub topic_replication: i32,
     /// Produce lists and dead letters with Kafka's idempotent producer, so a retried send
     /// never writes a record twice. Off only for a broker that cannot keep producer state
-    /// across its own restart (the test broker's case, see tests/live_service.rs): lists
+    /// across its own restart (the test broker's case, see tests/live/service.rs): lists
     /// are keyed and compacted, so a duplicate list is harmless; a dead letter may then
     /// appear twice.
     pub idempotent_producer: bool,

@@ -1,7 +1,7 @@
 //! A run killed after ingesting a segment's table files and before committing the rest:
 //! the rerun must skip the ingested families, commit the rest, and end exactly where an
 //! uninterrupted run ends. Killing a process at that instant is a matter of luck (the
-//! crash tests in tests/crash_resume.rs may or may not hit it), so the state is made here
+//! crash tests in tests/store/crash_resume.rs may or may not hit it), so the state is made here
 //! directly.
 
 use std::collections::BTreeMap;

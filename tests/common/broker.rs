@@ -25,7 +25,8 @@ pub fn free_port() -> u16 {
 
 /// A running tansu broker.
 pub struct Broker {
-    child: Option<Child>,
+    /// The broker process while it runs (benchmarks read its processor time).
+    pub child: Option<Child>,
     port: u16,
     data: tempfile::TempDir,
 }
@@ -61,11 +62,6 @@ impl Broker {
     /// `host:port` for bootstrap.servers.
     pub fn bootstrap(&self) -> String {
         format!("127.0.0.1:{}", self.port)
-    }
-
-    /// The broker's process id while it runs (for benchmarks that read its processor time).
-    pub fn pid(&self) -> Option<u32> {
-        self.child.as_ref().map(Child::id)
     }
 
     /// The last `lines` lines the broker wrote since it last started, for failure messages.

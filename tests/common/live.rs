@@ -110,7 +110,8 @@ listen = "127.0.0.1:{port}"
 
 /// A running `simtide run` process.
 pub struct Service {
-    child: Child,
+    /// The process (benchmarks read its memory and processor time).
+    pub child: Child,
     /// Where its stderr (the log) goes.
     pub log: PathBuf,
     /// Its HTTP port.
@@ -185,11 +186,6 @@ impl Service {
     pub fn kill(mut self) {
         self.child.kill().unwrap();
         self.child.wait().unwrap();
-    }
-
-    /// The process id.
-    pub fn pid(&self) -> u32 {
-        self.child.id()
     }
 
     /// Whether the process is still running.
@@ -499,7 +495,7 @@ pub fn mock_with_topics() -> MockCluster<'static, MockContext> {
     mock
 }
 
-/// Appends to `records` the tombstone tansu does not return (see tests/live_service.rs)
+/// Appends to `records` the tombstone tansu does not return (see tests/live/service.rs)
 /// for each item whose stored list became empty right after its last record there;
 /// returns how many. `stores` are the stores of shards 0, 1, … (one store: unsharded),
 /// and each item's list is read from its owner's.

@@ -1,6 +1,5 @@
 //! Helpers shared by the integration tests: the external oracle, the MovieLens file, and
 //! short ways to configure, backfill and export a real store in a temp directory.
-#![allow(dead_code)] // each test binary uses a different subset
 
 pub mod broker;
 pub mod live;
@@ -155,7 +154,7 @@ pub fn export_without_times(store: &Path, out: &Path) -> Vec<serde_json::Value> 
 
 /// The largest change of one pair's adjusted cosine that a recenter tolerance τ allows,
 /// given the pair's exact sums: asin(τ/σ_a) + asin(τ/σ_b) with σ = √(Σd²/n) (derivation
-/// in tests/movielens_oracle.rs). `None` when τ is not below both σ (no bound then).
+/// in tests/quality/movielens_oracle.rs). `None` when τ is not below both σ (no bound then).
 pub fn tolerance_bound(exact: &RatingSums, tau: f64) -> Option<f64> {
     let sigma_a = (exact.norm_a / exact.n as f64).sqrt();
     let sigma_b = (exact.norm_b / exact.n as f64).sqrt();

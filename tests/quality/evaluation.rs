@@ -1,6 +1,6 @@
 //! Prediction, recommendation and the evaluation report.
 
-mod common;
+use crate::common;
 
 use common::Settings;
 

@@ -2,7 +2,7 @@
 //! hand-worked example, an independent numpy implementation on MovieLens, and the
 //! margin over recommending the most popular items.
 
-mod common;
+use crate::common;
 
 use common::Settings;
 

@@ -6,7 +6,7 @@
 //! runs its unit tests (dashboards/alerts.test.yml: each alert fires on a synthetic broken
 //! series and stays quiet on a healthy one).
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::process::{Child, Command, Stdio};

@@ -1,7 +1,7 @@
 //! Malformed records: the valid ones are applied exactly, each bad one is reported with
 //! its line, field and reason, and nothing already stored is lost.
 
-mod common;
+use crate::common;
 
 use common::Settings;
 use simtide::engine::user_state::Outcome;

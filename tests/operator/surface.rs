@@ -4,7 +4,7 @@
 //! secrets kept out of every output. On librdkafka's mock cluster with `simtide run` as
 //! a separate process.
 
-mod common;
+use crate::common;
 
 use std::io::Write;
 use std::process::{Command, Stdio};

