@@ -153,7 +153,7 @@ pub struct RunArgs {
 #[derive(Args)]
 pub struct StatusArgs {
     /// The service's HTTP address.
-    #[arg(long, default_value = "http://127.0.0.1:9464")]
+    #[arg(long, default_value = "http://127.0.0.1:7461")]
     pub url: String,
     /// Time between the two scrapes that rates are taken over (e.g. 2s).
     #[arg(long, default_value = "2s", value_parser = parse_duration)]

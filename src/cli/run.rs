@@ -32,6 +32,7 @@ pub fn run(args: RunArgs, config: Config, out: &mut dyn Write) -> Result<()> {
             (false, Some(text)) => Some(StopAt::Offsets(parse_offsets("--stop-at-offsets", &text)?)),
             (false, None) => None,
         },
+        skip_compaction_check: false,
     };
     let report = run_service(&config, options, Shutdown::new())?;
     writeln!(out, "{report}")?;

@@ -7,7 +7,6 @@
 
 pub mod cluster;
 pub mod duration_text;
-mod renamed;
 pub mod secrets;
 pub mod service;
 pub mod size_text;
@@ -317,7 +316,6 @@ impl Config {
             }
             target.insert(key, parsed);
         }
-        renamed::refuse_old_names(&table, origin)?;
         // The path of the offending key goes into the message: toml's own error loses it
         // once environment overrides have been merged into the table.
         let mut config: Config = serde_path_to_error::deserialize(toml::Value::Table(table)).map_err(
@@ -476,7 +474,7 @@ impl Config {
         }
         if self.http.listen.parse::<std::net::SocketAddr>().is_err() {
             bail!(
-                "http.listen: \"{}\" is not an address:port such as 127.0.0.1:9464",
+                "http.listen: \"{}\" is not an address:port such as 127.0.0.1:7461",
                 self.http.listen
             );
         }
@@ -529,17 +527,6 @@ mod tests {
         .unwrap();
         assert_eq!(c.similarity.neighbors, 20);
         assert_eq!(c.similarity.purchase_score, PurchaseScore::LogLikelihood);
-    }
-
-    #[test]
-    fn an_old_key_from_the_environment_names_its_replacement() {
-        let err = Config::from_toml_and_env("", "t", env(&[("SIMTIDE_SIMILARITY__SHRINKAGE", "4")]))
-            .unwrap_err()
-            .to_string();
-        assert!(
-            err.contains("similarity.shrinkage was renamed: write similarity.damping"),
-            "{err}"
-        );
     }
 
     #[test]

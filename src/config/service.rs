@@ -204,7 +204,9 @@ pub struct HttpConfig {
 impl Default for HttpConfig {
     fn default() -> Self {
         HttpConfig {
-            listen: "127.0.0.1:9464".to_string(),
+            // A port no well-known program claims by default (the exporter ports of
+            // the 9xxx range are taken), so simtide can sit beside other exporters.
+            listen: "127.0.0.1:7461".to_string(),
             admin_token: String::new(),
             max_concurrent_lookups: 16,
             request_timeout: Duration::from_secs(2),

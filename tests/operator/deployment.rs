@@ -55,7 +55,7 @@ fn compose_file_is_valid_and_runs_two_shards_beside_the_broker_and_prometheus() 
     }
     let prometheus = std::fs::read_to_string(root().join("dashboards/prometheus.yml")).unwrap();
     assert!(
-        prometheus.contains(r#"["simtide-0:9464", "simtide-1:9464"]"#),
+        prometheus.contains(r#"["simtide-0:7461", "simtide-1:7461"]"#),
         "{prometheus}"
     );
     // Every file the services mount exists in the repository.

@@ -243,7 +243,10 @@ fn movielens_similarity_mass_and_popularity_match_numpy() {
 /// snapshot: the default ranking's precision at 10 is at least 1.2 times the popularity
 /// baseline's on the same split, and the weighted-sum predicted rating, ranked as a
 /// top-N list, does worse than both (Cremonesi, Koren and Turrin, RecSys 2010: methods
-/// tuned for rating error do poorly at top-N, and popularity is a strong baseline).
+/// tuned for rating error do poorly at top-N, and popularity is a strong baseline). The
+/// 1.2 floor is the project's own bar, not a published figure: a margin over "merely
+/// ties popularity" that a ranking no better than popularity fails, set below the ratio
+/// this test prints so that it does not hang on one split.
 #[test]
 fn default_ranking_beats_the_popularity_baseline_on_movielens() {
     let mut config = Config::default();
