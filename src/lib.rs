@@ -4,39 +4,36 @@
 //!
 //! The maths (events, decoding, the engine, scores, top-k, drift, predictions) is the
 //! `simtide-core` crate; its modules are re-exported here so that the binary, the tests
-//! and the benchmarks name one crate. This crate adds the store, the Kafka bus, the live
-//! service, HTTP, and the commands.
+//! and the benchmarks name one crate. This crate's folders, by role:
+//! - `pipeline`: the path every event takes — batches applied and written, then the
+//!   changed lists rescored and published — shared by the three below;
+//! - `service`: `simtide run`, the live service (its loop, probes, HTTP, health, the
+//!   read view, the demo on an in-process cluster);
+//! - `backfill`: replaying files or the input topic into a store;
+//! - `evaluation`: offline evaluation of settings and its report;
+//! - `views`: what the command line and HTTP show of a store (neighbors and why,
+//!   recommendations, lists as records, export);
+//! - `store`: everything RocksDB; `kafka`: everything librdkafka;
+//! - `config`: the TOML file and its environment overrides;
+//! - `observability`: metrics, the observation type that writes them and the logs, the
+//!   progress meter, the status screen;
+//! - `runtime`: shutdown, retries, exit codes, disk space;
+//! - `cluster.rs`: which shard owns an item.
+//!
+//! The command line itself (`src/cli/`) is the binary's, beside `main.rs`.
 
 pub use simtide_core::{decode, drift, engine, event, model, predict, ranking, score, signal, timefmt, topk};
 
+pub mod backfill;
 pub mod cluster;
 pub mod config;
-pub mod demo;
-pub mod diskspace;
-pub mod evaluate;
-pub mod exit;
-pub mod export;
-mod health;
-pub mod http;
-pub mod ingest;
-pub mod inspect;
+pub mod evaluation;
 mod kafka;
-pub mod live;
-mod log_limit;
-mod lookup;
-mod meter;
-pub mod metrics;
-mod observe;
+pub mod observability;
 mod pipeline;
-mod publish;
-pub mod quality;
-pub mod recommend;
-pub mod record;
-pub mod report;
-mod retry;
-pub mod shutdown;
-mod source;
-pub mod status;
+pub mod runtime;
+pub mod service;
 pub mod store;
 #[cfg(test)]
 mod test_random;
+pub mod views;

@@ -1,6 +1,6 @@
 //! The `simtide` binary: parses the command line, loads the configuration once, sets up
 //! logging from it, and hands the command to its module under `cli/`. Exit codes are
-//! named in `simtide::exit`.
+//! named in `simtide::runtime::exit`.
 
 mod cli;
 
@@ -43,11 +43,11 @@ fn main() -> ExitCode {
         .transpose()
         .and_then(|config| cli::dispatch(cli.command, config, &mut std::io::stdout().lock()));
     match outcome {
-        Ok(()) => ExitCode::from(simtide::exit::SUCCESS),
+        Ok(()) => ExitCode::from(simtide::runtime::exit::SUCCESS),
         Err(e) => {
             let scrubber = Scrubber::of_sources(config_file.as_deref(), std::env::vars());
             eprintln!("error: {}", scrubber.scrub(&format!("{e:#}")));
-            ExitCode::from(simtide::exit::FAILED)
+            ExitCode::from(simtide::runtime::exit::FAILED)
         }
     }
 }

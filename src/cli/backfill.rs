@@ -6,17 +6,17 @@ use std::sync::Arc;
 use anyhow::Result;
 
 use super::args::BackfillArgs;
+use simtide::backfill::{backfill_files, backfill_topic, BackfillRequest};
 use simtide::config::Config;
-use simtide::diskspace::describe_store_error;
-use simtide::ingest::{backfill_files, backfill_topic, BackfillRequest};
-use simtide::metrics::Metrics;
+use simtide::observability::metrics::Metrics;
+use simtide::runtime::diskspace::describe_store_error;
 
 /// Runs the backfill and prints its summary.
 pub fn run(args: BackfillArgs, mut config: Config, out: &mut dyn Write) -> Result<()> {
     let metrics = match &args.metrics_listen {
         Some(listen) => {
             let metrics = Arc::new(Metrics::for_shard(config.cluster.spec()));
-            simtide::http::serve_metrics_in_background(listen, metrics.clone())?;
+            simtide::service::http::serve_metrics_in_background(listen, metrics.clone())?;
             Some(metrics)
         }
         None => None,

@@ -8,8 +8,8 @@ use anyhow::{Context, Result};
 use super::args::EvaluateArgs;
 use simtide::config::cluster::ClusterConfig;
 use simtide::config::Config;
-use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
-use simtide::report::write_report;
+use simtide::evaluation::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
+use simtide::evaluation::report::write_report;
 use simtide::timefmt::parse_event_time;
 
 /// The split the flags ask for.
@@ -56,7 +56,7 @@ pub fn run(args: EvaluateArgs, mut config: Config, out: &mut dyn Write) -> Resul
     let result = result?;
     let command: Vec<String> = std::env::args().collect();
     let html = write_report(&args.report, &result, &config, &command.join(" "))?;
-    let line = |name: &str, mae: String, p: &simtide::quality::RankingQuality| {
+    let line = |name: &str, mae: String, p: &simtide::evaluation::quality::RankingQuality| {
         let at = |n: usize| p.at(n);
         format!(
             "{name:<32} {mae}  P@10 {:.4}  R@10 {:.4}  nDCG@10 {:.4}  hit@10 {:.3}  coverage {:.3}  head {:.3}",

@@ -7,11 +7,11 @@ use anyhow::{Context, Result};
 
 use super::args::{ExplainArgs, ExportArgs, NeighborsArgs};
 use simtide::config::Config;
-use simtide::export::export_lists;
-use simtide::inspect::{explain_pair, neighbors_table};
-use simtide::record::NeighborRecord;
 use simtide::signal::Signal;
 use simtide::store::Store;
+use simtide::views::export::export_lists;
+use simtide::views::inspect::{explain_pair, neighbors_table};
+use simtide::views::record::NeighborRecord;
 
 /// Prints an item's lists as a table, or as the JSON records the output topics carry.
 pub fn neighbors(args: NeighborsArgs, out: &mut dyn Write) -> Result<()> {

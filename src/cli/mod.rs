@@ -25,9 +25,9 @@ pub fn dispatch(command: Command, config: Option<Config>, out: &mut dyn Write) -
     match command {
         Command::Backfill(args) => backfill::run(args, config()?, out),
         Command::Run(args) => run::run(args, config()?, out),
-        Command::Status(args) => simtide::status::show_status(&args.url, args.window, out),
+        Command::Status(args) => simtide::observability::status::show_status(&args.url, args.window, out),
         Command::CheckConfig(_) => check_config::run(&config()?, out),
-        Command::Demo(args) => simtide::demo::run_demo(args.store, out),
+        Command::Demo(args) => simtide::service::demo::run_demo(args.store, out),
         Command::Neighbors(args) => inspect::neighbors(args, out),
         Command::Explain(args) => inspect::explain(args, &config()?, out),
         Command::Export(args) => inspect::export(args, out),

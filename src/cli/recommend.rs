@@ -6,8 +6,8 @@ use anyhow::{bail, Result};
 
 use super::args::RecommendArgs;
 use simtide::config::Config;
-use simtide::recommend::{recommend_user, StoredLists};
 use simtide::store::Store;
+use simtide::views::recommend::{recommend_user, StoredLists};
 
 /// Prints up to `--count` items for the user.
 pub fn run(args: RecommendArgs, config: &Config, out: &mut dyn Write) -> Result<()> {

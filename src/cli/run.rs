@@ -7,9 +7,9 @@ use anyhow::{Context, Result};
 
 use super::args::RunArgs;
 use simtide::config::Config;
-use simtide::live::handover::{parse_offsets, StartRequest};
-use simtide::live::{run_service, RunOptions, SignalHandling, StopAt};
-use simtide::shutdown::Shutdown;
+use simtide::runtime::shutdown::Shutdown;
+use simtide::service::handover::{parse_offsets, StartRequest};
+use simtide::service::{run_service, RunOptions, SignalHandling, StopAt};
 use simtide::timefmt::parse_event_time;
 
 /// Runs the service and prints what it did.

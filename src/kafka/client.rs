@@ -12,7 +12,7 @@ use rdkafka::{ClientConfig, ClientContext};
 
 use crate::config::secrets::Scrubber;
 use crate::config::KafkaConfig;
-use crate::log_limit;
+use crate::observability::log_limit;
 
 /// Whether the brokers answered recently: cleared by librdkafka's "all brokers down"
 /// and transport errors, set again by a successful metadata request.

@@ -18,8 +18,8 @@ use super::client::{base_config, describe_error, BusContext};
 use super::message::InMessage;
 use super::offsets::{OffsetsClient, REQUEST_TIMEOUT};
 use crate::config::KafkaConfig;
-use crate::log_limit;
-use crate::record::NeighborRecord;
+use crate::observability::log_limit;
+use crate::views::record::NeighborRecord;
 
 /// How long one poll waits before the positions are checked against the start's ends.
 const POLL_WAIT: Duration = Duration::from_millis(200);

@@ -9,7 +9,7 @@ use std::path::Path;
 
 use crate::config::Config;
 use crate::event::{Event, EventBody, UnixNanos};
-use crate::pipeline::Pending;
+use crate::pipeline::batch::Pending;
 use crate::signal::Signal;
 use crate::store::{PairWrite, Store};
 

@@ -8,9 +8,9 @@ use anyhow::{bail, Context, Result};
 use rocksdb::{ColumnFamily, WriteBatch, WriteOptions};
 
 use super::erasure::{encode_erased_at, user_name_key, ForgottenUser, META_SCRUB_PENDING};
-use super::ingest::SEGMENT_MARKER_KEY;
 use super::ledger::Ledger;
 use super::oriented::{oriented_rating_stats, OrientedRows};
+use super::table_files::SEGMENT_MARKER_KEY;
 use super::{
     codec, Access, Store, CF_DIRTY, CF_IDS, CF_ITEMS, CF_META, CF_PAIRS, CF_PUBLISHED, CF_PURCHASE_PAIRS,
     CF_USERS, META_DELIVERED_TO, META_LEDGER,

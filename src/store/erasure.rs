@@ -8,7 +8,7 @@ use hmac::{Hmac, Mac};
 use rocksdb::{BottommostLevelCompaction, CompactOptions, FlushOptions, WriteBatch, DB};
 use sha2::Sha256;
 
-use super::ingest::SEGMENT_MARKER_KEY;
+use super::table_files::SEGMENT_MARKER_KEY;
 use super::{Store, ALL_CFS, CF_IDS, CF_META, CF_PAIRS, CF_USERS};
 use crate::event::UnixNanos;
 

@@ -241,7 +241,7 @@ mod tests {
 
     use super::{MirroredRows, RowMirror};
     use crate::config::Config;
-    use crate::pipeline::Pending;
+    use crate::pipeline::batch::Pending;
     use crate::store::{PairRows, PairWrite, Store};
 
     #[test]

@@ -2,7 +2,7 @@
 //!
 //! Column families:
 //! - `ids`: `u`/`i` + name → dense id, `I` + id → item name, `e` + keyed hash of a
-//!   forgotten user's name → erasure time ([`erasure`]).
+//!   forgotten user's name → erasure time (`erasure`).
 //! - `users`: user id → history and applied center ([`codec::encode_user`]); none for a
 //!   forgotten user.
 //! - `items`: item id → availability status.
@@ -26,7 +26,6 @@ mod erasure;
 pub mod errors;
 pub mod fingerprint;
 mod ids;
-mod ingest;
 pub mod ledger;
 pub mod merge;
 mod migrate;
@@ -38,6 +37,7 @@ pub mod reshard;
 mod rows;
 mod snapshot;
 pub mod staged;
+mod table_files;
 
 use std::fs::{File, OpenOptions};
 use std::io::{Seek, SeekFrom};

@@ -205,8 +205,8 @@ impl Store {
                 .into())
             }
         };
-        super::ingest::clear_leftovers(dir)?;
-        if let Some(end) = super::ingest::finish_carried_write(&db)? {
+        super::table_files::clear_leftovers(dir)?;
+        if let Some(end) = super::table_files::finish_carried_write(&db)? {
             tracing::info!(
                 segment_end = end,
                 "finished a store write that a stopped process left after its table files"

@@ -231,7 +231,7 @@ impl Store {
                 stats.rating_pairs_estimate = int("rocksdb.estimate-num-keys")? / 2;
             }
         }
-        stats.disk_available_bytes = crate::diskspace::available_bytes(&self.dir).unwrap_or(0);
+        stats.disk_available_bytes = crate::runtime::diskspace::available_bytes(&self.dir).unwrap_or(0);
         Ok(stats)
     }
 

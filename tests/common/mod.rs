@@ -7,11 +7,11 @@ pub mod live;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
+use simtide::backfill::{backfill_files, BackfillRequest, BackfillSummary};
 use simtide::config::Config;
-use simtide::export::export_lists;
-use simtide::ingest::{backfill_files, BackfillRequest, BackfillSummary};
 use simtide::score::RatingSums;
 use simtide::store::Store;
+use simtide::views::export::export_lists;
 
 /// Where scripts/setup.sh keeps its downloads and the Python venv.
 pub fn cache_dir() -> PathBuf {

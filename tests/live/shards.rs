@@ -24,9 +24,9 @@ use common::live::{
 };
 use simtide::cluster::{owner, ShardSpec};
 use simtide::config::Config;
-use simtide::recommend::{recommend_user, StoredLists};
 use simtide::signal::Signal;
 use simtide::store::Store;
+use simtide::views::recommend::{recommend_user, StoredLists};
 
 const SHARDS: u32 = 3;
 

@@ -8,12 +8,12 @@ use std::collections::HashMap;
 use std::path::Path;
 
 use simtide::config::{Config, Neighborhood};
-use simtide::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
+use simtide::evaluation::evaluate::{evaluate, EvaluationRequest, Split, Sweep};
+use simtide::evaluation::report::write_report;
 use simtide::predict::{NeighborIndex, Predictor};
-use simtide::recommend::{recommend_user, ItemLists, StoredLists};
-use simtide::report::write_report;
 use simtide::signal::Signal;
 use simtide::store::Store;
+use simtide::views::recommend::{recommend_user, ItemLists, StoredLists};
 
 /// A small matrix written for this test (users u1–u6, items A–E, ratings 1–5):
 ///
@@ -146,7 +146,7 @@ fn run(
     config: Config,
     split: Split,
     sweep: &str,
-) -> simtide::evaluate::EvaluationResult {
+) -> simtide::evaluation::evaluate::EvaluationResult {
     let request = EvaluationRequest {
         inputs: vec![csv.to_path_buf()],
         config,

@@ -7,10 +7,10 @@ use crate::common;
 use common::Settings;
 
 use simtide::config::{Config, Ranking};
-use simtide::evaluate::{evaluate, EvaluationRequest, EvaluationResult, Split, Sweep};
-use simtide::quality::{RankingQuality, CUTOFFS};
-use simtide::recommend::{recommend_user, StoredLists};
+use simtide::evaluation::evaluate::{evaluate, EvaluationRequest, EvaluationResult, Split, Sweep};
+use simtide::evaluation::quality::{RankingQuality, CUTOFFS};
 use simtide::store::Store;
+use simtide::views::recommend::{recommend_user, StoredLists};
 
 /// Five users of a garden shop, written for this test (ratings 1–5):
 ///

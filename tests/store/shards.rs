@@ -14,9 +14,9 @@ use common::Settings;
 use simtide::cluster::owner;
 use simtide::config::size_text::ByteSize;
 use simtide::config::Config;
-use simtide::inspect::neighbors_table;
 use simtide::store::reshard::reshard;
 use simtide::store::Store;
+use simtide::views::inspect::neighbors_table;
 
 const SHARDS: u32 = 3;
 

@@ -1,0 +1,91 @@
+//! Topic backfill (`backfill --from-topic`): replays the input topic from the store's
+//! positions (or the earliest retained offsets) to the end it had when the run began.
+//! Positions are stored per partition exactly as the live service stores them, so
+//! `simtide run` continues where the backfill stopped.
+
+use std::sync::Arc;
+
+use anyhow::Result;
+
+use super::writer::{BatchWriter, ReadBatch, RecordOrigin};
+use super::{BackfillRequest, BackfillSummary};
+use crate::config::secrets::Scrubber;
+use crate::kafka::client::{BrokerState, BusContext};
+use crate::kafka::offsets::OffsetsClient;
+use crate::kafka::replay::{ReplayPlan, TopicReplay};
+use crate::observability::meter::{Display, Meter, Unit};
+use crate::service::batch::PendingBatch;
+use crate::store::PairWrite;
+
+/// Replays the input topic of `request.config` into the store, then publishes.
+pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
+    let config = &request.config;
+    let kafka = &config.kafka;
+    let topic = kafka.input_topic.as_str();
+    let bus = BusContext::new(Arc::new(BrokerState::default()), Scrubber::of(config).into());
+    let mut writer = BatchWriter::open(request, PairWrite::InBatch)?;
+    let stored = writer
+        .store()
+        .ledger()
+        .offsets
+        .get(topic)
+        .cloned()
+        .unwrap_or_default();
+    let plan = ReplayPlan::to_current_end(
+        &OffsetsClient::new(kafka, &bus)?,
+        topic,
+        &stored,
+        kafka.position_outside_log,
+    )?;
+    writer.note_offsets_skipped(plan.skipped);
+    tracing::info!(
+        topic,
+        messages = plan.messages(),
+        "replaying the topic to its current end"
+    );
+    let mut replay = TopicReplay::start(kafka, &bus, topic, &plan)?;
+
+    let limits = config.limits();
+    let batch_len = config.backfill.batch_events as usize;
+    let mut meter = Meter::new(
+        "backfill",
+        plan.messages(),
+        Unit::Items,
+        Display::when(request.show_progress),
+    );
+    let mut pending = PendingBatch::default();
+    let mut consumed = 0u64;
+    while !replay.finished() || !pending.is_empty() {
+        if let Some(message) = replay.next_message()? {
+            pending.take(message, &limits);
+            consumed += 1;
+        }
+        if pending.messages >= batch_len || (replay.finished() && !pending.is_empty()) {
+            let taken = std::mem::take(&mut pending);
+            let mut batch = ReadBatch {
+                records: taken.messages,
+                ..ReadBatch::default()
+            };
+            for r in &taken.rejected {
+                let m = &r.message;
+                let origin = RecordOrigin::Topic {
+                    partition: m.partition,
+                    offset: m.offset,
+                };
+                let raw = String::from_utf8_lossy(m.value.as_deref().unwrap_or_default());
+                let keep = config.backfill.rejects_keep_text;
+                batch.reject(topic, origin, &r.rejection, keep.then_some(raw.as_ref()));
+            }
+            batch.events = taken.events;
+            let next_offsets = taken.next_offsets;
+            writer.apply(batch, |p| {
+                let stored = p.offsets.entry(topic.to_string()).or_default();
+                stored.extend(next_offsets);
+            })?;
+            meter.update(consumed, &format!("{:.0} events/s", writer.records_per_second()));
+        }
+    }
+    meter.finish();
+    drop(replay);
+    writer.finish()
+}
