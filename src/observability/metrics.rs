@@ -105,71 +105,71 @@ const UNSET: i64 = i64::MIN;
 pub struct Metrics {
     registry: Registry,
     /// Accepted events by kind and outcome.
-    pub events: IntCounterVec,
+    pub(super) events: IntCounterVec,
     /// Refused events by reason.
-    pub rejected: IntCounterVec,
+    pub(super) rejected: IntCounterVec,
     /// Dead letters acknowledged by the broker, by reason.
-    pub dead_letters: IntCounterVec,
+    pub(super) dead_letters: IntCounterVec,
     /// Dead letters the broker refused for good, recorded in the rejects file instead.
-    pub dead_letters_undeliverable: IntCounter,
+    pub(super) dead_letters_undeliverable: IntCounter,
     /// Refused messages that look like erasures (dead-lettered, not applied).
-    pub erasures_rejected: IntCounter,
+    pub(super) erasures_rejected: IntCounter,
     /// Input partitions not consumed because their stored position is outside the log.
-    pub partitions_refused: IntGauge,
+    pub(super) partitions_refused: IntGauge,
     /// Input offsets never applied because a policy resumed outside the stored position.
-    pub offsets_skipped: IntCounter,
+    pub(super) offsets_skipped: IntCounter,
     /// Micro-batches applied.
-    pub batches: IntCounter,
+    pub(super) batches: IntCounter,
     /// Time to apply one batch.
-    pub batch_seconds: Histogram,
+    pub(super) batch_seconds: Histogram,
     /// Time to write the live service's applied batches to the store.
-    pub write_seconds: Histogram,
+    pub(super) write_seconds: Histogram,
     /// Estimated memory of applied changes not yet written to the store.
-    pub unwritten_bytes: IntGauge,
+    pub(super) unwritten_bytes: IntGauge,
     /// Pair contributions added or retracted.
-    pub pair_updates: IntCounter,
+    pub(super) pair_updates: IntCounter,
     /// Users whose center moved.
-    pub recenterings: IntCounter,
+    pub(super) recenterings: IntCounter,
     /// Largest |mean − center| among the users of the last batch.
-    pub center_gap_max: Gauge,
+    pub(super) center_gap_max: Gauge,
     /// |mean − center| of each user touched, after its batch.
-    pub center_gap: Histogram,
+    pub(super) center_gap: Histogram,
     /// Messages behind the end of each input partition (high watermark − stored offset).
-    pub consumer_lag: IntGaugeVec,
+    pub(super) consumer_lag: IntGaugeVec,
     /// Publication cycles completed.
-    pub cycles: IntCounter,
+    pub(super) cycles: IntCounter,
     /// Duration of one publication cycle.
-    pub cycle_seconds: Histogram,
+    pub(super) cycle_seconds: Histogram,
     /// Lists delivered (changed lists and tombstones), by signal.
-    pub lists_published: IntCounterVec,
+    pub(super) lists_published: IntCounterVec,
     /// Of those, tombstones.
-    pub tombstones: IntCounterVec,
+    pub(super) tombstones: IntCounterVec,
     /// List deliveries the broker did not acknowledge (retried next cycle).
-    pub delivery_failures: IntCounter,
+    pub(super) delivery_failures: IntCounter,
     /// 1 − overlap between an item's consecutive lists, by signal.
-    pub list_drift: HistogramVec,
+    pub(super) list_drift: HistogramVec,
     /// Rank-biased overlap (p = 0.9) between an item's consecutive lists, by signal.
-    pub list_rbo: HistogramVec,
+    pub(super) list_rbo: HistogramVec,
     /// Failed store writes (each retried).
-    pub store_write_failures: IntCounter,
+    pub(super) store_write_failures: IntCounter,
     /// Known items, users and rating pairs (pairs: RocksDB's key estimate / 2).
-    pub entities: IntGaugeVec,
+    pub(super) entities: IntGaugeVec,
     /// Bytes of the store's SST files.
-    pub store_bytes: IntGauge,
+    pub(super) store_bytes: IntGauge,
     /// RocksDB's estimate of bytes compaction still has to rewrite.
-    pub pending_compaction_bytes: IntGauge,
+    pub(super) pending_compaction_bytes: IntGauge,
     /// Free bytes on the store's filesystem.
-    pub disk_available_bytes: IntGauge,
+    pub(super) disk_available_bytes: IntGauge,
     /// 1 while a broker answered recently.
-    pub broker_up: IntGauge,
+    pub(super) broker_up: IntGauge,
     /// 1 while every readiness check passes.
-    pub ready: IntGauge,
+    pub(super) ready: IntGauge,
     /// 1 while this instance delivers lists and dead letters; 0 for a standby replica.
-    pub publishing: IntGauge,
+    pub(super) publishing: IntGauge,
     /// On a shard: the other shards' lists read from the list topic for recommendations.
-    pub other_shard_lists: IntGauge,
+    pub(super) other_shard_lists: IntGauge,
     /// Unix time of the last completed publication cycle (process start before the first).
-    pub last_publish: Gauge,
+    pub(super) last_publish: Gauge,
     staleness: Gauge,
     event_time_lag: Gauge,
     batch_stalled: Gauge,
@@ -446,13 +446,13 @@ impl Metrics {
     }
 
     /// Records when the oldest unpublished change happened (`None`: nothing is dirty).
-    pub fn set_oldest_dirty(&self, since: Option<UnixNanos>) {
+    pub(super) fn set_oldest_dirty(&self, since: Option<UnixNanos>) {
         self.oldest_dirty_ns
             .store(since.map_or(UNSET, |t| t.0), Ordering::Relaxed);
     }
 
     /// Records the store's next offsets after a commit (the base of the lag gauge).
-    pub fn set_positions(&self, next: &BTreeMap<i32, i64>) {
+    pub(super) fn set_positions(&self, next: &BTreeMap<i32, i64>) {
         self.positions
             .lock()
             .expect("positions lock")
@@ -460,7 +460,7 @@ impl Metrics {
     }
 
     /// Sets each partition's lag from its high watermark and the stored position.
-    pub fn set_lag_from_watermarks(&self, high: &BTreeMap<i32, i64>) {
+    pub(super) fn set_lag_from_watermarks(&self, high: &BTreeMap<i32, i64>) {
         let positions = self.positions.lock().expect("positions lock");
         let mut total = 0;
         for (&p, &h) in high {
@@ -474,7 +474,7 @@ impl Metrics {
 
     /// Records that the batch in hand failed to commit; the first failure of a run of
     /// failures starts the stall clock.
-    pub fn note_batch_stalled(&self) {
+    pub(super) fn note_batch_stalled(&self) {
         let _ = self.batch_stalled_since_ns.compare_exchange(
             UNSET,
             now_nanos().0,
@@ -484,7 +484,7 @@ impl Metrics {
     }
 
     /// Records that the batch in hand was committed (or dropped): nothing is stalled.
-    pub fn clear_batch_stalled(&self) {
+    pub(super) fn clear_batch_stalled(&self) {
         self.batch_stalled_since_ns.store(UNSET, Ordering::Relaxed);
     }
 
@@ -498,14 +498,14 @@ impl Metrics {
     }
 
     /// Records a change at `at` that no list reflects yet; the oldest one is kept.
-    pub fn note_unpublished_change(&self, at: UnixNanos) {
+    pub(super) fn note_unpublished_change(&self, at: UnixNanos) {
         let _ = self
             .oldest_dirty_ns
             .compare_exchange(UNSET, at.0, Ordering::Relaxed, Ordering::Relaxed);
     }
 
     /// Records the newest event time reflected in published lists.
-    pub fn set_published_watermark(&self, watermark: Option<UnixNanos>) {
+    pub(super) fn set_published_watermark(&self, watermark: Option<UnixNanos>) {
         if let Some(w) = watermark {
             self.published_watermark_ns.store(w.0, Ordering::Relaxed);
         }

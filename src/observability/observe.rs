@@ -7,6 +7,7 @@
 use std::collections::BTreeMap;
 
 use crate::decode::RejectReason;
+use crate::event::UnixNanos;
 use crate::kafka::outside_log::OutsidePosition;
 use crate::observability::log_limit;
 use crate::observability::metrics::Metrics;
@@ -152,6 +153,50 @@ pub enum Observation<'a> {
         undelivered: u64,
         /// Duration.
         seconds: f64,
+    },
+    /// The live service reached these next offsets (a batch applied in memory, or the
+    /// stored positions at start); `changed_lists` when the batch marked a list dirty.
+    PositionsReached {
+        /// Next offset by partition.
+        next_offsets: &'a BTreeMap<i32, i64>,
+        /// Whether a list went out of date.
+        changed_lists: bool,
+    },
+    /// The batch in hand cannot move on (a store or dead-letter write is being retried).
+    BatchStalled,
+    /// The batch in hand moved on after a stall, or without one.
+    BatchMoving,
+    /// The oldest dirty mark was read (after each publication cycle).
+    OldestDirtyMeasured {
+        /// When the oldest pending change was made; `None` when nothing is pending.
+        since: Option<UnixNanos>,
+    },
+    /// Every list of a cycle reached the list topics, up to this event time.
+    PublishedUpTo {
+        /// The newest event time the published lists include.
+        watermark: Option<UnixNanos>,
+    },
+    /// The broker probe asked for the input topic's high watermarks.
+    BrokerProbed {
+        /// Whether the brokers are reachable, as the bus now says.
+        reachable: bool,
+        /// The watermarks by partition, or `None` when the broker did not answer.
+        high_watermarks: Option<&'a BTreeMap<i32, i64>>,
+    },
+    /// `/readyz` (or the status page) computed readiness.
+    ReadinessAnswered {
+        /// Whether the service is ready.
+        ready: bool,
+    },
+    /// A shard counted the other shards' lists it holds for recommendations.
+    OtherShardListsHeld {
+        /// How many lists.
+        lists: usize,
+    },
+    /// A standby gained or lost the right to publish.
+    PublishingRole {
+        /// Whether this instance now publishes.
+        publishing: bool,
     },
 }
 
@@ -364,6 +409,31 @@ impl Observation<'_> {
                 }
                 m.last_publish.set(crate::timefmt::now_nanos().as_secs_f64());
             }
+            Observation::PositionsReached {
+                next_offsets,
+                changed_lists,
+            } => {
+                m.set_positions(next_offsets);
+                if *changed_lists {
+                    m.note_unpublished_change(crate::timefmt::now_nanos());
+                }
+            }
+            Observation::BatchStalled => m.note_batch_stalled(),
+            Observation::BatchMoving => m.clear_batch_stalled(),
+            Observation::OldestDirtyMeasured { since } => m.set_oldest_dirty(*since),
+            Observation::PublishedUpTo { watermark } => m.set_published_watermark(*watermark),
+            Observation::BrokerProbed {
+                reachable,
+                high_watermarks,
+            } => {
+                m.broker_up.set(i64::from(*reachable));
+                if let Some(high) = high_watermarks {
+                    m.set_lag_from_watermarks(high);
+                }
+            }
+            Observation::ReadinessAnswered { ready } => m.ready.set(i64::from(*ready)),
+            Observation::OtherShardListsHeld { lists } => m.other_shard_lists.set(*lists as i64),
+            Observation::PublishingRole { publishing } => m.publishing.set(i64::from(*publishing)),
         }
     }
 }

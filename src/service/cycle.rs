@@ -89,7 +89,7 @@ pub fn count_catalogue(store: &Store, metrics: &Metrics) {
 /// marks), sizes and counts. At start-up and after each publication cycle.
 pub fn measure_store(store: &Store, metrics: &Metrics) {
     match store.oldest_dirty_since() {
-        Ok(oldest) => metrics.set_oldest_dirty(oldest),
+        Ok(since) => Observation::OldestDirtyMeasured { since }.emit(metrics),
         Err(e) => Observation::PendingChangesUnreadable {
             error: &format!("{e:#}"),
         }
@@ -241,7 +241,10 @@ impl CycleRun {
         }
         .emit(&self.metrics);
         if outcome.undelivered == 0 {
-            self.metrics.set_published_watermark(cycle.watermark());
+            Observation::PublishedUpTo {
+                watermark: cycle.watermark(),
+            }
+            .emit(&self.metrics);
         }
         Ok(CycleTally {
             delivered: outcome.delivered.len() as u64,

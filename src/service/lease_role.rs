@@ -10,6 +10,7 @@ use std::sync::Arc;
 use crate::kafka::lease::LeaseHolder;
 use crate::kafka::producer::RecordProducer;
 use crate::observability::metrics::Metrics;
+use crate::observability::observe::Observation;
 use crate::service::health::Health;
 use crate::service::http::AdminRequests;
 
@@ -30,7 +31,7 @@ impl PublishingRole {
     pub fn stand_by(&self) {
         self.producer.set_muted(true);
         self.health.set_publishing(false);
-        self.metrics.publishing.set(0);
+        Observation::PublishingRole { publishing: false }.emit(&self.metrics);
     }
 }
 
@@ -38,7 +39,7 @@ impl LeaseHolder for PublishingRole {
     fn gained(&self) {
         self.producer.set_muted(false);
         self.health.set_publishing(true);
-        self.metrics.publishing.set(1);
+        Observation::PublishingRole { publishing: true }.emit(&self.metrics);
         self.admin.republish.store(true, Ordering::Relaxed);
     }
 

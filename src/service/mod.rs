@@ -11,22 +11,22 @@
 //! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
 //! commits the batch in flight and publishes what is pending.
 
-pub mod batch;
+pub(crate) mod batch;
 mod cycle;
 pub mod demo;
 pub mod handover;
 pub(crate) mod health;
 pub mod http;
-pub mod latency;
+pub(crate) mod latency;
 mod lease_role;
 pub(crate) mod lookup;
-pub mod positions;
+pub(crate) mod positions;
 mod probes;
 mod report;
 mod run_loop;
-pub mod segment;
+pub(crate) mod segment;
 mod startup;
-pub mod state;
+pub(crate) mod state;
 
 pub use report::{RunCounters, RunReport};
 pub use run_loop::run_service;

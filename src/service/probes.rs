@@ -41,9 +41,12 @@ pub(super) fn spawn_broker_probe(
         .spawn(move || loop {
             let high = client.high_watermarks(&topic, PROBE_EVERY);
             brokers.set_reachable(high.is_ok());
-            metrics.broker_up.set(i64::from(brokers.reachable()));
+            Observation::BrokerProbed {
+                reachable: brokers.reachable(),
+                high_watermarks: high.as_ref().ok(),
+            }
+            .emit(&metrics);
             if let Ok(high) = high {
-                metrics.set_lag_from_watermarks(&high);
                 *listed.lock().expect("partitions lock") = high.keys().copied().collect();
             }
             if !shutdown.sleep(PROBE_EVERY) {

@@ -38,7 +38,6 @@ use crate::service::health::Health;
 use crate::signal::Signal;
 use crate::store::mirror::RowMirror;
 use crate::store::{open_rejects, PairWrite, Store};
-use crate::timefmt::now_nanos;
 
 /// First pause before retrying a failing store write or delivery.
 const FIRST_RETRY_WAIT: Duration = Duration::from_millis(200);
@@ -155,7 +154,11 @@ impl Core {
 
     /// Starts the lag gauge from the stored positions (before any batch of this run).
     pub fn seed_positions(&self) {
-        self.metrics.set_positions(&self.stored_offsets());
+        Observation::PositionsReached {
+            next_offsets: &self.stored_offsets(),
+            changed_lists: false,
+        }
+        .emit(&self.metrics);
         self.refresh_store_gauges();
     }
 
@@ -276,7 +279,7 @@ impl Core {
                         describe_store_error(&e, self.store.dir())
                     );
                     Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
-                    self.metrics.note_batch_stalled();
+                    Observation::BatchStalled.emit(&self.metrics);
                     self.health.set_store_error(Some(text));
                     if !backoff.wait(deadline, &self.shutdown) {
                         // The failed attempts may have given ids to names of the batch
@@ -290,7 +293,7 @@ impl Core {
             }
         };
         self.health.set_store_error(None);
-        self.metrics.clear_batch_stalled();
+        Observation::BatchMoving.emit(&self.metrics);
         if !undeliverable.is_empty() {
             let topic = &self.config.kafka.input_topic;
             match record_undeliverable(&mut self.rejects, topic, &self.pending.rejected, &undeliverable) {
@@ -317,10 +320,11 @@ impl Core {
             unwritten_bytes: segment.pending.estimated_bytes() as u64,
         }
         .emit(&self.metrics);
-        self.metrics.set_positions(&batch.next_offsets);
-        if summary.marked_dirty {
-            self.metrics.note_unpublished_change(now_nanos());
+        Observation::PositionsReached {
+            next_offsets: &batch.next_offsets,
+            changed_lists: summary.marked_dirty,
         }
+        .emit(&self.metrics);
         BatchApply::Applied
     }
 
@@ -340,7 +344,7 @@ impl Core {
         while let Err(e) = sealed.write(store, PairWrite::RatingsIngested) {
             let text = format!("store write failed: {}", describe_store_error(&e, store.dir()));
             Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
-            self.metrics.note_batch_stalled();
+            Observation::BatchStalled.emit(&self.metrics);
             self.health.set_store_error(Some(text));
             if !backoff.wait(deadline, &self.shutdown) {
                 Observation::BatchAbandoned {
@@ -352,7 +356,7 @@ impl Core {
         }
         self.mirror.absorb(sealed.effects());
         self.health.set_store_error(None);
-        self.metrics.clear_batch_stalled();
+        Observation::BatchMoving.emit(&self.metrics);
         self.counters.absorb(&segment.counts);
         self.unpublished_ms.extend(segment.timestamps);
         Observation::ChangesWritten {
@@ -428,7 +432,7 @@ impl Core {
                     .1,
             }
             .emit(&self.metrics);
-            self.metrics.note_batch_stalled();
+            Observation::BatchStalled.emit(&self.metrics);
             letters = retry.iter().map(|&k| letters[k].clone()).collect();
             if !backoff.wait(deadline, &self.shutdown) {
                 return None;

@@ -183,7 +183,10 @@ async fn healthz(State(s): State<HttpState>) -> Response {
 
 async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
     let readiness = s.health.readiness(&s.metrics.freshness());
-    s.metrics.ready.set(i64::from(readiness.ready));
+    Observation::ReadinessAnswered {
+        ready: readiness.ready,
+    }
+    .emit(&s.metrics);
     let status = if readiness.ready {
         StatusCode::OK
     } else {
@@ -194,9 +197,9 @@ async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
 
 async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
     let ready = s.health.readiness(&s.metrics.freshness()).ready;
-    s.metrics.ready.set(i64::from(ready));
+    Observation::ReadinessAnswered { ready }.emit(&s.metrics);
     if let Some(table) = &s.other_lists {
-        s.metrics.other_shard_lists.set(table.held() as i64);
+        Observation::OtherShardListsHeld { lists: table.held() }.emit(&s.metrics);
     }
     (
         [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
