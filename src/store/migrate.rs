@@ -30,7 +30,8 @@ use rocksdb::{
 use super::codec::{decode_user, encode_rating_pair, id_key};
 use super::erasure::{encode_erased_at, finish_left_scrub, ErasureKey, META_SCRUB_PENDING};
 use super::errors::OpenError;
-use super::open::{cf_options, db_options, read_ledger};
+use super::open::read_ledger;
+use super::options::{cf_descriptors, cf_options, db_options};
 use super::{
     db_path, ALL_CFS, CF_IDS, CF_META, CF_PAIRS, CF_USERS, META_LEDGER, META_SCHEMA, SCHEMA_VERSION,
 };
@@ -221,11 +222,7 @@ fn forget_erased_users(dir: &Path, path: &Path) -> Result<u32> {
         store = %dir.display(),
         "store layout version {KEPT_ERASED_USERS_VERSION} found: migrating it to version {TO} in place (erased users become tombstones)"
     );
-    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
-        .iter()
-        .map(|&name| ColumnFamilyDescriptor::new(name, cf_options(name)))
-        .collect();
-    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
+    let db = DB::open_cf_descriptors(&db_options(), path, cf_descriptors())
         .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
     let (ids, users, meta) = (
         db.cf_handle(CF_IDS).expect("ids family exists"),

@@ -31,6 +31,7 @@ pub mod merge;
 mod migrate;
 pub mod mirror;
 mod open;
+mod options;
 mod oriented;
 mod reads;
 pub mod reshard;

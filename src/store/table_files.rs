@@ -15,7 +15,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{bail, Context, Result};
 use rocksdb::{IngestExternalFileOptions, SstFileWriter, WriteBatch, DB};
 
-use super::open::{cf_options, read_ledger};
+use super::open::read_ledger;
+use super::options::cf_options;
 use super::oriented::{oriented_rating_stats, OrientedRows};
 use super::{codec, Store, CF_PAIRS, CF_PURCHASE_PAIRS};
 use crate::engine::{BatchEffects, RatingPairDelta};

@@ -14,13 +14,29 @@ use rdkafka::ClientConfig;
 
 use super::cache_dir;
 
-/// A free TCP port on 127.0.0.1 (bound, then released for the child to take).
+/// A free TCP port on 127.0.0.1 for a child process to listen on: bound once to check,
+/// then released. Picked below the kernel's ephemeral range, from which every outgoing
+/// connection of every test takes its local port: a port from that range could be taken
+/// by some client's socket between the check and the child's bind (seen once the tests
+/// ran in one binary, more of them at a time).
 pub fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .expect("an ephemeral port")
-        .local_addr()
-        .unwrap()
-        .port()
+    use std::sync::atomic::{AtomicU32, Ordering};
+    static NEXT: AtomicU32 = AtomicU32::new(0);
+    let ephemeral_start = std::fs::read_to_string("/proc/sys/net/ipv4/ip_local_port_range")
+        .ok()
+        .and_then(|r| r.split_whitespace().next()?.parse::<u32>().ok())
+        .unwrap_or(32_768);
+    let first = 10_000u32.min(ephemeral_start / 2);
+    let span = ephemeral_start - first;
+    let seed = std::process::id().wrapping_mul(7_919);
+    for _ in 0..span {
+        let port = first + seed.wrapping_add(NEXT.fetch_add(1, Ordering::Relaxed)) % span;
+        let port = u16::try_from(port).expect("ports fit in 16 bits");
+        if std::net::TcpListener::bind(("127.0.0.1", port)).is_ok() {
+            return port;
+        }
+    }
+    panic!("no free port below the ephemeral range {ephemeral_start}");
 }
 
 /// A running tansu broker.
@@ -103,10 +119,13 @@ impl Broker {
         self.child = Some(child);
         let deadline = Instant::now() + Duration::from_secs(30);
         while TcpStream::connect(("127.0.0.1", self.port)).is_err() {
+            let exited = self.child.as_mut().and_then(|c| c.try_wait().ok().flatten());
             assert!(
-                Instant::now() < deadline,
-                "tansu did not listen on port {} within 30 s",
-                self.port
+                exited.is_none() && Instant::now() < deadline,
+                "tansu did not listen on port {} within 30 s ({}); its log:\n{}",
+                self.port,
+                exited.map_or("still running".to_string(), |s| format!("exited: {s}")),
+                self.log_tail(20)
             );
             std::thread::sleep(Duration::from_millis(50));
         }
