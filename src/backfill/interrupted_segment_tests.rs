@@ -11,7 +11,7 @@ use super::writer::BatchWriter;
 use super::{backfill_files, BackfillRequest};
 use crate::backfill::source::{Decoded, InputFile, RecordReader};
 use crate::config::Config;
-use crate::pipeline::batch::Pending;
+use crate::pipeline::segment::OpenSegment;
 use crate::store::{PairWrite, Store};
 
 /// A deterministic little shop: 40 customers rating and buying from 25 items.
@@ -102,11 +102,11 @@ fn a_segment_ingested_but_not_committed_is_finished_once() {
                 other => panic!("the test's events are valid: {other:?}"),
             }
         }
-        let mut pending = Pending::new(&store);
-        pending
+        let mut segment = OpenSegment::new(&store);
+        segment
             .apply(&store, &req.config.engine_settings(), &events, &BTreeMap::new())
             .unwrap();
-        pending.ingest_without_commit(&store).unwrap();
+        segment.ingest_without_commit(&store).unwrap();
         assert!(store.uncommitted_segment_end().unwrap().is_some());
     }
 

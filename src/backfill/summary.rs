@@ -6,8 +6,8 @@ use std::path::PathBuf;
 
 use crate::decode::RejectReason;
 use crate::engine::tally::EventTally;
-use crate::pipeline::batch::BatchSummary;
 use crate::pipeline::publish::CycleReport;
+use crate::pipeline::segment::BatchSummary;
 
 /// The outcome of one backfill run.
 #[derive(Debug, Clone, Default)]

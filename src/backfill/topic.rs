@@ -14,7 +14,7 @@ use crate::kafka::client::{BrokerState, BusContext};
 use crate::kafka::offsets::OffsetsClient;
 use crate::kafka::replay::{ReplayPlan, TopicReplay};
 use crate::observability::meter::{Display, Meter, Unit};
-use crate::service::batch::PendingBatch;
+use crate::pipeline::messages::MessageBatch;
 use crate::store::PairWrite;
 
 /// Replays the input topic of `request.config` into the store, then publishes.
@@ -53,15 +53,15 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
         Unit::Items,
         Display::when(request.show_progress),
     );
-    let mut pending = PendingBatch::default();
+    let mut collecting = MessageBatch::default();
     let mut consumed = 0u64;
-    while !replay.finished() || !pending.is_empty() {
+    while !replay.finished() || !collecting.is_empty() {
         if let Some(message) = replay.next_message()? {
-            pending.take(message, &limits);
+            collecting.take(message, &limits);
             consumed += 1;
         }
-        if pending.messages >= batch_len || (replay.finished() && !pending.is_empty()) {
-            let taken = std::mem::take(&mut pending);
+        if collecting.messages >= batch_len || (replay.finished() && !collecting.is_empty()) {
+            let taken = std::mem::take(&mut collecting);
             let mut batch = ReadBatch {
                 records: taken.messages,
                 ..ReadBatch::default()

@@ -23,8 +23,8 @@ use crate::engine::{BatchEffects, EngineSettings};
 use crate::event::Event;
 use crate::observability::meter::{Display, Meter, Unit};
 use crate::observability::observe::Observation;
-use crate::pipeline::batch::Pending;
 use crate::pipeline::publish::publish_dirty;
+use crate::pipeline::segment::OpenSegment;
 use crate::store::{open_rejects, rejects_path, Ledger, PairRows, PairWrite, SegmentRows, Store};
 use crate::timefmt::now_nanos;
 
@@ -102,7 +102,7 @@ pub struct BatchWriter<'a> {
     rejects_file: File,
     summary: BackfillSummary,
     started: Instant,
-    pending: Option<Pending>,
+    segment: Option<OpenSegment>,
     /// How segments write their pair sums.
     pairs: PairWrite,
     /// The end of a segment a killed run ingested but did not commit: the next segment
@@ -151,7 +151,7 @@ impl<'a> BatchWriter<'a> {
             rejects_file,
             summary,
             started,
-            pending: None,
+            segment: None,
             pairs,
             unfinished_segment_end,
             only_pair_segment: None,
@@ -182,10 +182,10 @@ impl<'a> BatchWriter<'a> {
         self.rejects_file.flush()?;
         let rejects_len = self.rejects_file.metadata()?.len();
         let apply_started = Instant::now();
-        let pending = self.pending.get_or_insert_with(|| Pending::new(&self.store));
-        let applied = pending.apply(&self.store, &self.settings, &batch.events, &batch.rejects)?;
-        advance(pending.ledger_mut());
-        pending.ledger_mut().rejects_file_len = rejects_len;
+        let segment = self.segment.get_or_insert_with(|| OpenSegment::new(&self.store));
+        let applied = segment.apply(&self.store, &self.settings, &batch.events, &batch.rejects)?;
+        advance(segment.ledger_mut());
+        segment.ledger_mut().rejects_file_len = rejects_len;
         self.summary.absorb(&applied);
         if let Some(m) = &self.request.metrics {
             Observation::BatchApplied {
@@ -193,7 +193,7 @@ impl<'a> BatchWriter<'a> {
                 summary: &applied,
                 rejects: &batch.rejects,
                 seconds: apply_started.elapsed().as_secs_f64(),
-                unwritten_bytes: pending.estimated_bytes() as u64,
+                unwritten_bytes: segment.estimated_bytes() as u64,
             }
             .emit(m);
         }
@@ -201,8 +201,8 @@ impl<'a> BatchWriter<'a> {
             *self.summary.rejects.entry(reason).or_default() += n;
         }
         let due = match self.unfinished_segment_end {
-            Some(end) => pending.next_seq() >= end,
-            None => pending.estimated_bytes() as u64 >= self.request.config.backfill.memory_budget.0,
+            Some(end) => segment.next_seq() >= end,
+            None => segment.estimated_bytes() as u64 >= self.request.config.backfill.memory_budget.0,
         };
         if due {
             self.commit_segment()?;
@@ -212,22 +212,22 @@ impl<'a> BatchWriter<'a> {
 
     /// Commits the pending segment, if any.
     fn commit_segment(&mut self) -> Result<()> {
-        let Some(pending) = self.pending.take() else {
+        let Some(segment) = self.segment.take() else {
             return Ok(());
         };
         if let Some(end) = self.unfinished_segment_end.take() {
-            if pending.next_seq() != end {
+            if segment.next_seq() != end {
                 bail!(
                     "store {} holds pair sums of a segment ending at event {end}, but this run's \
                      batches end at event {}: rerun with the same inputs and backfill.batch_events \
                      as the interrupted run",
                     self.store.dir().display(),
-                    pending.next_seq()
+                    segment.next_seq()
                 );
             }
         }
         let store_had_pairs = self.store.ledger().pair_keys_written;
-        let effects = pending.commit(&mut self.store, self.pairs)?;
+        let effects = segment.commit(&mut self.store, self.pairs)?;
         self.only_pair_segment = (!store_had_pairs).then_some(effects);
         self.summary.segments += 1;
         Ok(())

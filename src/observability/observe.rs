@@ -11,8 +11,8 @@ use crate::event::UnixNanos;
 use crate::kafka::outside_log::OutsidePosition;
 use crate::observability::log_limit;
 use crate::observability::metrics::Metrics;
-use crate::pipeline::batch::BatchSummary;
 use crate::pipeline::publish::{CycleReport, ListDrift};
+use crate::pipeline::segment::BatchSummary;
 use crate::signal::Signal;
 use crate::store::StoreStats;
 

@@ -10,7 +10,7 @@ use crate::config::{Config, KafkaConfig};
 use crate::event::UnixMillis;
 use crate::kafka::client::BusContext;
 use crate::kafka::offsets::{OffsetsClient, REQUEST_TIMEOUT};
-use crate::pipeline::batch::apply_and_commit;
+use crate::pipeline::segment::apply_and_commit;
 use crate::store::Store;
 
 /// Where the live stream should begin.

@@ -11,7 +11,6 @@
 //! admin API is async). Shutdown (SIGTERM/SIGINT or the caller) ends the loop; draining
 //! commits the batch in flight and publishes what is pending.
 
-pub(crate) mod batch;
 mod cycle;
 pub mod demo;
 pub mod handover;

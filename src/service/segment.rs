@@ -11,13 +11,13 @@ use std::collections::BTreeMap;
 
 use super::report::RunCounters;
 use crate::event::UnixMillis;
-use crate::pipeline::batch::Pending;
+use crate::pipeline::segment::OpenSegment;
 use crate::store::Store;
 
 /// Applied batches not yet in the store.
 pub struct AppliedSegment {
     /// The engine's state for them: histories, ids, summed pair deltas, the ledger.
-    pub pending: Pending,
+    pub changes: OpenSegment,
     /// Next offset per partition after the last applied batch.
     pub offsets: BTreeMap<i32, i64>,
     /// Record timestamps of the applied messages, for event-to-publication latency.
@@ -31,7 +31,7 @@ impl AppliedSegment {
     /// An empty segment over the store's committed state.
     pub fn new(store: &Store) -> AppliedSegment {
         AppliedSegment {
-            pending: Pending::new(store),
+            changes: OpenSegment::new(store),
             offsets: BTreeMap::new(),
             timestamps: Vec::new(),
             counts: RunCounters::default(),
@@ -42,7 +42,7 @@ impl AppliedSegment {
     /// they are written with its changes) and in the offsets to commit to the group after.
     pub fn advance(&mut self, topic: &str, next_offsets: &BTreeMap<i32, i64>) {
         let stored = self
-            .pending
+            .changes
             .ledger_mut()
             .offsets
             .entry(topic.to_string())

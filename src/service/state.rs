@@ -13,7 +13,6 @@ use std::time::{Duration, Instant};
 
 use anyhow::Result;
 
-use super::batch::{PendingBatch, Rejected};
 use super::cycle::{
     count_catalogue, destination, list_record, measure_store, note_delivery, CycleOutcome, CycleRun,
 };
@@ -30,6 +29,7 @@ use crate::kafka::producer::{DeliveryReport, OutRecord, RecordProducer};
 use crate::model::PublishedList;
 use crate::observability::metrics::Metrics;
 use crate::observability::observe::Observation;
+use crate::pipeline::messages::{MessageBatch, Rejected};
 use crate::runtime::diskspace::describe_store_error;
 use crate::runtime::retry::Backoff;
 use crate::runtime::shutdown::Shutdown;
@@ -78,7 +78,7 @@ pub struct Core {
     /// store write waits for the cycle to end.
     store: Arc<Store>,
     /// The micro-batch being collected.
-    pending: PendingBatch,
+    collecting: MessageBatch,
     /// Batches applied in memory and not yet written.
     segment: Option<AppliedSegment>,
     /// Rating rows kept in memory for publication cycles, equal to the store's; lent to
@@ -118,7 +118,7 @@ impl Core {
         Ok(Core {
             rejects: open_rejects(&store)?,
             store: Arc::new(store),
-            pending: PendingBatch::default(),
+            collecting: MessageBatch::default(),
             segment: None,
             mirror: RowMirror::within(config.live.memory_budget.0 as usize),
             cycle: None,
@@ -164,7 +164,7 @@ impl Core {
 
     /// Decodes a consumed message into the pending batch.
     pub fn take(&mut self, message: InMessage) {
-        self.pending.take(message, &self.limits);
+        self.collecting.take(message, &self.limits);
     }
 
     /// The store's next offsets for the input topic.
@@ -199,7 +199,7 @@ impl Core {
         let over_budget = self
             .segment
             .as_ref()
-            .is_some_and(|s| s.pending.estimated_bytes() as u64 >= self.config.live.memory_budget.0);
+            .is_some_and(|s| s.changes.estimated_bytes() as u64 >= self.config.live.memory_budget.0);
         if over_budget {
             self.write_segment(None)
         } else {
@@ -209,16 +209,16 @@ impl Core {
 
     /// Whether the collected batch should be applied now.
     fn batch_due(&self) -> bool {
-        self.pending.messages >= self.config.live.batch_events
+        self.collecting.messages >= self.config.live.batch_events
             || self
-                .pending
+                .collecting
                 .opened
                 .is_some_and(|t| t.elapsed() >= self.config.live.batch_wait)
     }
 
     /// When the collected batch becomes due by age.
     pub fn batch_deadline(&self) -> Option<Instant> {
-        self.pending.opened.map(|t| t + self.config.live.batch_wait)
+        self.collecting.opened.map(|t| t + self.config.live.batch_wait)
     }
 
     /// Applies the collected batch and writes everything applied to the store, with its
@@ -236,18 +236,18 @@ impl Core {
     /// Applies the collected batch to the segment in memory: dead letters delivered first
     /// (a refused message is never lost), then the events.
     fn apply_batch(&mut self, deadline: Option<Instant>) -> BatchApply {
-        if self.pending.is_empty() {
+        if self.collecting.is_empty() {
             return BatchApply::Nothing;
         }
         let Some(undeliverable) = self.deliver_dead_letters(deadline) else {
             self.abandon_batch();
             return BatchApply::Abandoned;
         };
-        let rejects = self.pending.reject_counts();
+        let rejects = self.collecting.reject_counts();
         if !rejects.is_empty() && self.config.cluster.spec().produces_dead_letters() {
             let mut delivered = rejects.clone();
             for (index, _) in &undeliverable {
-                let reason = self.pending.rejected[*index].rejection.reason;
+                let reason = self.collecting.rejected[*index].rejection.reason;
                 delivered.entry(reason).and_modify(|n| *n -= 1);
             }
             delivered.retain(|_, n| *n > 0);
@@ -256,7 +256,7 @@ impl Core {
             }
             .emit(&self.metrics);
         }
-        let erasures = self.pending.rejected_erasures();
+        let erasures = self.collecting.rejected_erasures();
         if erasures > 0 {
             Observation::ErasuresRejected { count: erasures }.emit(&self.metrics);
         }
@@ -269,8 +269,8 @@ impl Core {
         // failed attempt assigned.
         let summary = loop {
             match segment
-                .pending
-                .apply(&self.store, &self.engine, &self.pending.events, &rejects)
+                .changes
+                .apply(&self.store, &self.engine, &self.collecting.events, &rejects)
             {
                 Ok(summary) => break summary,
                 Err(e) => {
@@ -296,13 +296,18 @@ impl Core {
         Observation::BatchMoving.emit(&self.metrics);
         if !undeliverable.is_empty() {
             let topic = &self.config.kafka.input_topic;
-            match record_undeliverable(&mut self.rejects, topic, &self.pending.rejected, &undeliverable) {
-                Ok(len) => segment.pending.ledger_mut().rejects_file_len = len,
+            match record_undeliverable(
+                &mut self.rejects,
+                topic,
+                &self.collecting.rejected,
+                &undeliverable,
+            ) {
+                Ok(len) => segment.changes.ledger_mut().rejects_file_len = len,
                 // The refusals were counted and logged; only the file's line is missing.
                 Err(e) => tracing::error!(error = %e, "cannot append to the rejects file"),
             }
         }
-        let batch = std::mem::take(&mut self.pending);
+        let batch = std::mem::take(&mut self.collecting);
         segment.advance(&self.config.kafka.input_topic, &batch.next_offsets);
         segment.timestamps.extend(batch.timestamps);
         let counts = &mut segment.counts;
@@ -317,7 +322,7 @@ impl Core {
             summary: &summary,
             rejects: &rejects,
             seconds: started.elapsed().as_secs_f64(),
-            unwritten_bytes: segment.pending.estimated_bytes() as u64,
+            unwritten_bytes: segment.changes.estimated_bytes() as u64,
         }
         .emit(&self.metrics);
         Observation::PositionsReached {
@@ -338,7 +343,7 @@ impl Core {
         // back with the cycle.
         self.join_cycle();
         let started = Instant::now();
-        let sealed = segment.pending.seal();
+        let sealed = segment.changes.seal();
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
         let store = Arc::get_mut(&mut self.store).expect("no cycle holds the store once it has ended");
         while let Err(e) = sealed.write(store, PairWrite::RatingsIngested) {
@@ -386,7 +391,7 @@ impl Core {
         let kafka = &self.config.kafka;
         // (index among the batch's rejected messages, its dead letter)
         let mut letters: Vec<(usize, OutRecord)> = self
-            .pending
+            .collecting
             .rejected
             .iter()
             .map(|r| r.dead_letter(&kafka.input_topic, &kafka.dead_letter_topic))
@@ -403,7 +408,7 @@ impl Core {
                     .find(|(i, _)| *i == k)
                     .expect("a refusal is a failure")
                     .1;
-                let m = &self.pending.rejected[letters[k].0].message;
+                let m = &self.collecting.rejected[letters[k].0].message;
                 Observation::DeadLetterUndeliverable {
                     partition: m.partition,
                     offset: m.offset,
@@ -451,10 +456,10 @@ impl Core {
     /// Drops the collected batch; it is consumed again from the stored positions.
     fn abandon_batch(&mut self) {
         Observation::BatchAbandoned {
-            messages: self.pending.messages,
+            messages: self.collecting.messages,
         }
         .emit(&self.metrics);
-        self.pending = PendingBatch::default();
+        self.collecting = MessageBatch::default();
     }
 
     /// Whether the output topics are known to hold every stored list (false after a

@@ -9,7 +9,7 @@ use std::path::Path;
 
 use crate::config::Config;
 use crate::event::{Event, EventBody, UnixNanos};
-use crate::pipeline::batch::Pending;
+use crate::pipeline::segment::OpenSegment;
 use crate::signal::Signal;
 use crate::store::{PairWrite, Store};
 
@@ -33,12 +33,12 @@ fn config() -> Config {
 }
 
 /// Applies `batch` to a fresh segment of `store`; the write is left to the caller.
-fn segment(store: &Store, batch: &[Event]) -> Pending {
-    let mut pending = Pending::new(store);
-    pending
+fn segment(store: &Store, batch: &[Event]) -> OpenSegment {
+    let mut segment = OpenSegment::new(store);
+    segment
         .apply(store, &config().engine_settings(), batch, &BTreeMap::new())
         .unwrap();
-    pending
+    segment
 }
 
 /// Writes every batch as its own segment, each with `pairs`.

@@ -241,7 +241,7 @@ mod tests {
 
     use super::{MirroredRows, RowMirror};
     use crate::config::Config;
-    use crate::pipeline::batch::Pending;
+    use crate::pipeline::segment::OpenSegment;
     use crate::store::{PairRows, PairWrite, Store};
 
     #[test]
@@ -259,11 +259,11 @@ mod tests {
         // pairs appear, change, and fall back to zero across writes.
         let batches = crate::test_random::shop_batches(11, 40, 40, 9, 14, false);
         for (i, batch) in batches.into_iter().enumerate() {
-            let mut pending = Pending::new(&store);
-            pending
+            let mut segment = OpenSegment::new(&store);
+            segment
                 .apply(&store, &settings, &batch, &BTreeMap::new())
                 .unwrap();
-            let sealed = pending.seal();
+            let sealed = segment.seal();
             // Both ways the store takes pair sums: in the batch, and as table files.
             let pairs = if i % 2 == 0 {
                 PairWrite::InBatch

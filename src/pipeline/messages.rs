@@ -1,6 +1,7 @@
-//! The micro-batch being collected: consumed messages decoded into events or rejections,
-//! and the next offset of every partition they came from. Knows nothing of rdkafka; the
-//! consumer hands it plain `InMessage`s.
+//! The batch of consumed messages being collected (by the service and the topic
+//! backfill): each decoded into an event or a rejection, with the next offset of every
+//! partition they came from. Knows nothing of rdkafka; the consumer hands it plain
+//! `InMessage`s.
 
 use std::collections::BTreeMap;
 use std::time::Instant;
@@ -137,7 +138,7 @@ pub fn decode_message(value: Option<&[u8]>, limits: &Limits) -> Result<Event, Re
 
 /// The batch being collected.
 #[derive(Debug, Default)]
-pub struct PendingBatch {
+pub struct MessageBatch {
     /// Valid events, in consumption order.
     pub events: Vec<Event>,
     /// Refused messages.
@@ -152,7 +153,7 @@ pub struct PendingBatch {
     pub opened: Option<Instant>,
 }
 
-impl PendingBatch {
+impl MessageBatch {
     /// Decodes and takes one message.
     pub fn take(&mut self, message: InMessage, limits: &Limits) {
         self.opened.get_or_insert_with(Instant::now);
@@ -233,7 +234,7 @@ mod tests {
     #[test]
     fn offsets_advance_past_every_message_and_rejections_keep_the_original() {
         let limits = crate::config::Config::default().limits();
-        let mut b = PendingBatch::default();
+        let mut b = MessageBatch::default();
         let good = br#"{"kind":"rating","user":"u1","item":"rake","value":4,"at":"2026-05-01T10:00:00Z"}"#;
         b.take(message(0, 7, good), &limits);
         b.take(message(0, 8, b"{not json"), &limits);
@@ -259,7 +260,7 @@ mod tests {
     fn an_oversized_message_is_dead_lettered_as_a_description_without_content() {
         let mut limits = crate::config::Config::default().limits();
         limits.max_record_bytes = 2048;
-        let mut b = PendingBatch::default();
+        let mut b = MessageBatch::default();
         let big = vec![b'x'; 4096];
         b.take(message(1, 40, &big), &limits);
         let good = br#"{"kind":"rating","user":"u1","item":"rake","value":4,"at":"2026-05-01T10:00:00Z"}"#;
@@ -285,7 +286,7 @@ mod tests {
     #[test]
     fn an_event_far_after_its_record_timestamp_is_refused_and_the_next_taken() {
         let limits = crate::config::Config::default().limits();
-        let mut b = PendingBatch::default();
+        let mut b = MessageBatch::default();
         let bomb = br#"{"kind":"rating","user":"u1","item":"rake","value":4,"at":"2261-01-01T00:00:00Z"}"#;
         let fine = br#"{"kind":"rating","user":"u1","item":"rake","value":2,"at":"2026-06-01T00:59:00Z"}"#;
         b.take(message(0, 1, bomb), &limits);

@@ -1,7 +1,7 @@
-//! One micro-batch from decoded events to a committed store write: intern ids, load the
-//! states the batch touches, run the engine, and persist everything — including the source
-//! position the batch consumed — in one write. The live service and a backfill apply many
-//! batches to one [`Pending`] segment in memory and commit it once, pair sums ingested as
+//! Batches of decoded events applied to an open segment and written to the store: intern
+//! ids, load the states a batch touches, run the engine, and persist everything —
+//! including the source positions consumed — in one write. The live service and a backfill apply many
+//! batches to one [`OpenSegment`] in memory and commit it once, pair sums ingested as
 //! sorted table files (docs/design.md, "Bulk backfill", "Live writes");
 //! [`apply_and_commit`] writes a single batch (the live start positions).
 
@@ -204,8 +204,8 @@ const PENDING_EVENT_STATE_BYTES: usize = 96;
 
 /// Batches applied in memory and not yet committed: the ids they assigned, the current
 /// state of every user and item status they touched, their summed effects, and the ledger
-/// to write with them. Nothing of it is in the store until [`Pending::commit`].
-pub struct Pending {
+/// to write with them. Nothing of it is in the store until [`OpenSegment::commit`].
+pub struct OpenSegment {
     users: NameIds,
     items: NameIds,
     states: HashMap<u32, UserState>,
@@ -221,11 +221,11 @@ pub struct Pending {
     new_owned: Vec<bool>,
 }
 
-impl Pending {
+impl OpenSegment {
     /// An empty segment starting from the store's committed state.
-    pub fn new(store: &Store) -> Pending {
+    pub fn new(store: &Store) -> OpenSegment {
         let ledger = store.ledger().clone();
-        Pending {
+        OpenSegment {
             users: NameIds::starting_at("user", ledger.next_user),
             items: NameIds::starting_at("item", ledger.next_item),
             states: HashMap::new(),
@@ -239,7 +239,7 @@ impl Pending {
         }
     }
 
-    /// Extends [`Pending::new_owned`] to every item this segment named first (the store
+    /// Extends [`OpenSegment::new_owned`] to every item this segment named first (the store
     /// knows the owner of the items it holds).
     fn note_new_owners(&mut self) {
         for (_, name) in &self.items.added[self.new_owned.len()..] {
@@ -366,8 +366,8 @@ impl Pending {
         Ok(summary)
     }
 
-    /// Sums the segment's pair deltas and sorts them: what [`Sealed::write`] persists.
-    pub fn seal(self) -> Sealed {
+    /// Sums the segment's pair deltas and sorts them: what [`SealedSegment::write`] persists.
+    pub fn seal(self) -> SealedSegment {
         let started = std::time::Instant::now();
         let effects = self.effects.into_effects();
         tracing::debug!(
@@ -378,7 +378,7 @@ impl Pending {
             "segment sealed"
         );
         let forgotten = forgotten_users(&self.forgettable, &self.states, self.users.first);
-        Sealed {
+        SealedSegment {
             new_users: self.users.added,
             new_items: self.items.added,
             states: self.states,
@@ -388,7 +388,7 @@ impl Pending {
         }
     }
 
-    /// Seals and writes the segment ([`Pending::seal`], [`Sealed::write`]); returns its
+    /// Seals and writes the segment ([`OpenSegment::seal`], [`SealedSegment::write`]); returns its
     /// effects, pair deltas summed and sorted.
     pub fn commit(self, store: &mut Store, pairs: PairWrite) -> Result<BatchEffects> {
         let sealed = self.seal();
@@ -399,7 +399,7 @@ impl Pending {
 
 /// A segment whose pair deltas are summed: ready to be written, and kept whole when a
 /// write fails so that it can be tried again.
-pub struct Sealed {
+pub struct SealedSegment {
     new_users: Vec<(u32, String)>,
     new_items: Vec<(u32, String)>,
     states: HashMap<u32, UserState>,
@@ -432,7 +432,7 @@ fn forgotten_users(
     forgotten
 }
 
-impl Sealed {
+impl SealedSegment {
     /// What the store writes for this segment.
     fn commit(&self, pairs: PairWrite) -> BatchCommit<'_> {
         let changed_users: Vec<_> = self
@@ -478,7 +478,7 @@ impl Sealed {
 }
 
 #[cfg(test)]
-impl Sealed {
+impl SealedSegment {
     /// The first step of a `PairWrite::RatingsIngested` write alone: what a process
     /// killed between ingesting the rating table files and writing the rest leaves.
     pub(crate) fn ingest_ratings_only(&self, store: &Store) -> Result<()> {
@@ -487,7 +487,7 @@ impl Sealed {
 }
 
 #[cfg(test)]
-impl Pending {
+impl OpenSegment {
     /// The first half of a bulk commit alone: what a run killed between ingesting a
     /// segment's table files and committing the rest leaves behind.
     pub(crate) fn ingest_without_commit(self, store: &Store) -> Result<()> {
@@ -506,10 +506,10 @@ pub fn apply_and_commit(
     rejects: &BTreeMap<RejectReason, u64>,
     advance: impl FnOnce(&mut Ledger),
 ) -> Result<BatchSummary> {
-    let mut pending = Pending::new(store);
-    let summary = pending.apply(store, settings, events, rejects)?;
-    advance(pending.ledger_mut());
-    pending.commit(store, PairWrite::InBatch)?;
+    let mut segment = OpenSegment::new(store);
+    let summary = segment.apply(store, settings, events, rejects)?;
+    advance(segment.ledger_mut());
+    segment.commit(store, PairWrite::InBatch)?;
     Ok(summary)
 }
 
