@@ -15,8 +15,11 @@ setup-test:
 demo: setup-build
 	$(CARGO) run --release --locked --quiet -- demo
 
+# The standby failover test runs alone after the rest: its 3 s lease timeout does not
+# hold while other tests load both cores (DEVELOPERS.md, "Build and test").
 test: setup-test
-	$(CARGO) test --release --locked --workspace
+	$(CARGO) test --release --locked --workspace -- --skip live::standby
+	$(CARGO) test --release --locked --test integration live::standby
 
 lint: setup-build
 	$(CARGO) fmt --all -- --check

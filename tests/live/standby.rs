@@ -42,6 +42,12 @@ fn metric(service: &Service, name: &str) -> f64 {
         .sum()
 }
 
+/// The last `lines` lines of `text`.
+fn tail(text: &str, lines: usize) -> String {
+    let all: Vec<&str> = text.lines().collect();
+    all[all.len().saturating_sub(lines)..].join("\n")
+}
+
 /// Starts one instance of shard 1 with the lease.
 fn instance(work: &Path, brokers: &str, name: &str) -> Service {
     let (config, port) = write_config(
@@ -131,6 +137,13 @@ fn only_the_lease_holder_publishes_and_the_standby_takes_over_exactly() {
         "failover took {failover:?} with a lease timeout of {LEASE_TIMEOUT:?}"
     );
     wait_applied(&standby, RATINGS, "the new holder");
+    assert_eq!(
+        metric(&standby, "simtide_publishing"),
+        1.0,
+        "the new holder still holds the lease at the end; its log:\n{}",
+        tail(&standby.log_text(), 60)
+    );
+    let log = standby.log.clone();
     let (status, report) = standby.terminate(Duration::from_secs(60));
     assert!(status.success(), "exit status {status}; report:\n{report}");
 
@@ -156,5 +169,9 @@ fn only_the_lease_holder_publishes_and_the_standby_takes_over_exactly() {
         expected.len()
     );
     assert!(expected.len() > 300, "only {} lists", expected.len());
+    if expected != from_topic {
+        let text = std::fs::read_to_string(&log).unwrap_or_default();
+        eprintln!("the new holder's log, last lines:\n{}", tail(&text, 80));
+    }
     assert_same_lists(&expected, &from_topic);
 }
