@@ -1,5 +1,10 @@
 //! Durations in the configuration file, written as a whole number and a unit: `250ms`,
 //! `5s`, `2m`, `1h`. A unit is required, so `interval = 5` is refused rather than guessed.
+//!
+//! Hand-written on purpose: the accepted syntax is exactly one whole number and one of four
+//! units, as the README's table documents; a general duration crate would also accept
+//! forms (`1h 30m`, `2days`) that the documentation does not define, and its errors would
+//! not say which key was wrong the way these do.
 
 use std::time::Duration;
 

@@ -1,5 +1,8 @@
 //! Sizes in the configuration file, written as a whole number and a binary unit: `512MiB`,
 //! `2GiB`. A unit is required, so `memory_budget = 2` is refused rather than guessed.
+//!
+//! Hand-written for the same reason as `duration_text`, whose number-and-unit split it
+//! shares: exactly the documented syntax, and errors that name the key.
 
 use std::fmt;
 

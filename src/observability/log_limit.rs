@@ -2,6 +2,9 @@
 //! back. A broker that is away or a disk that is full makes the same warning fire many
 //! times a second; the operator needs to know that it keeps happening and how often, not
 //! to scroll through thousands of identical lines.
+//!
+//! Hand-written on purpose: the count of held-back lines goes into the next line that
+//! passes, which tracing's own filters do not do.
 
 use std::collections::BTreeMap;
 use std::sync::Mutex;

@@ -2,6 +2,10 @@
 //! write on a full disk, a delivery while the broker is away, a topic check): the wait
 //! doubles from a first delay up to a longest one, and ends early when shutdown begins or
 //! a deadline would pass. The one retry policy of the service.
+//!
+//! Hand-written on purpose: what matters here is that a wait ends at shutdown or at a
+//! deadline, which is the caller's side of any back-off crate; the delays themselves are
+//! a doubling and a cap.
 
 use std::time::{Duration, Instant};
 

@@ -2,6 +2,10 @@
 //! loop reads it: the service loop, the broker probe, retry back-offs (which give up once
 //! it began), the topic checks on the async side, and the watchdog that bounds how long
 //! stopping may take. Threads wait on a condition variable, async tasks on a `Notify`.
+//!
+//! Hand-written on purpose: one flag must be read by blocking threads (condition variable,
+//! sleeps that end early) and by async tasks alike, with a watchdog that exits with a
+//! named code; tokio's cancellation token serves async tasks only.
 
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Duration, Instant};
