@@ -23,11 +23,13 @@ if [ ${#need_apt[@]} -gt 0 ]; then
 fi
 [ "$mode" = build ] && exit 0
 
-# Debian's prometheus (the server and promtool) for the dashboard and alert tests, and
-# docker-compose to validate docker-compose.yml (nothing is run in containers here).
+# Debian's prometheus (the server and promtool) for the dashboard and alert tests,
+# docker-compose to validate docker-compose.yml (nothing is run in containers here), and
+# chromium for the test that opens the evaluation report in a headless browser.
 need_test=()
 command -v promtool >/dev/null 2>&1 || need_test+=(prometheus)
 command -v docker-compose >/dev/null 2>&1 || need_test+=(docker-compose)
+command -v chromium >/dev/null 2>&1 || need_test+=(chromium)
 if [ ${#need_test[@]} -gt 0 ]; then
   echo "setup: installing ${need_test[*]}"
   export DEBIAN_FRONTEND=noninteractive

@@ -61,23 +61,9 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
             consumed += 1;
         }
         if collecting.messages >= batch_len || (replay.finished() && !collecting.is_empty()) {
-            let taken = std::mem::take(&mut collecting);
-            let mut batch = ReadBatch {
-                records: taken.messages,
-                ..ReadBatch::default()
-            };
-            for r in &taken.rejected {
-                let m = &r.message;
-                let origin = RecordOrigin::Topic {
-                    partition: m.partition,
-                    offset: m.offset,
-                };
-                let raw = String::from_utf8_lossy(m.value.as_deref().unwrap_or_default());
-                let keep = config.backfill.rejects_keep_text;
-                batch.reject(topic, origin, &r.rejection, keep.then_some(raw.as_ref()));
-            }
-            batch.events = taken.events;
-            let next_offsets = taken.next_offsets;
+            let mut taken = std::mem::take(&mut collecting);
+            let next_offsets = std::mem::take(&mut taken.next_offsets);
+            let batch = read_batch(taken, topic, config.backfill.rejects_keep_text);
             writer.apply(batch, |p| {
                 let stored = p.offsets.entry(topic.to_string()).or_default();
                 stored.extend(next_offsets);
@@ -88,4 +74,25 @@ pub fn backfill_topic(request: &BackfillRequest) -> Result<BackfillSummary> {
     meter.finish();
     drop(replay);
     writer.finish()
+}
+
+/// What the consumer collected, as the one batch every backfill hands its writer: the
+/// events move over, each refused message becomes a rejects-file line naming its
+/// partition and offset (its text only with `keep_text`).
+fn read_batch(taken: MessageBatch, topic: &str, keep_text: bool) -> ReadBatch {
+    let mut batch = ReadBatch {
+        records: taken.messages,
+        ..ReadBatch::default()
+    };
+    for r in &taken.rejected {
+        let m = &r.message;
+        let origin = RecordOrigin::Topic {
+            partition: m.partition,
+            offset: m.offset,
+        };
+        let raw = String::from_utf8_lossy(m.value.as_deref().unwrap_or_default());
+        batch.reject(topic, origin, &r.rejection, keep_text.then_some(raw.as_ref()));
+    }
+    batch.events = taken.events;
+    batch
 }

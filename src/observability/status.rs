@@ -3,94 +3,36 @@
 //! then freshness, lag per partition, throughput, dead letters in the window, drift and
 //! store health. Colour only on a terminal that wants it.
 
-use std::collections::BTreeMap;
 use std::fmt::Write as _;
-use std::io::{IsTerminal, Read, Write};
-use std::net::TcpStream;
+use std::io::{IsTerminal, Write};
 use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
 
 use crate::observability::metrics::names;
+use crate::observability::scrape::Scrape;
 
-/// One scrape: series (name with labels, as exposed) → value.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Scrape(BTreeMap<String, f64>);
-
-impl Scrape {
-    /// Parses the Prometheus text format (comments and blank lines skipped). A shard's
-    /// `shard` label is dropped: one scrape is one instance, and the screen names the
-    /// shard from `/readyz`.
-    pub fn parse(text: &str) -> Scrape {
-        Scrape(
-            text.lines()
-                .filter(|l| !l.starts_with('#') && !l.trim().is_empty())
-                .filter_map(|l| {
-                    let (series, value) = l.rsplit_once(' ')?;
-                    Some((without_shard_label(series), value.parse().ok()?))
-                })
-                .collect(),
-        )
-    }
-
-    /// Every series of a metric, with its label text (`partition="0"`) and value.
-    pub fn series<'a>(&'a self, name: &'a str) -> impl Iterator<Item = (&'a str, f64)> + 'a {
-        self.0.iter().filter_map(move |(s, v)| {
-            let labels = s.strip_prefix(name)?;
-            match labels.strip_prefix('{') {
-                Some(rest) => Some((rest.trim_end_matches('}'), *v)),
-                None if labels.is_empty() => Some(("", *v)),
-                None => None,
-            }
-        })
-    }
-
-    /// Sum over a metric's series whose labels contain `filter` (empty: all).
-    pub fn sum(&self, name: &str, filter: &str) -> f64 {
-        self.series(name)
-            .filter(|(l, _)| l.contains(filter))
-            .map(|(_, v)| v)
-            .sum()
-    }
-}
-
-/// `series` (`name{a="x",shard="1"}`) without its `shard` label. Label values here are
-/// codes, numbers and shard indexes, never text holding `",`.
-fn without_shard_label(series: &str) -> String {
-    let Some((name, labels)) = series.split_once('{') else {
-        return series.to_string();
-    };
-    let kept: Vec<&str> = labels
-        .trim_end_matches('}')
-        .split(',')
-        .filter(|l| !l.is_empty() && !l.starts_with("shard="))
-        .collect();
-    if kept.is_empty() {
-        name.to_string()
-    } else {
-        format!("{name}{{{}}}", kept.join(","))
-    }
-}
-
-/// `(status, body)` of an HTTP/1.0 GET on `http://host:port`.
+/// `(status, body)` of a GET of `path` on `base` (`http://HOST:PORT`); an answer of any
+/// status is returned, since a 503 from `/readyz` is what the screen shows.
 fn get(base: &str, path: &str) -> Result<(u16, String)> {
-    let address = base
-        .strip_prefix("http://")
-        .with_context(|| format!("--url {base:?}: expected http://HOST:PORT"))?
-        .trim_end_matches('/');
-    let mut stream =
-        TcpStream::connect(address).with_context(|| format!("cannot reach simtide at {base}"))?;
-    stream.set_read_timeout(Some(Duration::from_secs(10)))?;
-    write!(stream, "GET {path} HTTP/1.0\r\nHost: {address}\r\n\r\n")?;
-    let mut text = String::new();
-    stream.read_to_string(&mut text)?;
-    let status: u16 = text
-        .split_whitespace()
-        .nth(1)
-        .and_then(|s| s.parse().ok())
-        .with_context(|| format!("{base}{path}: not an HTTP answer"))?;
-    let body = text.split_once("\r\n\r\n").map_or("", |(_, b)| b).to_string();
-    Ok((status, body))
+    if !base.starts_with("http://") {
+        bail!("--url {base:?}: expected http://HOST:PORT");
+    }
+    let agent: ureq::Agent = ureq::Agent::config_builder()
+        .timeout_global(Some(Duration::from_secs(10)))
+        .http_status_as_error(false)
+        .build()
+        .into();
+    let url = format!("{}{path}", base.trim_end_matches('/'));
+    let mut answer = agent
+        .get(&url)
+        .call()
+        .with_context(|| format!("cannot reach simtide at {base}"))?;
+    let body = answer
+        .body_mut()
+        .read_to_string()
+        .with_context(|| format!("{url}: unreadable answer"))?;
+    Ok((answer.status().as_u16(), body))
 }
 
 /// Whether to colour: a terminal, `NO_COLOR` unset, `TERM` not `dumb`.

@@ -2,7 +2,9 @@
 //! in one vocabulary:
 //! 1. a [`messages::MessageBatch`] collects consumed Kafka messages (the service, the topic
 //!    backfill) decoded into events and rejections, with the next offset of each
-//!    partition; a file backfill reads records into its own batch of events;
+//!    partition. Every backfill hands its writer a `backfill::writer::ReadBatch` (events,
+//!    rejects-file lines, records read): a file backfill fills it from lines, the topic
+//!    backfill from a `MessageBatch` whose events it moves over;
 //! 2. each batch's events are applied to an [`segment::OpenSegment`]: ids assigned,
 //!    histories loaded once, pair deltas summed, the ledger kept with the positions;
 //! 3. the segment is sealed ([`segment::SealedSegment`]: deltas summed and sorted) and

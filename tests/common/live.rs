@@ -3,7 +3,6 @@
 
 use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader, Read, Write};
-use std::net::TcpStream;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, ExitStatus, Stdio};
 use std::time::{Duration, Instant};
@@ -17,6 +16,7 @@ use rdkafka::mocking::MockCluster;
 use rdkafka::producer::DefaultProducerContext as MockContext;
 
 use simtide::cluster::owner;
+use simtide::observability::scrape::Scrape;
 use simtide::signal::Signal;
 use simtide::store::Store;
 
@@ -212,36 +212,34 @@ impl Drop for Service {
     }
 }
 
-/// A minimal HTTP/1.0 GET.
+/// A GET on the service: (status code, body), `None` when nothing answers.
 pub fn http_get(port: u16, path: &str) -> Option<(u16, String)> {
     http_request(port, "GET", path, &[])
 }
 
-/// A minimal HTTP/1.0 request without a body: (status code, body), `None` when nothing
-/// answers.
+/// A request without a body: (status code, body) of any status, `None` when nothing
+/// answers within 10 s.
 pub fn http_request(port: u16, method: &str, path: &str, headers: &[(&str, &str)]) -> Option<(u16, String)> {
-    let mut stream = TcpStream::connect(("127.0.0.1", port)).ok()?;
-    stream.set_read_timeout(Some(Duration::from_secs(10))).ok()?;
-    let mut request = format!("{method} {path} HTTP/1.0\r\nHost: 127.0.0.1\r\nContent-Length: 0\r\n");
+    let agent: ureq::Agent = ureq::Agent::config_builder()
+        .timeout_global(Some(Duration::from_secs(10)))
+        .http_status_as_error(false)
+        .build()
+        .into();
+    let mut request = ureq::http::Request::builder()
+        .method(method)
+        .uri(format!("http://127.0.0.1:{port}{path}"));
     for (name, value) in headers {
-        request.push_str(&format!("{name}: {value}\r\n"));
+        request = request.header(*name, *value);
     }
-    request.push_str("\r\n");
-    stream.write_all(request.as_bytes()).ok()?;
-    let mut text = String::new();
-    stream.read_to_string(&mut text).ok()?;
-    let status = text.split_whitespace().nth(1)?.parse().ok()?;
-    let body = text.split_once("\r\n\r\n").map_or("", |(_, b)| b).to_string();
-    Some((status, body))
+    let mut answer = agent.run(request.body(()).ok()?).ok()?;
+    let body = answer.body_mut().read_to_string().ok()?;
+    Some((answer.status().as_u16(), body))
 }
 
-/// The value of one sample in a Prometheus text exposition (`name{labels}` exactly as
-/// written there, labels included).
+/// The value of one series in a Prometheus text exposition (`name{labels}` as exposed,
+/// labels in their order; a `shard` label is left out).
 pub fn sample(metrics: &str, series: &str) -> Option<f64> {
-    metrics.lines().find_map(|l| {
-        let (name, value) = l.rsplit_once(' ')?;
-        (name == series).then(|| value.parse().ok())?
-    })
+    Scrape::parse(metrics).value(series)
 }
 
 /// Waits until `check` holds, panicking with `what` after `within`.

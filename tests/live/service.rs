@@ -14,6 +14,10 @@
 //! last record the topic returned, that missing tombstone is accepted here and counted,
 //! and tombstone delivery itself is checked on librdkafka's mock cluster
 //! (tests/live/mock_cluster.rs).
+//!
+//! Longer than the house's ~600 lines on purpose: its tests share the MovieLens slice,
+//! the oracle comparison and the readers of published lists below, and each is one kind of
+//! day a platform team lives through (a crash, an outage, a handover, a shutdown).
 
 use crate::common;
 
