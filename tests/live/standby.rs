@@ -137,11 +137,33 @@ fn only_the_lease_holder_publishes_and_the_standby_takes_over_exactly() {
         "failover took {failover:?} with a lease timeout of {LEASE_TIMEOUT:?}"
     );
     wait_applied(&standby, RATINGS, "the new holder");
+    // tansu 0.6.0 may move the lease once more when it drops the killed member from the
+    // group (DEVELOPERS.md, "Build and test"): the new holder gives it up and gains it
+    // again, republishing every stored list. Wait until it holds it, then for two of its
+    // cycles, so every list reached the topic under the lease.
+    if metric(&standby, "simtide_publishing") != 1.0 {
+        eprintln!("the new holder gave the lease up after the failover; waiting for it to return");
+        let lost = Instant::now();
+        wait_for(
+            "the new holder to hold the lease again",
+            Duration::from_secs(60),
+            || metric(&standby, "simtide_publishing") == 1.0,
+        );
+        eprintln!(
+            "it held the lease again after {:.1} s",
+            lost.elapsed().as_secs_f64()
+        );
+    }
+    let cycles = metric(&standby, "simtide_publish_cycles_total");
+    wait_for(
+        "the new holder to finish two cycles holding the lease",
+        CATCH_UP,
+        || metric(&standby, "simtide_publish_cycles_total") >= cycles + 2.0,
+    );
     assert_eq!(
         metric(&standby, "simtide_publishing"),
         1.0,
-        "the new holder still holds the lease at the end; its log:\n{}",
-        tail(&standby.log_text(), 60)
+        "the new holder still holds the lease"
     );
     let log = standby.log.clone();
     let (status, report) = standby.terminate(Duration::from_secs(60));
