@@ -90,8 +90,8 @@ fn read_batch(taken: MessageBatch, topic: &str, keep_text: bool) -> ReadBatch {
             partition: m.partition,
             offset: m.offset,
         };
-        let raw = String::from_utf8_lossy(m.value.as_deref().unwrap_or_default());
-        batch.reject(topic, origin, &r.rejection, keep_text.then_some(raw.as_ref()));
+        let raw = keep_text.then(|| String::from_utf8_lossy(m.value.as_deref().unwrap_or_default()));
+        batch.reject(topic, origin, &r.rejection, raw.as_deref());
     }
     batch.events = taken.events;
     batch

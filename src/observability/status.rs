@@ -12,17 +12,18 @@ use anyhow::{bail, Context, Result};
 use crate::observability::metrics::names;
 use crate::observability::scrape::Scrape;
 
-/// `(status, body)` of a GET of `path` on `base` (`http://HOST:PORT`); an answer of any
-/// status is returned, since a 503 from `/readyz` is what the screen shows.
-fn get(base: &str, path: &str) -> Result<(u16, String)> {
-    if !base.starts_with("http://") {
-        bail!("--url {base:?}: expected http://HOST:PORT");
-    }
-    let agent: ureq::Agent = ureq::Agent::config_builder()
+/// The HTTP client of the screen: every status is an answer (a 503 from `/readyz` is what
+/// the screen shows), and nothing waits longer than 10 s.
+fn client() -> ureq::Agent {
+    ureq::Agent::config_builder()
         .timeout_global(Some(Duration::from_secs(10)))
         .http_status_as_error(false)
         .build()
-        .into();
+        .into()
+}
+
+/// `(status, body)` of a GET of `path` on `base` (`http://HOST:PORT`).
+fn get(agent: &ureq::Agent, base: &str, path: &str) -> Result<(u16, String)> {
     let url = format!("{}{path}", base.trim_end_matches('/'));
     let mut answer = agent
         .get(&url)
@@ -216,15 +217,19 @@ pub fn render(
 
 /// Fetches and prints the screen.
 pub fn show_status(base: &str, window: Duration, out: &mut dyn Write) -> Result<()> {
-    let (_, ready_body) = get(base, "/readyz")?;
+    if !base.starts_with("http://") {
+        bail!("--url {base:?}: expected http://HOST:PORT");
+    }
+    let agent = client();
+    let (_, ready_body) = get(&agent, base, "/readyz")?;
     let readiness: serde_json::Value =
         serde_json::from_str(&ready_body).with_context(|| format!("{base}/readyz did not answer JSON"))?;
-    let (status, first) = get(base, "/metrics")?;
+    let (status, first) = get(&agent, base, "/metrics")?;
     if status != 200 {
         bail!("{base}/metrics answered {status}");
     }
     std::thread::sleep(window);
-    let (_, second) = get(base, "/metrics")?;
+    let (_, second) = get(&agent, base, "/metrics")?;
     write!(
         out,
         "{}",

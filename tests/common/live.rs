@@ -220,18 +220,20 @@ pub fn http_get(port: u16, path: &str) -> Option<(u16, String)> {
 /// A request without a body: (status code, body) of any status, `None` when nothing
 /// answers within 10 s.
 pub fn http_request(port: u16, method: &str, path: &str, headers: &[(&str, &str)]) -> Option<(u16, String)> {
-    let agent: ureq::Agent = ureq::Agent::config_builder()
-        .timeout_global(Some(Duration::from_secs(10)))
-        .http_status_as_error(false)
-        .build()
-        .into();
+    static AGENT: std::sync::LazyLock<ureq::Agent> = std::sync::LazyLock::new(|| {
+        ureq::Agent::config_builder()
+            .timeout_global(Some(Duration::from_secs(10)))
+            .http_status_as_error(false)
+            .build()
+            .into()
+    });
     let mut request = ureq::http::Request::builder()
         .method(method)
         .uri(format!("http://127.0.0.1:{port}{path}"));
     for (name, value) in headers {
         request = request.header(*name, *value);
     }
-    let mut answer = agent.run(request.body(()).ok()?).ok()?;
+    let mut answer = AGENT.run(request.body(()).ok()?).ok()?;
     let body = answer.body_mut().read_to_string().ok()?;
     Some((answer.status().as_u16(), body))
 }

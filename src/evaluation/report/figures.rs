@@ -90,15 +90,8 @@ fn best_per_value<'a>(
 ) -> Vec<(f64, &'a PointResult)> {
     let mut best: Vec<(f64, &PointResult)> = Vec::new();
     for (p, &x) in points.iter().zip(xs) {
-        let better = |old: &PointResult| {
-            if lower_is_better {
-                value(p) < value(old)
-            } else {
-                value(p) > value(old)
-            }
-        };
         match best.iter_mut().find(|(bx, _)| *bx == x) {
-            Some(slot) if better(slot.1) => slot.1 = p,
+            Some(slot) if super::beats(value(p), value(slot.1), lower_is_better) => slot.1 = p,
             Some(_) => {}
             None => best.push((x, p)),
         }

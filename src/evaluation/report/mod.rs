@@ -18,6 +18,16 @@ use crate::evaluation::evaluate::EvaluationResult;
 
 use table::escape;
 
+/// Whether `a` beats `b` for a figure where lower (or higher) is better: the one rule the
+/// table's highlight and the figures' best lines share.
+fn beats(a: f64, b: f64, lower_is_better: bool) -> bool {
+    if lower_is_better {
+        a < b
+    } else {
+        a > b
+    }
+}
+
 const STYLE: &str = "body{font-family:sans-serif;margin:2em;max-width:1200px}\
 table{border-collapse:collapse;font-size:14px}\
 td,th{border:1px solid #ccc;padding:3px 6px;text-align:right}\

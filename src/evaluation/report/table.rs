@@ -111,10 +111,9 @@ fn cell(value: f64, digits: usize) -> String {
 }
 
 fn best_index(points: &[PointResult], m: &Metric) -> Option<usize> {
-    let better = |a: f64, b: f64| if m.lower_is_better { a < b } else { a > b };
     let mut best: Option<usize> = None;
     for (i, p) in points.iter().enumerate() {
-        if best.is_none_or(|b| better((m.value)(p), (m.value)(&points[b]))) {
+        if best.is_none_or(|b| super::beats((m.value)(p), (m.value)(&points[b]), m.lower_is_better)) {
             best = Some(i);
         }
     }
