@@ -5,6 +5,7 @@
 //! in the same state as an uninterrupted run.
 
 mod files;
+mod row_pass;
 pub(crate) mod source;
 mod summary;
 mod topic;

@@ -1,12 +1,13 @@
 //! The one batch writer of every backfill, whatever it reads: each batch's rejected
-//! records are appended to the rejects file and its events applied to a pending segment
-//! in memory; when the segment fills `backfill.memory_budget` (or the input ends) its pair
-//! sums are ingested as sorted table files (file backfill) or put in the commit itself
-//! (topic backfill), and everything else — users, ids, counters, source positions and the
-//! rejects file's length — committed in one store write, so a crash never leaves rejects
-//! or sums of an uncommitted segment behind. A file run killed between ingestion and
-//! commit finds the segment's marker and replays exactly that segment (docs/design.md,
-//! "Bulk backfill"). At the end every dirty list is published.
+//! records are appended to the rejects file and its events staged (file backfill) or
+//! applied (topic backfill) to a pending segment in memory; when the segment fills
+//! `backfill.memory_budget` (or the input ends) a file segment's rows are summed,
+//! written as table files and — for the last one — scored in one pass, a topic segment's
+//! pair sums put in the commit itself; everything else — users, ids, counters, source
+//! positions and the rejects file's length — is committed in one store write, so a crash
+//! never leaves rejects or sums of an uncommitted segment behind. A file run killed
+//! between ingestion and commit finds the segment's marker and replays exactly that
+//! segment (docs/design.md, "Bulk backfill"). At the end every dirty list is published.
 
 use std::collections::BTreeMap;
 use std::fs::File;
@@ -16,6 +17,7 @@ use std::time::Instant;
 use anyhow::{bail, Result};
 use serde_json::{json, Value};
 
+use super::row_pass::{sum_write_and_score, ListScoring, ScoredInPass};
 use super::summary::BackfillSummary;
 use super::BackfillRequest;
 use crate::decode::{RejectReason, Rejection};
@@ -24,9 +26,11 @@ use crate::event::Event;
 use crate::observability::meter::{Display, Meter, Unit};
 use crate::observability::observe::Observation;
 use crate::pipeline::publish::publish_dirty;
-use crate::pipeline::segment::OpenSegment;
+use crate::pipeline::segment::{BatchSummary, OpenSegment};
 use crate::store::{open_rejects, rejects_path, Ledger, PairRows, PairWrite, SegmentRows, Store};
 use crate::timefmt::now_nanos;
+use crate::topk::NameOrder;
+use rustc_hash::FxHashSet;
 
 /// Where a refused record came from, as the rejects file names it.
 pub enum RecordOrigin {
@@ -110,8 +114,14 @@ pub struct BatchWriter<'a> {
     unfinished_segment_end: Option<u64>,
     /// The effects of the last committed segment while it is the only one that wrote
     /// pairs into the store: its rows are then the store's whole content, and the lists
-    /// are scored from them instead of reading millions of rows back.
+    /// are scored from them instead of reading millions of rows back (topic backfill).
     only_pair_segment: Option<BatchEffects>,
+    /// Records and rejects staged in the pending file segment, reported when its engine
+    /// runs.
+    staged_records: usize,
+    staged_rejects: BTreeMap<RejectReason, u64>,
+    /// Rating lists the last file segment's pass scored.
+    scored_in_pass: Option<rustc_hash::FxHashMap<u32, crate::topk::ScoredRow>>,
 }
 
 impl<'a> BatchWriter<'a> {
@@ -155,6 +165,9 @@ impl<'a> BatchWriter<'a> {
             pairs,
             unfinished_segment_end,
             only_pair_segment: None,
+            staged_records: 0,
+            staged_rejects: BTreeMap::new(),
+            scored_in_pass: None,
         })
     }
 
@@ -174,29 +187,29 @@ impl<'a> BatchWriter<'a> {
         self.summary.skipped_offsets += skipped;
     }
 
-    /// Writes the batch's rejects and applies it to the pending segment; `advance` records
-    /// the source position it consumed in the ledger the segment will commit. Commits the
-    /// segment when it is due.
+    /// Writes the batch's rejects and stages (files) or applies (topic) it in the pending
+    /// segment; `advance` records the source position it consumed in the ledger the
+    /// segment will commit. Commits the segment when it is due.
     pub fn apply(&mut self, batch: ReadBatch, advance: impl FnOnce(&mut Ledger)) -> Result<()> {
         self.rejects_file.write_all(batch.reject_lines.as_bytes())?;
         self.rejects_file.flush()?;
         let rejects_len = self.rejects_file.metadata()?.len();
         let apply_started = Instant::now();
         let segment = self.segment.get_or_insert_with(|| OpenSegment::new(&self.store));
-        let applied = segment.apply(&self.store, &self.settings, &batch.events, &batch.rejects)?;
+        if self.pairs == PairWrite::Ingested {
+            segment.stage(&self.store, &batch.events, &batch.rejects)?;
+            self.staged_records += batch.records;
+            for (reason, n) in &batch.rejects {
+                *self.staged_rejects.entry(*reason).or_default() += n;
+            }
+        } else {
+            let applied = segment.apply(&self.store, &self.settings, &batch.events, &batch.rejects)?;
+            let unwritten = segment.estimated_bytes() as u64;
+            self.note_applied(&applied, batch.records, &batch.rejects, apply_started, unwritten);
+        }
+        let segment = self.segment.as_mut().expect("just made");
         advance(segment.ledger_mut());
         segment.ledger_mut().rejects_file_len = rejects_len;
-        self.summary.absorb(&applied);
-        if let Some(m) = &self.request.metrics {
-            Observation::BatchApplied {
-                messages: batch.records,
-                summary: &applied,
-                rejects: &batch.rejects,
-                seconds: apply_started.elapsed().as_secs_f64(),
-                unwritten_bytes: segment.estimated_bytes() as u64,
-            }
-            .emit(m);
-        }
         for (reason, n) in batch.rejects {
             *self.summary.rejects.entry(reason).or_default() += n;
         }
@@ -205,13 +218,37 @@ impl<'a> BatchWriter<'a> {
             None => segment.estimated_bytes() as u64 >= self.request.config.backfill.memory_budget.0,
         };
         if due {
-            self.commit_segment()?;
+            self.commit_segment(false)?;
         }
         Ok(())
     }
 
-    /// Commits the pending segment, if any.
-    fn commit_segment(&mut self) -> Result<()> {
+    /// Adds an applied batch (or a file segment's engine run) to the summary and the
+    /// metrics.
+    fn note_applied(
+        &mut self,
+        applied: &BatchSummary,
+        records: usize,
+        rejects: &BTreeMap<RejectReason, u64>,
+        started: Instant,
+        unwritten_bytes: u64,
+    ) {
+        self.summary.absorb(applied);
+        if let Some(m) = &self.request.metrics {
+            Observation::BatchApplied {
+                messages: records,
+                summary: applied,
+                rejects,
+                seconds: started.elapsed().as_secs_f64(),
+                unwritten_bytes,
+            }
+            .emit(m);
+        }
+    }
+
+    /// Commits the pending segment, if any; a file segment's rows are scored into lists
+    /// in the same pass when `last` (no segment follows).
+    fn commit_segment(&mut self, last: bool) -> Result<()> {
         let Some(segment) = self.segment.take() else {
             return Ok(());
         };
@@ -226,17 +263,67 @@ impl<'a> BatchWriter<'a> {
                 );
             }
         }
-        let store_had_pairs = self.store.ledger().pair_keys_written;
-        let effects = segment.commit(&mut self.store, self.pairs)?;
-        self.only_pair_segment = (!store_had_pairs).then_some(effects);
+        if self.pairs == PairWrite::Ingested {
+            self.commit_staged(segment, last)?;
+        } else {
+            let store_had_pairs = self.store.ledger().pair_keys_written;
+            let effects = segment.commit(&mut self.store, self.pairs)?;
+            self.only_pair_segment = (!store_had_pairs).then_some(effects);
+        }
         self.summary.segments += 1;
+        Ok(())
+    }
+
+    /// Runs the engine over a staged file segment, sums, writes and (when `last`) scores
+    /// its rows in one pass, and commits the rest.
+    fn commit_staged(&mut self, segment: OpenSegment, last: bool) -> Result<()> {
+        let started = Instant::now();
+        let unwritten = segment.estimated_bytes() as u64;
+        let (mut sealed, index, mut applied) = segment.seal_staged(&self.store, &self.settings);
+        let list_settings = self.request.config.list_settings();
+        let mut unavailable = FxHashSet::default();
+        let mut names = NameOrder::of::<&str>(&[]);
+        if last {
+            unavailable = self.store.unavailable_items()?;
+            for (item, status) in &sealed.effects().statuses {
+                if status.available {
+                    unavailable.remove(item);
+                } else {
+                    unavailable.insert(*item);
+                }
+            }
+            let all: Vec<&str> = (0..self.store.item_count() as u32)
+                .map(|id| self.store.item_name(id))
+                .chain(sealed.new_item_names())
+                .collect();
+            names = NameOrder::of(&all);
+        }
+        let scoring = last.then_some(ListScoring {
+            settings: &list_settings,
+            unavailable: &unavailable,
+            names: &names,
+        });
+        let meter = Meter::new("rows", 0, Unit::Items, Display::when(self.request.show_progress));
+        let pass = sum_write_and_score(&self.store, &index, sealed.end(), scoring.as_ref(), meter)?;
+        drop(index);
+        sealed.note_rating_rows(pass.updates, pass.rows_written);
+        applied.pair_updates += pass.updates;
+        sealed.write(&mut self.store, PairWrite::Ingested)?;
+        let (records, rejects) = (
+            std::mem::take(&mut self.staged_records),
+            std::mem::take(&mut self.staged_rejects),
+        );
+        self.note_applied(&applied, records, &rejects, started, unwritten);
+        if last {
+            self.scored_in_pass = Some(pass.lists);
+        }
         Ok(())
     }
 
     /// Publishes every dirty list (stored only), with a progress display, and returns
     /// the run's summary.
     pub fn finish(mut self) -> Result<BackfillSummary> {
-        self.commit_segment()?;
+        self.commit_segment(true)?;
         self.summary.apply_seconds = self.started.elapsed().as_secs_f64();
         let publish_started = Instant::now();
         let list_settings = self.request.config.list_settings();
@@ -250,14 +337,19 @@ impl<'a> BatchWriter<'a> {
             .only_pair_segment
             .as_ref()
             .map(|fx| SegmentRows::new(fx, self.store.item_count(), self.store.ledger().buyers));
-        if in_memory.is_none() && self.summary.segments > 0 {
+        if in_memory.is_none() && self.pairs != PairWrite::Ingested && self.summary.segments > 0 {
             tracing::info!("merging the segments' pair sums before scoring");
             self.store.compact_pairs();
         }
         self.store.set_pair_compaction(true)?;
-        let rows: &dyn PairRows = match &in_memory {
-            Some(rows) => rows,
-            None => &self.store,
+        let scored = self.scored_in_pass.take().map(|lists| ScoredInPass {
+            store: &self.store,
+            lists,
+        });
+        let rows: &dyn PairRows = match (&scored, &in_memory) {
+            (Some(scored), _) => scored,
+            (None, Some(rows)) => rows,
+            (None, None) => &self.store,
         };
         self.summary.publication =
             publish_dirty(&self.store, rows, &list_settings, now_nanos(), |done, total| {
@@ -265,6 +357,7 @@ impl<'a> BatchWriter<'a> {
                 meter.update(done, "lists");
             })?;
         meter.finish();
+        drop(scored);
         self.summary.publish_seconds = publish_started.elapsed().as_secs_f64();
         self.summary.users = u64::from(self.store.ledger().next_user);
         self.summary.items = self.store.item_count() as u64;

@@ -11,11 +11,14 @@ use anyhow::{bail, Result};
 
 use crate::cluster::ShardSpec;
 use crate::decode::RejectReason;
+use crate::engine::aggregate::{aggregate_pairs, RowIndex};
+use crate::engine::contrib::ContributionSet;
 use crate::engine::segment::SegmentEffects;
 use crate::engine::tally::EventTally;
 use crate::engine::user_state::UserState;
 use crate::engine::{
-    apply_batch, apply_batch_for_shard, Action, BatchEffects, EngineSettings, ItemStatus, Sequenced,
+    apply_batch_unsummed, Action, BatchEffects, Deviation, EngineSettings, ItemStatus, RatingPairDelta,
+    Sequenced,
 };
 use crate::event::{Event, EventBody, UnixNanos};
 use crate::store::{BatchCommit, ForgottenUser, Ledger, PairWrite, Store};
@@ -201,6 +204,11 @@ const PENDING_RATING_PAIR_BYTES: usize =
 const PENDING_PURCHASE_PAIR_BYTES: usize = 2 * std::mem::size_of::<(u32, u32, i64)>() + 32;
 /// Bytes one applied event may add to the pending user histories and ids (rounded up).
 const PENDING_EVENT_STATE_BYTES: usize = 96;
+/// Bytes a staged event holds, with its part of the two contribution sides and their
+/// index at the engine's run (measured against peak RSS in `make bench`).
+const STAGED_EVENT_BYTES: usize = std::mem::size_of::<Sequenced>() + 2 * 96;
+/// Bytes of contribution sides and index per byte of loaded history, at the engine's run.
+const STAGED_SIDES_PER_STATE_BYTE: usize = 2;
 
 /// Batches applied in memory and not yet committed: the ids they assigned, the current
 /// state of every user and item status they touched, their summed effects, and the ledger
@@ -219,6 +227,9 @@ pub struct OpenSegment {
     /// order of their ids.
     shard: ShardSpec,
     new_owned: Vec<bool>,
+    /// Events of a file backfill's segment, sequenced and waiting for the engine
+    /// ([`OpenSegment::stage`]).
+    staged: Vec<Sequenced>,
 }
 
 impl OpenSegment {
@@ -236,6 +247,7 @@ impl OpenSegment {
             state_bytes: 0,
             shard: store.shard(),
             new_owned: Vec::new(),
+            staged: Vec::new(),
         }
     }
 
@@ -257,10 +269,20 @@ impl OpenSegment {
         self.ledger.next_seq
     }
 
-    /// Memory the segment holds, estimated from its pair deltas and user histories.
+    /// Memory the segment holds, estimated from its pair deltas, user histories and
+    /// staged events. A staged event will also take its part of the two contribution
+    /// sides the engine forms for its user and of their index; a loaded history, both.
     pub fn estimated_bytes(&self) -> usize {
         let (rating, purchase) = self.effects.pair_entries();
-        rating * PENDING_RATING_PAIR_BYTES + purchase * PENDING_PURCHASE_PAIR_BYTES + self.state_bytes
+        let staged = if self.staged.is_empty() {
+            0
+        } else {
+            self.staged.len() * STAGED_EVENT_BYTES + self.state_bytes * STAGED_SIDES_PER_STATE_BYTE
+        };
+        rating * PENDING_RATING_PAIR_BYTES
+            + purchase * PENDING_PURCHASE_PAIR_BYTES
+            + self.state_bytes
+            + staged
     }
 
     /// Applies one batch after the ones already pending. `rejects` counts the records of
@@ -272,6 +294,81 @@ impl OpenSegment {
         events: &[Event],
         rejects: &BTreeMap<RejectReason, u64>,
     ) -> Result<BatchSummary> {
+        let sequenced = self.intern_and_load(store, events, rejects)?;
+        let (mut effects, rating_sides) = self.run_engine(store, settings, &sequenced);
+        {
+            let owns = owner_test(store, self.shard.is_sharded(), &self.new_owned);
+            let (rating_pairs, updates) = aggregate_pairs::<Deviation, RatingPairDelta>(&rating_sides, &owns);
+            effects.rating_pairs = rating_pairs;
+            effects.pair_updates += updates;
+            if self.shard.is_sharded() {
+                effects.keep_shard(&owns);
+            }
+        }
+        let summary = self.record(&effects);
+        self.effects.absorb(effects);
+        Ok(summary)
+    }
+
+    /// Stages one chunk of a file backfill: names, histories, positions and rejects as
+    /// [`OpenSegment::apply`] does, the engine deferred to [`OpenSegment::seal_staged`], which
+    /// runs it once over the whole segment (docs/design.md, "Bulk backfill").
+    pub fn stage(
+        &mut self,
+        store: &Store,
+        events: &[Event],
+        rejects: &BTreeMap<RejectReason, u64>,
+    ) -> Result<()> {
+        let sequenced = self.intern_and_load(store, events, rejects)?;
+        self.staged.extend(sequenced);
+        Ok(())
+    }
+
+    /// Runs the engine once over every staged event and seals the segment with its rating
+    /// pairs unsummed: the returned index sums them row by row under both orders. The
+    /// rating pair updates are counted by whoever sums them
+    /// ([`SealedSegment::note_rating_rows`]).
+    pub fn seal_staged(
+        mut self,
+        store: &Store,
+        settings: &EngineSettings,
+    ) -> (SealedSegment, RowIndex<Deviation>, BatchSummary) {
+        let staged = std::mem::take(&mut self.staged);
+        let (mut effects, rating_sides) = self.run_engine(store, settings, &staged);
+        drop(staged);
+        let index = {
+            let owns = owner_test(store, self.shard.is_sharded(), &self.new_owned);
+            if self.shard.is_sharded() {
+                effects.keep_shard(&owns);
+            }
+            RowIndex::both_orders(&rating_sides, &owns)
+        };
+        drop(rating_sides);
+        let mut marked = effects.dirty_rating.keys().chain(effects.dirty_purchase.keys());
+        let summary = BatchSummary {
+            marked_dirty: marked.next().is_some(),
+            ..self.record(&effects)
+        };
+        let forgotten = forgotten_users(&self.forgettable, &self.states, self.users.first);
+        let sealed = SealedSegment {
+            new_users: self.users.added,
+            new_items: self.items.added,
+            states: self.states,
+            forgotten,
+            effects,
+            ledger: self.ledger,
+        };
+        (sealed, index, summary)
+    }
+
+    /// Gives the batch's names ids, loads the histories and statuses it touches and
+    /// sequences its events after the ones already pending; counts its rejects.
+    fn intern_and_load(
+        &mut self,
+        store: &Store,
+        events: &[Event],
+        rejects: &BTreeMap<RejectReason, u64>,
+    ) -> Result<Vec<Sequenced>> {
         let mut interner = Interner::new(
             store,
             events,
@@ -322,26 +419,32 @@ impl OpenSegment {
         if self.shard.is_sharded() {
             self.note_new_owners();
         }
-        let (stored, new_owned) = (store.item_count() as u32, &self.new_owned);
-        let owns = |item: u32| match item.checked_sub(stored) {
-            None => store.owns(item),
-            Some(new) => new_owned[new as usize],
-        };
-        let effects = if self.shard.is_sharded() {
-            let mut effects =
-                apply_batch_for_shard(settings, &sequenced, &mut self.states, &mut self.statuses, &owns);
-            effects.keep_shard(owns);
-            effects
-        } else {
-            apply_batch(settings, &sequenced, &mut self.states, &mut self.statuses)
-        };
         // Each event adds at most one entry to a history (plus its share of a new user).
         self.state_bytes += sequenced.len() * PENDING_EVENT_STATE_BYTES;
-
         let ledger = &mut self.ledger;
         ledger.next_seq = next_seq;
         ledger.next_user = self.users.next;
         ledger.next_item = self.items.next;
+        for (reason, &n) in rejects {
+            *ledger.rejects.entry(reason.code().to_string()).or_default() += n;
+        }
+        Ok(sequenced)
+    }
+
+    /// Runs the engine over sequenced events, rating pairs left unsummed.
+    fn run_engine(
+        &mut self,
+        store: &Store,
+        settings: &EngineSettings,
+        sequenced: &[Sequenced],
+    ) -> (BatchEffects, Vec<ContributionSet<Deviation>>) {
+        let owns = owner_test(store, self.shard.is_sharded(), &self.new_owned);
+        apply_batch_unsummed(settings, sequenced, &mut self.states, &mut self.statuses, &owns)
+    }
+
+    /// Records a batch's counters in the ledger the segment will commit, and describes it.
+    fn record(&mut self, effects: &BatchEffects) -> BatchSummary {
+        let ledger = &mut self.ledger;
         ledger.buyers += effects.buyers_delta;
         ledger.recenterings += effects.recenterings;
         ledger.pair_updates += effects.pair_updates;
@@ -351,19 +454,14 @@ impl OpenSegment {
         for (&(kind, outcome), &n) in effects.outcomes.iter() {
             *ledger.events.entry(EventTally::key(kind, outcome)).or_default() += n;
         }
-        for (reason, &n) in rejects {
-            *ledger.rejects.entry(reason.code().to_string()).or_default() += n;
-        }
-        let summary = BatchSummary {
+        BatchSummary {
             outcomes: effects.outcomes.clone(),
             pair_updates: effects.pair_updates,
             recenterings: effects.recenterings,
             max_center_gap: effects.max_center_gap,
             center_gaps: effects.center_gaps.clone(),
             marked_dirty: !effects.dirty_rating.is_empty() || !effects.dirty_purchase.is_empty(),
-        };
-        self.effects.absorb(effects);
-        Ok(summary)
+        }
     }
 
     /// Sums the segment's pair deltas and sorts them: what [`SealedSegment::write`] persists.
@@ -394,6 +492,20 @@ impl OpenSegment {
         let sealed = self.seal();
         sealed.write(store, pairs)?;
         Ok(sealed.effects)
+    }
+}
+
+/// Whether a store keeps the pairs of an item: every item unless `sharded`, else its own
+/// (the store knows the owner of the items it holds; `new_owned` says it of the ones the
+/// segment named first, in the order of their ids).
+fn owner_test<'s>(store: &'s Store, sharded: bool, new_owned: &'s [bool]) -> impl Fn(u32) -> bool + 's {
+    let stored = store.item_count() as u32;
+    move |item: u32| {
+        !sharded
+            || match item.checked_sub(stored) {
+                None => store.owns(item),
+                Some(new) => new_owned[new as usize],
+            }
     }
 }
 
@@ -457,6 +569,24 @@ impl SealedSegment {
     /// The segment's effects, pair deltas summed and sorted.
     pub fn effects(&self) -> &BatchEffects {
         &self.effects
+    }
+
+    /// Names of the items the segment named first, in the order of their ids.
+    pub fn new_item_names(&self) -> impl Iterator<Item = &str> {
+        self.new_items.iter().map(|(_, name)| name.as_str())
+    }
+
+    /// Records the rating rows a one-pass writer summed for this staged segment: the
+    /// pair contributions, and whether it wrote any row (the store then holds pairs).
+    pub fn note_rating_rows(&mut self, updates: u64, rows_written: bool) {
+        self.effects.pair_updates += updates;
+        self.ledger.pair_updates += updates;
+        self.ledger.pair_keys_written |= rows_written;
+    }
+
+    /// The store-wide position after the segment's last event.
+    pub fn end(&self) -> u64 {
+        self.ledger.next_seq
     }
 
     /// Persists the segment: in one WriteBatch (`PairWrite::InBatch`), or with pair sums

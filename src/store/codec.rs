@@ -31,16 +31,7 @@ pub fn encode_rating_pair(stats: &RatingPairStats, out: &mut Vec<u8>) {
         signs |= u8::from(*v < 0) << (bit + 1);
     }
     out.push(signs);
-    let mut n = stats.n.unsigned_abs();
-    loop {
-        let low = (n & 0x7F) as u8;
-        n >>= 7;
-        if n == 0 {
-            out.push(low);
-            break;
-        }
-        out.push(low | 0x80);
-    }
+    push_varint(out, stats.n.unsigned_abs());
     for v in sums {
         let m = v.unsigned_abs();
         let bytes = m.to_le_bytes();
@@ -60,33 +51,65 @@ pub fn encode_rating_pair(stats: &RatingPairStats, out: &mut Vec<u8>) {
     }
 }
 
-/// Reads [`encode_rating_pair`]'s form.
-pub fn decode_rating_pair(bytes: &[u8]) -> Result<RatingPairStats> {
-    let malformed = || anyhow::anyhow!("rating pair value of {} bytes is malformed", bytes.len());
-    let (&signs, mut rest) = bytes.split_first().ok_or_else(malformed)?;
-    let mut n: u64 = 0;
+/// Appends `v` as a little-endian base-128 varint (7 bits a byte, high bit = more).
+pub fn push_varint(out: &mut Vec<u8>, mut v: u64) {
+    loop {
+        let low = (v & 0x7F) as u8;
+        v >>= 7;
+        if v == 0 {
+            out.push(low);
+            return;
+        }
+        out.push(low | 0x80);
+    }
+}
+
+/// Reads a [`push_varint`] varint from the front of `bytes`, advancing past it.
+pub fn read_varint(bytes: &mut &[u8]) -> Result<u64> {
+    let mut v: u64 = 0;
     let mut shift = 0;
     loop {
-        let (&b, tail) = rest.split_first().ok_or_else(malformed)?;
-        rest = tail;
+        let Some((&b, tail)) = bytes.split_first() else {
+            bail!("varint cut short");
+        };
+        *bytes = tail;
         if shift > 63 {
-            return Err(malformed());
+            bail!("varint longer than 64 bits");
         }
-        n |= u64::from(b & 0x7F) << shift;
+        v |= u64::from(b & 0x7F) << shift;
         shift += 7;
         if b & 0x80 == 0 {
-            break;
+            return Ok(v);
         }
     }
+}
+
+/// Reads [`encode_rating_pair`]'s form: the whole of `bytes`.
+pub fn decode_rating_pair(bytes: &[u8]) -> Result<RatingPairStats> {
+    let mut rest = bytes;
+    let stats = read_rating_pair(&mut rest)?;
+    if !rest.is_empty() {
+        bail!("rating pair value of {} bytes is malformed", bytes.len());
+    }
+    Ok(stats)
+}
+
+/// Reads one [`encode_rating_pair`] value from the front of `bytes`, advancing past it
+/// (a row block holds many in a row).
+pub fn read_rating_pair(bytes: &mut &[u8]) -> Result<RatingPairStats> {
+    let malformed = |len: usize| anyhow::anyhow!("rating pair value of {len} bytes is malformed");
+    let len = bytes.len();
+    let (&signs, mut rest) = bytes.split_first().ok_or_else(|| malformed(len))?;
+    let n = read_varint(&mut rest).map_err(|_| malformed(len))?;
     let mut sums = [0i128; 3];
     for (bit, sum) in sums.iter_mut().enumerate() {
-        let (&header, tail) = rest.split_first().ok_or_else(malformed)?;
+        let (&header, tail) = rest.split_first().ok_or_else(|| malformed(len))?;
         let (low_zeros, kept) = match header {
             FULL_WIDTH => (0, 16),
             h => ((h >> 4) as usize, (h & 0x0F) as usize),
         };
         if low_zeros + kept > 16 || tail.len() < kept {
-            return Err(malformed());
+            return Err(malformed(len));
         }
         let mut le = [0u8; 16];
         le[low_zeros..low_zeros + kept].copy_from_slice(&tail[..kept]);
@@ -98,9 +121,7 @@ pub fn decode_rating_pair(bytes: &[u8]) -> Result<RatingPairStats> {
             m as i128
         };
     }
-    if !rest.is_empty() {
-        return Err(malformed());
-    }
+    *bytes = rest;
     let n = if signs & 1 != 0 {
         (n as i64).wrapping_neg()
     } else {

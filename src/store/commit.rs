@@ -9,8 +9,8 @@ use rocksdb::{ColumnFamily, WriteBatch, WriteOptions};
 
 use super::erasure::{encode_erased_at, user_name_key, ForgottenUser, META_SCRUB_PENDING};
 use super::ledger::Ledger;
-use super::oriented::{oriented_rating_stats, OrientedRows};
-use super::table_files::SEGMENT_MARKER_KEY;
+use super::oriented::OrientedRows;
+use super::table_files::{write_rating_rows, SEGMENT_MARKER_KEY};
 use super::{
     codec, Access, Store, CF_DIRTY, CF_IDS, CF_ITEMS, CF_META, CF_PAIRS, CF_PUBLISHED, CF_PURCHASE_PAIRS,
     CF_USERS, META_DELIVERED_TO, META_LEDGER,
@@ -245,12 +245,12 @@ impl Store {
         let fresh = !self.ledger.pair_keys_written;
         let pairs = self.cf(CF_PAIRS);
         let rating = OrientedRows::of(&effects.rating_pairs, 0);
-        let mut value = Vec::with_capacity(codec::RATING_PAIR_MAX_LEN);
-        rating.each(|row, other, d| {
-            value.clear();
-            codec::encode_rating_pair(&oriented_rating_stats(row, other, d), &mut value);
-            add_pair(wb, pairs, fresh, codec::pair_row_key(row, other), &value);
-        });
+        let mut emit = |key: &[u8], value: &[u8]| {
+            add_pair(wb, pairs, fresh, key, value);
+            Ok(())
+        };
+        let all = write_rating_rows(&rating, 0..rating.row_count(), &mut emit);
+        all.expect("a write batch takes every key");
     }
 
     /// Adds the co-buyer count deltas to a WriteBatch, as [`Store::write_rating_pairs`].
@@ -263,7 +263,7 @@ impl Store {
                 wb,
                 purchases,
                 fresh,
-                codec::pair_row_key(row, other),
+                &codec::pair_row_key(row, other),
                 &d.to_le_bytes(),
             );
         });
@@ -327,7 +327,7 @@ impl Store {
 
 /// Writes a pair delta: as a plain value into a store that never held a pair (where a put
 /// equals a merge), as a merge operand otherwise.
-fn add_pair(wb: &mut WriteBatch, cf: &ColumnFamily, fresh: bool, key: [u8; 8], value: &[u8]) {
+fn add_pair(wb: &mut WriteBatch, cf: &ColumnFamily, fresh: bool, key: &[u8], value: &[u8]) {
     if fresh {
         wb.put_cf(cf, key, value);
     } else {

@@ -14,11 +14,10 @@ use std::sync::OnceLock;
 use rocksdb::compaction_filter::Decision;
 use rocksdb::MergeOperands;
 
-use super::codec::{
-    decode_count, decode_dirty_mark, decode_rating_pair, encode_dirty_mark, encode_rating_pair,
-    RATING_PAIR_MAX_LEN,
-};
-use crate::model::{DirtyMark, RatingPairStats};
+use super::codec::{decode_count, decode_dirty_mark, encode_dirty_mark};
+use super::row_blocks::{decode_block_into, split_block_key, sum_blocks};
+use super::table_files::SEGMENT_MARKER_KEY;
+use crate::model::DirtyMark;
 
 /// The first malformed merge operand this process met: the family, the key in hex and
 /// what was wrong. Merge operators get no context of their own, so this is process-wide.
@@ -39,18 +38,15 @@ fn refuse(family: &str, key: &[u8], error: impl Display) -> Option<Vec<u8>> {
     None
 }
 
-/// Sums rating pair statistics field by field; a malformed operand fails the merge.
-pub fn merge_rating_pairs(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
-    let mut total = RatingPairStats::default();
-    for bytes in existing.into_iter().chain(operands) {
-        match decode_rating_pair(bytes) {
-            Ok(delta) => total.add(&delta),
-            Err(e) => return refuse("pairs", key, e),
-        }
+/// Adds rating row blocks partner by partner (docs/design.md, "Rows in blocks"); a
+/// malformed operand fails the merge.
+pub fn merge_rating_blocks(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let summed =
+        split_block_key(key).and_then(|(_, first)| sum_blocks(first, existing.into_iter().chain(operands)));
+    match summed {
+        Ok(block) => Some(block),
+        Err(e) => refuse("pairs", key, e),
     }
-    let mut out = Vec::with_capacity(RATING_PAIR_MAX_LEN);
-    encode_rating_pair(&total, &mut out);
-    Some(out)
 }
 
 /// Sums co-buyer counts; a malformed operand fails the merge.
@@ -78,10 +74,19 @@ pub fn merge_dirty(key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands
     combined.map(|m| encode_dirty_mark(&m).to_vec())
 }
 
-/// Drops rating pairs whose every contribution was retracted (n = 0), so erased users and
-/// cut items leave no empty keys behind after compaction.
-pub fn drop_empty_rating_pairs(_level: u32, _key: &[u8], value: &[u8]) -> Decision {
-    keep_unless(decode_rating_pair(value).is_ok_and(|s| s.n == 0))
+/// Drops rating row blocks left without a partner (every contribution to each of its
+/// pairs was retracted), so erased users and cut items leave no empty keys behind after
+/// compaction. The segment marker and anything unreadable are kept (a read reports the
+/// latter).
+pub fn drop_empty_rating_blocks(_level: u32, key: &[u8], value: &[u8]) -> Decision {
+    if key == SEGMENT_MARKER_KEY {
+        return Decision::Keep;
+    }
+    let empty = split_block_key(key).is_ok_and(|(_, first)| {
+        let mut entries = Vec::new();
+        decode_block_into(first, value, &mut entries).is_ok() && entries.iter().all(|(_, s)| s.n == 0)
+    });
+    keep_unless(empty)
 }
 
 /// Drops co-buyer counts that fell to zero.

@@ -9,8 +9,11 @@
 //! [`encode_rating_pair`]. Nothing else differs.
 //!
 //! Version 2 kept a `U` + id → name entry for every user, and an erased user as its name,
-//! id and an empty history; version 3 keeps neither ([`forget_erased_users`]). A store is
-//! migrated one version at a time.
+//! id and an empty history; version 3 keeps neither ([`forget_erased_users`]).
+//!
+//! Version 3 held one rating key per ordered pair; version 4 holds row blocks
+//! ([`pairs_into_blocks`], docs/design.md "Rows in blocks"). A store is migrated one
+//! version at a time.
 //!
 //! The migration never lets this build's merge operator or compaction filter see a
 //! version-1 value: the schema is read from a read-only open (no flush, no compaction),
@@ -27,11 +30,12 @@ use rocksdb::{
     ColumnFamilyDescriptor, DBRecoveryMode, Direction, IteratorMode, MergeOperands, Options, WriteBatch, DB,
 };
 
-use super::codec::{decode_user, encode_rating_pair, id_key};
+use super::codec::{decode_rating_pair, decode_user, encode_rating_pair, id_key, split_pair_key};
 use super::erasure::{encode_erased_at, finish_left_scrub, ErasureKey, META_SCRUB_PENDING};
 use super::errors::OpenError;
 use super::open::read_ledger;
 use super::options::{cf_descriptors, cf_options, db_options};
+use super::row_blocks::BlockCutter;
 use super::{
     db_path, ALL_CFS, CF_IDS, CF_META, CF_PAIRS, CF_USERS, META_LEDGER, META_SCHEMA, SCHEMA_VERSION,
 };
@@ -43,6 +47,9 @@ const FIXED_PAIRS_VERSION: u32 = 1;
 
 /// The layout that kept erased users' names, ids and empty histories.
 const KEPT_ERASED_USERS_VERSION: u32 = 2;
+
+/// The layout with one rating key per ordered pair.
+const PAIR_KEYS_VERSION: u32 = 3;
 
 /// Length of a version-1 rating pair value.
 const FIXED_PAIR_LEN: usize = 8 + 3 * 16;
@@ -98,6 +105,7 @@ pub(super) fn prepare_layout(dir: &Path) -> Result<()> {
         version = match version {
             FIXED_PAIRS_VERSION => migrate_fixed_pairs(dir, &path)?,
             KEPT_ERASED_USERS_VERSION => forget_erased_users(dir, &path)?,
+            PAIR_KEYS_VERSION => pairs_into_blocks(dir, &path)?,
             other => {
                 return Err(OpenError::SchemaMismatch {
                     dir: dir.to_path_buf(),
@@ -274,6 +282,98 @@ fn forget_erased_users(dir: &Path, path: &Path) -> Result<u32> {
     db.write(batch)?;
     finish_left_scrub(&db)?;
     tracing::info!(forgotten, "store migrated to layout version {TO}");
+    Ok(TO)
+}
+
+/// The version-3 merge operator: field-wise sums of compact pair values.
+fn merge_pair_values(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -> Option<Vec<u8>> {
+    let mut sum = RatingPairStats::default();
+    for value in existing.into_iter().chain(operands.iter()) {
+        sum.add(&decode_rating_pair(value).ok()?);
+    }
+    let mut out = Vec::new();
+    encode_rating_pair(&sum, &mut out);
+    Some(out)
+}
+
+/// Rewrites the version-3 rating pair keys (one per ordered pair) as row blocks, deleting
+/// each block's pair keys in the batch that writes it, then records version 4, which it
+/// returns. Block keys (7 bytes) never collide with pair keys (8), so a migration cut
+/// short resumes by walking the pair keys that are left.
+fn pairs_into_blocks(dir: &Path, path: &Path) -> Result<u32> {
+    const TO: u32 = PAIR_KEYS_VERSION + 1;
+    tracing::info!(
+        store = %dir.display(),
+        "store layout version {PAIR_KEYS_VERSION} found: migrating it to version {TO} in place (rating pairs become row blocks)"
+    );
+    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
+        .iter()
+        .map(|&name| {
+            let options = if name == CF_PAIRS {
+                let mut o = Options::default();
+                o.set_merge_operator_associative("simtide_rating_pair_sum", merge_pair_values);
+                o.set_disable_auto_compactions(true);
+                o
+            } else {
+                cf_options(name)
+            };
+            ColumnFamilyDescriptor::new(name, options)
+        })
+        .collect();
+    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
+        .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
+    let pairs = db.cf_handle(CF_PAIRS).expect("pair family exists");
+    let meta = db.cf_handle(CF_META).expect("meta family exists");
+    // Every merge operand folded into one value per pair key by the version-3 operator
+    // (blocks a resumed migration wrote are plain values: nothing to fold).
+    db.compact_range_cf(pairs, None::<&[u8]>, None::<&[u8]>);
+    let total = db
+        .property_int_value_cf(pairs, "rocksdb.estimate-num-keys")?
+        .unwrap_or(0);
+    let mut batch = WriteBatch::default();
+    let (mut block_keys, mut in_batch, mut done) = (Vec::<Box<[u8]>>::new(), 0usize, 0u64);
+    let mut cutter = BlockCutter::default();
+    let emit = |batch: &mut WriteBatch, block_keys: &mut Vec<Box<[u8]>>, key: &[u8], value: &[u8]| {
+        batch.put_cf(pairs, key, value);
+        for old in block_keys.drain(..) {
+            batch.delete_cf(pairs, old);
+        }
+    };
+    for entry in db.iterator_cf(pairs, IteratorMode::Start) {
+        let (key, value) = entry?;
+        let Ok((row, other)) = split_pair_key(&key) else {
+            continue; // a block already rewritten, or a segment marker
+        };
+        let stats = decode_rating_pair(&value).with_context(|| {
+            format!(
+                "{}: rating pair ({row}, {other}) is not in the version-3 form; restore the snapshot taken before the upgrade",
+                dir.display()
+            )
+        })?;
+        let mut emitted = false;
+        cutter.push(row, other, stats, &mut |k: &[u8], v: &[u8]| {
+            emit(&mut batch, &mut block_keys, k, v);
+            emitted = true;
+            Ok::<(), std::convert::Infallible>(())
+        })?;
+        block_keys.push(key);
+        in_batch += 1;
+        if emitted && in_batch >= BATCH_PAIRS {
+            db.write(std::mem::take(&mut batch))?;
+            done += in_batch as u64;
+            in_batch = 0;
+            tracing::info!(done, of_about = total, "rewriting rating pairs as row blocks");
+        }
+    }
+    cutter.flush(&mut |k: &[u8], v: &[u8]| {
+        emit(&mut batch, &mut block_keys, k, v);
+        Ok::<(), std::convert::Infallible>(())
+    })?;
+    done += in_batch as u64;
+    batch.put_cf(meta, META_SCHEMA, TO.to_le_bytes());
+    db.write(batch)?;
+    db.flush_wal(true)?;
+    tracing::info!(pairs = done, "store migrated to layout version {TO}");
     Ok(TO)
 }
 

@@ -35,6 +35,7 @@ mod options;
 mod oriented;
 mod reads;
 pub mod reshard;
+pub mod row_blocks;
 mod rows;
 mod snapshot;
 pub mod staged;
@@ -56,6 +57,7 @@ use ids::ItemDirectory;
 pub use ledger::{FilePosition, Ledger};
 pub use reads::StoreStats;
 pub use rows::{PairRows, SegmentRows};
+pub use table_files::{rating_table_options, RatingTable};
 
 const CF_IDS: &str = "ids";
 const CF_USERS: &str = "users";
@@ -82,10 +84,11 @@ const META_FINGERPRINT: &[u8] = b"stats_fingerprint";
 const META_LEDGER: &[u8] = b"progress";
 const META_DELIVERED_TO: &[u8] = b"delivered_to";
 
-/// Layout version of this build's store. 3: forgotten users leave only a tombstone, and
+/// Layout version of this build's store. 4: rating pairs kept as row blocks
+/// (`row_blocks`); 3: forgotten users leave only a tombstone, and
 /// users have no id → name entry; 2: compact rating pair values
 /// ([`codec::encode_rating_pair`]); version 1 stored them in 56 fixed bytes.
-pub const SCHEMA_VERSION: u32 = 3;
+pub const SCHEMA_VERSION: u32 = 4;
 
 /// An open store.
 pub struct Store {

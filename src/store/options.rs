@@ -64,8 +64,11 @@ pub(super) fn cf_options(name: &str) -> Options {
     o.set_periodic_compaction_seconds(TABLE_FILE_REWRITE_SECONDS);
     match name {
         CF_PAIRS => {
-            o.set_merge_operator_associative("simtide_rating_pair_sum", merge::merge_rating_pairs);
-            o.set_compaction_filter("simtide_drop_empty_rating_pairs", merge::drop_empty_rating_pairs);
+            o.set_merge_operator_associative("simtide_rating_block_sum", merge::merge_rating_blocks);
+            o.set_compaction_filter(
+                "simtide_drop_empty_rating_blocks",
+                merge::drop_empty_rating_blocks,
+            );
             o.set_write_buffer_size(PAIR_WRITE_BUFFER_BYTES);
             o.set_max_write_buffer_number(PAIR_WRITE_BUFFERS);
             o.set_level_zero_file_num_compaction_trigger(PAIR_LEVEL0_FILES);

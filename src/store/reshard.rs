@@ -9,6 +9,7 @@ use anyhow::{bail, Context, Result};
 use rocksdb::{IteratorMode, WriteBatch};
 
 use super::codec::{self, decode_dirty_mark};
+use super::row_blocks::{decode_block_into, encode_block, split_block_key};
 use super::{Ledger, Store, CF_DIRTY, CF_IDS, CF_ITEMS, CF_META, CF_PAIRS, CF_PUBLISHED};
 use super::{CF_PURCHASE_PAIRS, CF_USERS, META_LEDGER};
 use crate::cluster::{owner, ShardSpec};
@@ -63,7 +64,7 @@ fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config)
         .collect();
     let mut summary = ReshardSummary::default();
     for family in [CF_IDS, CF_USERS, CF_ITEMS] {
-        let n = copy_family(by_shard[0], &target, family, |_, _| true)?;
+        let n = copy_family(by_shard[0], &target, family, |_, value| Ok(Some(value.to_vec())))?;
         summary.keys.push((family, n));
     }
     // Ids are the same in every shard (each applied every event in the same order); each
@@ -73,25 +74,42 @@ fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config)
         .map(|i| owner(names.item_name(i), new.shards) == new.shard)
         .collect();
     let kept_after = |item: u32| kept.get(item as usize) == Some(&true);
-    for family in [CF_PAIRS, CF_PURCHASE_PAIRS] {
-        let mut n = 0;
-        for source in &by_shard {
-            n += copy_family(source, &target, family, |key, _| {
-                let Ok((row, other)) = codec::split_pair_key(key) else {
-                    return false;
-                };
-                // A key (row, other) is complete on the old owner of `row`; the new shard
-                // keeps pairs touching its items and every diagonal (BatchEffects::keep_shard).
-                source.owns(row) && (row == other || kept_after(row) || kept_after(other))
-            })?;
-        }
-        summary.keys.push((family, n));
+    // A row is complete on the old owner of the row item; the new shard keeps pairs
+    // touching its items and every diagonal (BatchEffects::keep_shard).
+    let mut ratings = 0;
+    let mut purchases = 0;
+    for source in &by_shard {
+        ratings += copy_family(source, &target, CF_PAIRS, |key, value| {
+            let Ok((row, first)) = split_block_key(key) else {
+                return Ok(None);
+            };
+            if !source.owns(row) {
+                return Ok(None);
+            }
+            let mut entries = Vec::new();
+            decode_block_into(first, value, &mut entries)?;
+            entries.retain(|&(other, _)| kept_after(row) || kept_after(other));
+            let mut block = Vec::new();
+            encode_block(&entries, &mut block);
+            Ok((!entries.is_empty()).then_some(block))
+        })?;
+        purchases += copy_family(source, &target, CF_PURCHASE_PAIRS, |key, value| {
+            let Ok((row, other)) = codec::split_pair_key(key) else {
+                return Ok(None);
+            };
+            let keep = source.owns(row) && (row == other || kept_after(row) || kept_after(other));
+            Ok(keep.then(|| value.to_vec()))
+        })?;
     }
+    summary.keys.push((CF_PAIRS, ratings));
+    summary.keys.push((CF_PURCHASE_PAIRS, purchases));
     let mut published = 0;
     let mut dirty = 0;
     for source in &by_shard {
-        published += copy_family(source, &target, CF_PUBLISHED, |key, _| {
-            codec::split_signal_item_key(key).is_ok_and(|(_, item)| source.owns(item) && kept_after(item))
+        published += copy_family(source, &target, CF_PUBLISHED, |key, value| {
+            let keep = codec::split_signal_item_key(key)
+                .is_ok_and(|(_, item)| source.owns(item) && kept_after(item));
+            Ok(keep.then(|| value.to_vec()))
         })?;
         // Own-list marks of the new shard's items from their old owners; a mark that
         // expands to neighbors from wherever it is still pending (rescoring twice is
@@ -99,9 +117,10 @@ fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config)
         dirty += copy_family(source, &target, CF_DIRTY, |key, value| {
             let (Ok((_, item)), Ok(mark)) = (codec::split_signal_item_key(key), decode_dirty_mark(value))
             else {
-                return false;
+                return Ok(None);
             };
-            mark.scope == DirtyScope::WithNeighbors || (source.owns(item) && kept_after(item))
+            let keep = mark.scope == DirtyScope::WithNeighbors || (source.owns(item) && kept_after(item));
+            Ok(keep.then(|| value.to_vec()))
         })?;
     }
     summary.keys.push((CF_PUBLISHED, published));
@@ -126,14 +145,14 @@ fn fill_new_shard(sources: &[Store], old: ShardSpec, to: &Path, config: &Config)
     Ok(summary)
 }
 
-/// Copies the entries of `family` that `keep(key, value)` accepts, as plain values (the
-/// target is fresh, and what a source iterator returns is already merged); returns how
-/// many.
+/// Copies the entries of `family` for which `pick(key, value)` gives a value to write
+/// (the value itself, or what of it the new shard keeps), as plain values (the target is
+/// fresh, and what a source iterator returns is already merged); returns how many.
 fn copy_family(
     source: &Store,
     target: &Store,
     family: &'static str,
-    keep: impl Fn(&[u8], &[u8]) -> bool,
+    pick: impl Fn(&[u8], &[u8]) -> Result<Option<Vec<u8>>>,
 ) -> Result<u64> {
     let cf = target.cf(family);
     let mut wb = WriteBatch::default();
@@ -141,9 +160,9 @@ fn copy_family(
     for entry in source.db.iterator_cf(source.cf(family), IteratorMode::Start) {
         let (key, value) =
             entry.with_context(|| format!("cannot read {family} of {}", source.dir().display()))?;
-        if !keep(&key, &value) {
+        let Some(value) = pick(&key, &value)? else {
             continue;
-        }
+        };
         if family == CF_DIRTY {
             wb.merge_cf(cf, &key, &value);
         } else {

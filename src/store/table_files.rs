@@ -18,8 +18,10 @@ use rocksdb::{IngestExternalFileOptions, SstFileWriter, WriteBatch, DB};
 use super::open::read_ledger;
 use super::options::cf_options;
 use super::oriented::{oriented_rating_stats, OrientedRows};
+use super::row_blocks::BlockCutter;
 use super::{codec, Store, CF_PAIRS, CF_PURCHASE_PAIRS};
 use crate::engine::{BatchEffects, RatingPairDelta};
+use crate::model::RatingPairStats;
 
 /// Key of the segment marker: sorts after every pair key (rows are ids below u32::MAX).
 pub(super) const SEGMENT_MARKER_KEY: [u8; 9] = [0xFF; 9];
@@ -81,19 +83,84 @@ pub(super) fn clear_leftovers(store_dir: &Path) -> Result<()> {
     Ok(())
 }
 
+/// Where a table writer hands each (key, value): a put into a store that never held a
+/// pair, a merge operand otherwise.
+type Emit<'w> = dyn FnMut(&[u8], &[u8]) -> Result<(), rocksdb::Error> + 'w;
+
 /// One pair family's rows, ready to be written.
 struct FamilyRows<'a, T> {
     family: &'static str,
     rows: OrientedRows<'a, T>,
-    encode: fn(u32, u32, &T, &mut Vec<u8>),
+    /// Hands the entries of a range of rows, in key order, to `emit` as keys and values.
+    write: fn(&OrientedRows<'a, T>, Range<u32>, &mut Emit<'_>) -> Result<(), rocksdb::Error>,
 }
 
-fn encode_rating(row: u32, other: u32, d: &RatingPairDelta, out: &mut Vec<u8>) {
-    codec::encode_rating_pair(&oriented_rating_stats(row, other, d), out);
+/// Rating rows as row blocks (docs/design.md, "Rows in blocks").
+pub(super) fn write_rating_rows(
+    rows: &OrientedRows<'_, RatingPairDelta>,
+    range: Range<u32>,
+    emit: &mut Emit<'_>,
+) -> Result<(), rocksdb::Error> {
+    let mut cutter = BlockCutter::default();
+    rows.for_each_in(range, |row, other, d| {
+        cutter.push(row, other, oriented_rating_stats(row, other, d), emit)
+    })?;
+    cutter.flush(emit)
 }
 
-fn encode_count(_row: u32, _other: u32, d: &i64, out: &mut Vec<u8>) {
-    out.extend_from_slice(&d.to_le_bytes());
+/// Co-buyer counts, one key per ordered pair.
+fn write_count_rows(
+    rows: &OrientedRows<'_, i64>,
+    range: Range<u32>,
+    emit: &mut Emit<'_>,
+) -> Result<(), rocksdb::Error> {
+    rows.for_each_in(range, |row, other, d| {
+        emit(&codec::pair_row_key(row, other), &d.to_le_bytes())
+    })
+}
+
+/// A table file of rating row blocks written row by row, for a segment whose rows are
+/// summed and written in one pass (docs/design.md, "Bulk backfill"). Rows must come in
+/// ascending order, each with its partners ascending.
+pub struct RatingTable<'o> {
+    writer: SstFileWriter<'o>,
+    path: PathBuf,
+    fresh: bool,
+    cutter: BlockCutter,
+    /// Rows written with at least one partner.
+    written: bool,
+}
+
+impl RatingTable<'_> {
+    /// Adds one row's entries (partners ascending, none empty).
+    pub fn add_row(&mut self, row: u32, entries: &[(u32, RatingPairStats)]) -> Result<()> {
+        let (writer, fresh) = (&mut self.writer, self.fresh);
+        let mut emit = |key: &[u8], value: &[u8]| put_or_merge(writer, fresh, key, value);
+        for (other, stats) in entries {
+            self.cutter.push(row, *other, *stats, &mut emit)?;
+        }
+        self.cutter.flush(&mut emit)?;
+        self.written |= !entries.is_empty();
+        Ok(())
+    }
+}
+
+/// Options of the rating family's table files, which [`RatingTable`]s borrow.
+pub fn rating_table_options() -> rocksdb::Options {
+    cf_options(CF_PAIRS)
+}
+
+fn put_or_merge(
+    writer: &mut SstFileWriter<'_>,
+    fresh: bool,
+    key: &[u8],
+    value: &[u8],
+) -> Result<(), rocksdb::Error> {
+    if fresh {
+        writer.put(key, value)
+    } else {
+        writer.merge(key, value)
+    }
 }
 
 impl Store {
@@ -127,13 +194,19 @@ impl Store {
         let rating = FamilyRows {
             family: CF_PAIRS,
             rows: OrientedRows::of(&effects.rating_pairs, 0),
-            encode: encode_rating,
+            write: write_rating_rows,
         };
         self.ingest_family(rating, segment_end, &[])?;
+        self.ingest_purchase_pairs(effects, segment_end)
+    }
+
+    /// Writes the segment's co-buyer counts as table files and ingests them (skipped when
+    /// the family already holds this segment).
+    pub fn ingest_purchase_pairs(&self, effects: &BatchEffects, segment_end: u64) -> Result<()> {
         let purchase = FamilyRows {
             family: CF_PURCHASE_PAIRS,
             rows: OrientedRows::of(&effects.purchase_pairs, 0),
-            encode: encode_count,
+            write: write_count_rows,
         };
         self.ingest_family(purchase, segment_end, &[])
     }
@@ -151,7 +224,7 @@ impl Store {
         let rating = FamilyRows {
             family: CF_PAIRS,
             rows: OrientedRows::of(&effects.rating_pairs, 0),
-            encode: encode_rating,
+            write: write_rating_rows,
         };
         self.ingest_family(rating, segment_end, rest)
     }
@@ -203,7 +276,7 @@ impl Store {
         std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
         let fresh = !self.ledger.pair_keys_written;
         let parts = split_rows(&family.rows, file_count(family.rows.len()));
-        let mut paths: Vec<PathBuf> = (0..parts.len())
+        let paths: Vec<PathBuf> = (0..parts.len())
             .map(|i| dir.join(format!("{}-{segment_end}-{i}.sst", family.family)))
             .collect();
         let family = &family;
@@ -217,18 +290,86 @@ impl Store {
                 .into_iter()
                 .try_for_each(|w| w.join().expect("table writers do not panic"))
         })?;
-        let marker_path = dir.join(format!("{}-{segment_end}-marker.sst", family.family));
+        self.ingest_with_marker(family.family, paths, segment_end, rest)
+    }
+
+    /// Ingests `paths` into `family` together with the segment marker (carrying `rest`),
+    /// in one atomic step.
+    fn ingest_with_marker(
+        &self,
+        family: &str,
+        mut paths: Vec<PathBuf>,
+        segment_end: u64,
+        rest: &[u8],
+    ) -> Result<()> {
+        let marker_path = ingest_dir(&self.dir).join(format!("{family}-{segment_end}-marker.sst"));
         let marker = SegmentMarker {
             end: segment_end,
             rest,
         };
-        write_marker(family.family, &marker, &marker_path)?;
+        write_marker(family, &marker, &marker_path)?;
         paths.push(marker_path);
         let mut opts = IngestExternalFileOptions::default();
         opts.set_move_files(true);
         self.db
-            .ingest_external_file_cf_opts(self.cf(family.family), &opts, paths)
-            .with_context(|| format!("cannot ingest the {} table files", family.family))
+            .ingest_external_file_cf_opts(self.cf(family), &opts, paths)
+            .with_context(|| format!("cannot ingest the {family} table files"))
+    }
+
+    /// Opens `parts` rating table files for a segment whose rows are summed and written
+    /// in one pass, each for a consecutive range of rows; `None` when the family already
+    /// holds this segment (a rerun after a kill between ingestion and commit).
+    pub fn open_rating_tables<'o>(
+        &self,
+        options: &'o rocksdb::Options,
+        segment_end: u64,
+        parts: usize,
+    ) -> Result<Option<Vec<RatingTable<'o>>>> {
+        if self.segment_marker(CF_PAIRS)? == Some(segment_end) {
+            return Ok(None);
+        }
+        let dir = ingest_dir(&self.dir);
+        std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
+        let fresh = !self.ledger.pair_keys_written;
+        (0..parts)
+            .map(|i| {
+                let path = dir.join(format!("{CF_PAIRS}-{segment_end}-{i}.sst"));
+                let writer = SstFileWriter::create(options);
+                writer
+                    .open(&path)
+                    .with_context(|| format!("cannot create table file {}", path.display()))?;
+                Ok(RatingTable {
+                    writer,
+                    path,
+                    fresh,
+                    cutter: BlockCutter::default(),
+                    written: false,
+                })
+            })
+            .collect::<Result<Vec<_>>>()
+            .map(Some)
+    }
+
+    /// Finishes the rating table files of [`Store::open_rating_tables`] and ingests them
+    /// with the segment marker. Files that received no row are left out.
+    pub fn ingest_rating_tables(&self, tables: Vec<RatingTable<'_>>, segment_end: u64) -> Result<()> {
+        let mut paths = Vec::new();
+        for mut table in tables {
+            if table.written {
+                table
+                    .writer
+                    .finish()
+                    .with_context(|| format!("cannot finish table file {}", table.path.display()))?;
+                paths.push(table.path);
+            } else {
+                drop(table.writer);
+                let _ = std::fs::remove_file(&table.path);
+            }
+        }
+        if paths.is_empty() {
+            return Ok(());
+        }
+        self.ingest_with_marker(CF_PAIRS, paths, segment_end, &[])
     }
 }
 
@@ -275,17 +416,8 @@ fn write_table<T>(family: &FamilyRows<'_, T>, rows: Range<u32>, path: &Path, fre
     writer
         .open(path)
         .with_context(|| format!("cannot create table file {}", path.display()))?;
-    let mut value = Vec::new();
-    family.rows.for_each_in(rows, |row, other, d| {
-        let key = codec::pair_row_key(row, other);
-        value.clear();
-        (family.encode)(row, other, d, &mut value);
-        if fresh {
-            writer.put(key, &value)
-        } else {
-            writer.merge(key, &value)
-        }
-    })?;
+    let mut emit = |key: &[u8], value: &[u8]| put_or_merge(&mut writer, fresh, key, value);
+    (family.write)(&family.rows, rows, &mut emit)?;
     writer
         .finish()
         .with_context(|| format!("cannot finish table file {}", path.display()))

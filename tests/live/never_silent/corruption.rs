@@ -62,7 +62,7 @@ fn a_malformed_merge_operand_fails_reads_as_corruption_named_on_readyz() {
     assert!(status.success());
     let key = {
         let s = Store::open_as_stored(&store).unwrap();
-        simtide::store::codec::pair_row_key(s.item_id("rake").unwrap(), s.item_id("hoe").unwrap())
+        simtide::store::row_blocks::block_key(s.item_id("rake").unwrap(), s.item_id("hoe").unwrap())
     };
     write_raw_operand(&store, "pairs", &key, b"\xff");
     let hex: String = key.iter().map(|b| format!("{b:02x}")).collect();

@@ -24,15 +24,25 @@ struct FlatItem<T> {
     value: T,
 }
 
-/// Where an item occurs: its place in the flattened sets, the end of its set there, and
-/// the set's sign. Everything the partner scan needs, so an occurrence costs one jump in
-/// memory rather than one per array (the profile on the 5-million-rating set showed those
-/// jumps, not the sums, as the cost).
+/// Where an item occurs: its place in the flattened sets, the bounds of its set there,
+/// and the set's sign. Everything the partner scan needs, so an occurrence costs one jump
+/// in memory rather than one per array (the profile on the 5-million-rating set showed
+/// those jumps, not the sums, as the cost).
 #[derive(Clone, Copy, Default)]
 struct Occurrence {
     at: u32,
+    set_start: u32,
     set_end: u32,
     sign: i64,
+}
+
+/// Which partners a row is summed over.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum Partners {
+    /// Only partners with a higher id: each unordered pair once, under (lo, hi).
+    Higher,
+    /// Every partner: each pair under both orders, oriented to the row.
+    All,
 }
 
 /// Deltas of every pair the sets touch with at least one item `kept` accepts, as (lo, hi,
@@ -53,63 +63,25 @@ fn aggregate_pairs_sharing<T: Copy + Sync, S: PairSum<T> + Send>(
     kept: &dyn Fn(u32) -> bool,
     threads: fn(u64) -> usize,
 ) -> (Vec<(u32, u32, S)>, u64) {
-    let mut items: Vec<u32> = sets.iter().flat_map(|s| s.items.iter().copied()).collect();
-    items.sort_unstable();
-    items.dedup();
-    let kept: Vec<bool> = items.iter().map(|&item| kept(item)).collect();
-    let local = |item: u32| items.binary_search(&item).expect("item of a set") as u32;
-
-    let mut flat: Vec<FlatItem<T>> = Vec::with_capacity(sets.iter().map(|s| s.items.len()).sum());
-    let mut starts = vec![0usize; items.len() + 1];
-    for set in sets {
-        for ((&item, &changed), &value) in set.items.iter().zip(&set.changed).zip(&set.values) {
-            let l = local(item);
-            starts[l as usize + 1] += 1;
-            flat.push(FlatItem {
-                local: l,
-                changed,
-                value,
-            });
-        }
-    }
-    for i in 0..items.len() {
-        starts[i + 1] += starts[i];
-    }
-    // Inverted index: for each local item, where it occurs in the flattened sets.
-    let mut fill = starts.clone();
-    let mut occurrences = vec![Occurrence::default(); flat.len()];
-    let mut set_start = 0usize;
-    for set in sets {
-        let set_end = set_start + set.items.len();
-        for (offset, entry) in flat[set_start..set_end].iter().enumerate() {
-            let l = entry.local as usize;
-            occurrences[fill[l]] = Occurrence {
-                at: (set_start + offset) as u32,
-                set_end: set_end as u32,
-                sign: set.sign,
-            };
-            fill[l] += 1;
-        }
-        set_start = set_end;
-    }
-
-    let index = PartnerIndex {
-        items: &items,
-        kept: &kept,
-        starts: &starts,
-        occurrences: &occurrences,
-        flat: &flat,
+    let index = RowIndex::with_partners(sets, kept, Partners::Higher);
+    let ranges = index.split_rows(threads(index.total_work()));
+    let sum_range = |rows: std::ops::Range<usize>| {
+        let mut out = Vec::new();
+        let updates = index.visit_rows::<S, std::convert::Infallible>(rows, |a, row| {
+            out.extend(row.iter().map(|&(b, s)| (a, b, s)));
+            Ok(())
+        });
+        let Ok(updates) = updates;
+        (out, updates)
     };
-    let work = index.total_work();
-    let ranges = index.split_rows(work, threads(work));
     let mut parts: Vec<SummedRows<S>> = if ranges.len() == 1 {
-        vec![index.sum_rows::<S>(ranges[0].clone())]
+        vec![sum_range(ranges[0].clone())]
     } else {
         std::thread::scope(|scope| {
-            let index = &index;
+            let sum_range = &sum_range;
             let workers: Vec<_> = ranges
                 .into_iter()
-                .map(|rows| scope.spawn(move || index.sum_rows::<S>(rows)))
+                .map(|rows| scope.spawn(move || sum_range(rows)))
                 .collect();
             workers
                 .into_iter()
@@ -139,38 +111,108 @@ fn sharing_threads(work: u64) -> usize {
     (work / UPDATES_PER_THREAD_MIN).clamp(1, cores) as usize
 }
 
-/// The flattened sets and where each item occurs in them: what summing a row reads.
-struct PartnerIndex<'a, T> {
-    items: &'a [u32],
+/// The contribution sets of a batch flattened, and where each item occurs in them:
+/// everything summing a row reads. Built once per batch; rows are then independent, so
+/// consecutive ranges of them can be summed on different threads.
+pub struct RowIndex<T> {
+    items: Vec<u32>,
     /// Whether pairs of each local item are summed whatever their partner.
-    kept: &'a [bool],
-    starts: &'a [usize],
-    occurrences: &'a [Occurrence],
-    flat: &'a [FlatItem<T>],
+    kept: Vec<bool>,
+    starts: Vec<usize>,
+    occurrences: Vec<Occurrence>,
+    flat: Vec<FlatItem<T>>,
+    partners: Partners,
 }
 
-impl<T: Copy> PartnerIndex<'_, T> {
+impl<T: Copy> RowIndex<T> {
+    /// Indexes `sets` for summing whole rows under both orders (docs/design.md, "Bulk
+    /// backfill"): each row against every partner, oriented to the row, pairs touching no
+    /// item `kept` accepts left out.
+    pub fn both_orders(sets: &[ContributionSet<T>], kept: &dyn Fn(u32) -> bool) -> Self {
+        Self::with_partners(sets, kept, Partners::All)
+    }
+
+    fn with_partners(sets: &[ContributionSet<T>], kept: &dyn Fn(u32) -> bool, partners: Partners) -> Self {
+        let mut items: Vec<u32> = sets.iter().flat_map(|s| s.items.iter().copied()).collect();
+        items.sort_unstable();
+        items.dedup();
+        let kept: Vec<bool> = items.iter().map(|&item| kept(item)).collect();
+        let local = |item: u32| items.binary_search(&item).expect("item of a set") as u32;
+
+        let mut flat: Vec<FlatItem<T>> = Vec::with_capacity(sets.iter().map(|s| s.items.len()).sum());
+        let mut starts = vec![0usize; items.len() + 1];
+        for set in sets {
+            for ((&item, &changed), &value) in set.items.iter().zip(&set.changed).zip(&set.values) {
+                let l = local(item);
+                starts[l as usize + 1] += 1;
+                flat.push(FlatItem {
+                    local: l,
+                    changed,
+                    value,
+                });
+            }
+        }
+        for i in 0..items.len() {
+            starts[i + 1] += starts[i];
+        }
+        // Inverted index: for each local item, where it occurs in the flattened sets.
+        let mut fill = starts.clone();
+        let mut occurrences = vec![Occurrence::default(); flat.len()];
+        let mut set_start = 0usize;
+        for set in sets {
+            let set_end = set_start + set.items.len();
+            for (offset, entry) in flat[set_start..set_end].iter().enumerate() {
+                let l = entry.local as usize;
+                occurrences[fill[l]] = Occurrence {
+                    at: (set_start + offset) as u32,
+                    set_start: set_start as u32,
+                    set_end: set_end as u32,
+                    sign: set.sign,
+                };
+                fill[l] += 1;
+            }
+            set_start = set_end;
+        }
+        RowIndex {
+            items,
+            kept,
+            starts,
+            occurrences,
+            flat,
+            partners,
+        }
+    }
+
+    /// Rows (items) indexed.
+    pub fn row_count(&self) -> usize {
+        self.items.len()
+    }
+
     /// Partners scanned for row `a` (an upper bound of its pair contributions).
     fn row_work(&self, a: usize) -> u64 {
         self.occurrences[self.starts[a]..self.starts[a + 1]]
             .iter()
-            .map(|o| u64::from(o.set_end - o.at - 1))
+            .map(|o| match self.partners {
+                Partners::Higher => u64::from(o.set_end - o.at - 1),
+                Partners::All => u64::from(o.set_end - o.set_start - 1),
+            })
             .sum()
     }
 
-    fn total_work(&self) -> u64 {
+    /// Partner scans of every row: the work of summing the batch.
+    pub fn total_work(&self) -> u64 {
         (0..self.items.len()).map(|a| self.row_work(a)).sum()
     }
 
-    /// Consecutive row ranges of about equal work (of `total` in all), `parts` at most,
-    /// covering every row. Rows are independent and each range's output is sorted, so the
-    /// ranges' outputs joined in order are sorted too.
-    fn split_rows(&self, total: u64, parts: usize) -> Vec<std::ops::Range<usize>> {
+    /// Consecutive row ranges of about equal work, `parts` at most, covering every row.
+    /// Rows are independent and each range's output is in key order, so the ranges'
+    /// outputs joined in order are in key order too.
+    pub fn split_rows(&self, parts: usize) -> Vec<std::ops::Range<usize>> {
         let rows = self.items.len();
         if parts <= 1 {
             return std::iter::once(0..rows).collect();
         }
-        let share = total.div_ceil(parts as u64).max(1);
+        let share = self.total_work().div_ceil(parts as u64).max(1);
         let mut ranges = Vec::with_capacity(parts);
         let (mut start, mut work) = (0usize, 0u64);
         for a in 0..rows {
@@ -184,20 +226,31 @@ impl<T: Copy> PartnerIndex<'_, T> {
         ranges
     }
 
-    /// Sums rows `rows` (Gustavson: row `a` accumulated densely over its partners).
-    fn sum_rows<S: PairSum<T>>(&self, rows: std::ops::Range<usize>) -> SummedRows<S> {
-        let items = self.items;
+    /// Sums the rows of `rows` (Gustavson: row `a` accumulated densely over its partners)
+    /// and hands each non-empty one to `visit` as (item, [(partner, delta)]) with partners
+    /// ascending and zero deltas left out; returns the pair contributions summed. The
+    /// first error of `visit` stops the scan.
+    pub fn visit_rows<S: PairSum<T>, E>(
+        &self,
+        rows: std::ops::Range<usize>,
+        mut visit: impl FnMut(u32, &[(u32, S)]) -> Result<(), E>,
+    ) -> Result<u64, E> {
+        let items = &self.items;
         let mut acc = vec![S::default(); items.len()];
         let mut touched = vec![false; items.len()];
         let mut row: Vec<u32> = Vec::new();
-        let mut out = Vec::new();
+        let mut out: Vec<(u32, S)> = Vec::new();
         let mut updates = 0u64;
         for a in rows {
+            let row_kept = self.kept[a];
             for occ in &self.occurrences[self.starts[a]..self.starts[a + 1]] {
                 let (at, end) = (occ.at as usize, occ.set_end as usize);
                 let this = &self.flat[at];
-                let row_kept = self.kept[a];
-                for b in &self.flat[at + 1..end] {
+                let lower = match self.partners {
+                    Partners::Higher => &self.flat[at..at],
+                    Partners::All => &self.flat[occ.set_start as usize..at],
+                };
+                for b in lower.iter().chain(&self.flat[at + 1..end]) {
                     if (this.changed || b.changed) && (row_kept || self.kept[b.local as usize]) {
                         let bl = b.local as usize;
                         if !touched[bl] {
@@ -213,14 +266,18 @@ impl<T: Copy> PartnerIndex<'_, T> {
             for &b in &row {
                 let b = b as usize;
                 if acc[b] != S::default() {
-                    out.push((items[a], items[b], acc[b]));
+                    out.push((items[b], acc[b]));
                 }
                 acc[b] = S::default();
                 touched[b] = false;
             }
             row.clear();
+            if !out.is_empty() {
+                visit(items[a], &out)?;
+                out.clear();
+            }
         }
-        (out, updates)
+        Ok(updates)
     }
 }
 

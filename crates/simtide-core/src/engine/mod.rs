@@ -165,7 +165,20 @@ pub struct BatchEffects {
 }
 
 /// A rating taking part in pairs: its deviation d = r − c_u, and d² in fixed point.
-type Deviation = (f64, i128);
+pub type Deviation = (f64, i128);
+
+impl RatingPairDelta {
+    /// The delta as the sums stored under a row, for a delta summed oriented to the row
+    /// ([`aggregate::RowIndex::both_orders`]: `s_lo` is the row's norm).
+    pub fn as_row_stats(&self) -> crate::model::RatingPairStats {
+        crate::model::RatingPairStats {
+            n: self.n,
+            dot: self.dot,
+            s_row: self.s_lo,
+            s_other: self.s_hi,
+        }
+    }
+}
 
 impl PairSum<Deviation> for RatingPairDelta {
     fn add(&mut self, sign: i64, lo: &Deviation, hi: &Deviation) {
@@ -265,6 +278,24 @@ pub fn apply_batch_for_shard(
     statuses: &mut HashMap<u32, ItemStatus>,
     owns: &dyn Fn(u32) -> bool,
 ) -> BatchEffects {
+    let (mut fx, rating_sides) = apply_batch_unsummed(settings, events, users, statuses, owns);
+    let (rating_pairs, rating_updates) = aggregate_pairs::<Deviation, RatingPairDelta>(&rating_sides, owns);
+    fx.rating_pairs = rating_pairs;
+    fx.pair_updates += rating_updates;
+    fx
+}
+
+/// [`apply_batch_for_shard`] without summing the rating pairs: the effects (purchase pairs
+/// summed, `pair_updates` counting only theirs) and the before and after sides of every
+/// touched user's rating contribution, for the caller to sum row by row
+/// ([`aggregate::RowIndex::both_orders`], docs/design.md "Bulk backfill").
+pub fn apply_batch_unsummed(
+    settings: &EngineSettings,
+    events: &[Sequenced],
+    users: &mut HashMap<u32, UserState>,
+    statuses: &mut HashMap<u32, ItemStatus>,
+    owns: &dyn Fn(u32) -> bool,
+) -> (BatchEffects, Vec<ContributionSet<Deviation>>) {
     let mut fx = BatchEffects::default();
     let mut before: FxHashMap<u32, (Contribution, f64)> = FxHashMap::default();
     for ev in events {
@@ -303,7 +334,6 @@ pub fn apply_batch_for_shard(
         settle_user(settings, state, old, old_center, &mut sets, &mut fx);
     }
     fx.touched_users = touched;
-    let (rating_pairs, rating_updates) = aggregate_pairs::<Deviation, RatingPairDelta>(&sets.ratings, owns);
     let (co_pairs, purchase_updates) = aggregate_pairs::<(), CoBuyers>(&sets.purchases, owns);
     let mut buyers: BTreeMap<u32, i64> = BTreeMap::new();
     for set in &sets.purchases {
@@ -311,7 +341,6 @@ pub fn apply_batch_for_shard(
             *buyers.entry(*item).or_default() += set.sign;
         }
     }
-    fx.rating_pairs = rating_pairs;
     fx.purchase_pairs = co_pairs.into_iter().map(|(a, b, c)| (a, b, c.0)).collect();
     fx.purchase_pairs.extend(
         buyers
@@ -320,8 +349,8 @@ pub fn apply_batch_for_shard(
             .map(|(a, d)| (a, a, d)),
     );
     fx.purchase_pairs.sort_unstable_by_key(|&(a, b, _)| (a, b));
-    fx.pair_updates = rating_updates + purchase_updates;
-    fx
+    fx.pair_updates = purchase_updates;
+    (fx, sets.ratings)
 }
 
 /// Records the difference of the user's contributions before and after the batch for

@@ -1,0 +1,202 @@
+//! One pass over the rows of a staged file segment (docs/design.md, "Bulk backfill"):
+//! each core sums a consecutive range of rows under both orders, writes them as row
+//! blocks into a table file of its own and — for the run's last segment — scores each
+//! row into its top-k list at once, adding the stored row first when the store already
+//! held pairs. The segment's pair sums are never held as a list of pairs.
+
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::Duration;
+
+use anyhow::Result;
+use rustc_hash::{FxHashMap, FxHashSet};
+
+use crate::engine::aggregate::RowIndex;
+use crate::engine::{Deviation, RatingPairDelta};
+use crate::model::RatingPairStats;
+use crate::observability::meter::Meter;
+use crate::score::ListSettings;
+use crate::store::row_blocks::add_sorted;
+use crate::store::{rating_table_options, PairRows, RatingTable, Store};
+use crate::topk::{rating_list, Exclusions, NameOrder, ScoredRow};
+
+/// What the pass needs to score rows into lists: the same settings, exclusions and name
+/// order the publication that follows uses, so a list scored here is the list it would
+/// compute from the store.
+pub struct ListScoring<'a> {
+    /// List length, support, damping, minimum score.
+    pub settings: &'a ListSettings,
+    /// Items that may not be listed.
+    pub unavailable: &'a FxHashSet<u32>,
+    /// Ties broken by name.
+    pub names: &'a NameOrder,
+}
+
+/// What a pass did.
+pub struct PassOutcome {
+    /// Pair contributions summed (each pair counted once, though summed in both rows).
+    pub updates: u64,
+    /// Whether it wrote any row (false when the store already held this segment: a
+    /// rerun after a kill between ingestion and commit).
+    pub rows_written: bool,
+    /// The rating lists it scored, by item.
+    pub lists: FxHashMap<u32, ScoredRow>,
+}
+
+/// What one core's share of the pass returns: contributions summed, its table, lists.
+type Share<'o> = (u64, Option<RatingTable<'o>>, Vec<(u32, ScoredRow)>);
+
+/// Sums, writes and (with `scoring`) scores every row of `index` for the segment ending
+/// at `segment_end`, ingesting the rows with the segment marker. `meter` follows rows.
+pub fn sum_write_and_score(
+    store: &Store,
+    index: &RowIndex<Deviation>,
+    segment_end: u64,
+    scoring: Option<&ListScoring<'_>>,
+    mut meter: Meter,
+) -> Result<PassOutcome> {
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let ranges = index.split_rows(cores);
+    let options = rating_table_options();
+    let tables = store.open_rating_tables(&options, segment_end, ranges.len())?;
+    let rows_written = tables.is_some();
+    // The stored row is read when the store held pairs before, or already holds this
+    // segment's (a rerun); the segment's row is added unless it is already stored.
+    let read_stored = store.ledger().pair_keys_written || !rows_written;
+    let mut tables: Vec<Option<RatingTable<'_>>> = match tables {
+        Some(t) => t.into_iter().map(Some).collect(),
+        None => ranges.iter().map(|_| None).collect(),
+    };
+    meter.set_total(index.row_count() as u64);
+    let done = AtomicU64::new(0);
+    let meter_ref = &mut meter;
+    let shares: Vec<Result<Share<'_>>> = std::thread::scope(|scope| {
+        let workers: Vec<_> = ranges
+            .into_iter()
+            .zip(tables.drain(..))
+            .map(|(rows, mut table)| {
+                let done = &done;
+                scope.spawn(move || -> Result<Share<'_>> {
+                    let mut lists = Vec::new();
+                    let mut entries: Vec<(u32, RatingPairStats)> = Vec::new();
+                    let updates = index.visit_rows::<RatingPairDelta, anyhow::Error>(rows, |item, row| {
+                        entries.clear();
+                        entries.extend(row.iter().map(|(other, d)| (*other, d.as_row_stats())));
+                        if let Some(table) = table.as_mut() {
+                            table.add_row(item, &entries)?;
+                        }
+                        if let Some(scoring) =
+                            scoring.filter(|_| store.owns(item) || item as usize >= store.item_count())
+                        {
+                            let row = whole_row(store, item, &entries, read_stored, rows_written)?;
+                            let excluded = Exclusions {
+                                unavailable: scoring.unavailable,
+                            };
+                            lists.push((
+                                item,
+                                rating_list(item, row, scoring.settings, &excluded, scoring.names),
+                            ));
+                        }
+                        done.fetch_add(1, Ordering::Relaxed);
+                        Ok(())
+                    })?;
+                    Ok((updates, table, lists))
+                })
+            })
+            .collect();
+        while !workers.iter().all(|w| w.is_finished()) {
+            meter_ref.update(done.load(Ordering::Relaxed), "rows summed, written and scored");
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        workers
+            .into_iter()
+            .map(|w| w.join().expect("row summing does not panic"))
+            .collect()
+    });
+    let mut outcome = PassOutcome {
+        updates: 0,
+        rows_written,
+        lists: FxHashMap::default(),
+    };
+    let mut finished = Vec::new();
+    for share in shares {
+        let (updates, table, lists) = share?;
+        outcome.updates += updates;
+        finished.extend(table);
+        outcome.lists.extend(lists);
+    }
+    // Both orders were summed: every contribution was counted in each of its two rows.
+    outcome.updates /= 2;
+    if rows_written {
+        store.ingest_rating_tables(finished, segment_end)?;
+    }
+    meter.finish();
+    Ok(outcome)
+}
+
+/// The row as the store will hold it after this segment: the stored row plus the
+/// segment's, or either alone; pairs without co-raters left out.
+fn whole_row(
+    store: &Store,
+    item: u32,
+    segment: &[(u32, RatingPairStats)],
+    read_stored: bool,
+    add_segment: bool,
+) -> Result<Vec<(u32, RatingPairStats)>> {
+    if !read_stored {
+        return Ok(segment.to_vec());
+    }
+    let stored = store.rating_row(item)?;
+    if !add_segment {
+        return Ok(stored);
+    }
+    let mut row = Vec::with_capacity(stored.len() + segment.len());
+    add_sorted(&stored, segment, &mut row);
+    row.retain(|(_, s)| s.n != 0);
+    Ok(row)
+}
+
+/// Rows for the publication after a one-pass segment: the store's, with the rating lists
+/// the pass scored handed over instead of scored again.
+pub struct ScoredInPass<'a> {
+    /// The store, for everything the pass did not score.
+    pub store: &'a Store,
+    /// Lists the pass scored.
+    pub lists: FxHashMap<u32, ScoredRow>,
+}
+
+impl PairRows for ScoredInPass<'_> {
+    fn rating_row(&self, item: u32) -> Result<Vec<(u32, RatingPairStats)>> {
+        self.store.rating_row(item)
+    }
+
+    fn purchase_row(&self, item: u32) -> Result<Vec<(u32, i64)>> {
+        self.store.purchase_row(item)
+    }
+
+    fn buyer_counts(&self, items: &[u32]) -> Result<Vec<i64>> {
+        self.store.buyer_counts(items)
+    }
+
+    fn total_buyers(&self) -> i64 {
+        self.store.ledger().buyers
+    }
+
+    fn rating_list(
+        &self,
+        item: u32,
+        settings: &ListSettings,
+        excluded: &Exclusions,
+        names: &NameOrder,
+    ) -> Result<ScoredRow> {
+        match self.lists.get(&item) {
+            Some(list) => Ok(list.clone()),
+            None => Ok(rating_list(
+                item,
+                self.store.rating_row(item)?,
+                settings,
+                excluded,
+                names,
+            )),
+        }
+    }
+}
