@@ -10,6 +10,17 @@ use crate::backfill::source::{Decoded, InputFile, RecordReader};
 use crate::observability::meter::{Display, Meter, Unit};
 use crate::store::{FilePosition, PairWrite};
 
+/// One chunk as the reading thread hands it over, with where the file stands after it.
+struct ReadChunk {
+    batch: ReadBatch,
+    /// Whether the file ended with it.
+    at_end: bool,
+    /// Ordinal of the next record.
+    next_record: u64,
+    /// Bytes of the file read so far.
+    bytes_read: u64,
+}
+
 /// Reads records up to the ordinal `boundary` (or the end of the file) into a batch; true
 /// with it when the file ended.
 fn read_batch(
@@ -77,31 +88,55 @@ pub fn backfill_files(request: &BackfillRequest) -> Result<BackfillSummary> {
         }
         let mut reader = RecordReader::open(input, limits)?;
         reader.skip_to(position.next_record)?;
-        loop {
-            let boundary = (reader.ordinal() / batch_len + 1) * batch_len;
-            let keep_text = request.config.backfill.rejects_keep_text;
-            let (batch, at_end) = read_batch(&mut reader, boundary, &input.canonical, keep_text)?;
-            // A file that ends exactly on a boundary is only known to be done on the next
-            // read, which then commits an empty batch that marks it done.
-            let next_record = reader.ordinal();
-            let canonical = input.canonical.clone();
-            writer.apply(batch, |p| {
-                p.files.insert(
-                    canonical,
-                    FilePosition {
-                        next_record,
-                        done: at_end,
-                    },
+        let keep_text = request.config.backfill.rejects_keep_text;
+        // One thread reads and decodes the next chunk while this one stages the last.
+        std::thread::scope(|scope| -> Result<()> {
+            let (chunks, received) = std::sync::mpsc::sync_channel::<Result<ReadChunk>>(2);
+            let source = input.canonical.as_str();
+            scope.spawn(move || loop {
+                let boundary = (reader.ordinal() / batch_len + 1) * batch_len;
+                let read =
+                    read_batch(&mut reader, boundary, source, keep_text).map(|(batch, at_end)| ReadChunk {
+                        batch,
+                        at_end,
+                        next_record: reader.ordinal(),
+                        bytes_read: reader.bytes_read(),
+                    });
+                let last = !matches!(&read, Ok(chunk) if !chunk.at_end);
+                // A send fails when the writer stopped on an error: reading stops too.
+                if chunks.send(read).is_err() || last {
+                    break;
+                }
+            });
+            for chunk in received {
+                let ReadChunk {
+                    batch,
+                    at_end,
+                    next_record,
+                    bytes_read,
+                } = chunk?;
+                // A file that ends exactly on a boundary is only known to be done on the
+                // next read, which then commits an empty batch that marks it done.
+                let canonical = input.canonical.clone();
+                writer.apply(batch, |p| {
+                    p.files.insert(
+                        canonical,
+                        FilePosition {
+                            next_record,
+                            done: at_end,
+                        },
+                    );
+                })?;
+                meter.update(
+                    bytes_before + bytes_read,
+                    &format!("{:.0} events/s", writer.records_per_second()),
                 );
-            })?;
-            meter.update(
-                bytes_before + reader.bytes_read(),
-                &format!("{:.0} events/s", writer.records_per_second()),
-            );
-            if at_end {
-                break;
+                if at_end {
+                    break;
+                }
             }
-        }
+            Ok(())
+        })?;
         bytes_before += input.size;
     }
     meter.finish();

@@ -11,7 +11,7 @@ use anyhow::Result;
 use rustc_hash::{FxHashMap, FxHashSet};
 
 use crate::engine::aggregate::RowIndex;
-use crate::engine::{Deviation, RatingPairDelta};
+use crate::engine::Deviation;
 use crate::model::RatingPairStats;
 use crate::observability::meter::Meter;
 use crate::score::ListSettings;
@@ -77,28 +77,31 @@ pub fn sum_write_and_score(
                 let done = &done;
                 scope.spawn(move || -> Result<Share<'_>> {
                     let mut lists = Vec::new();
-                    let mut entries: Vec<(u32, RatingPairStats)> = Vec::new();
-                    let updates = index.visit_rows::<RatingPairDelta, anyhow::Error>(rows, |item, row| {
-                        entries.clear();
-                        entries.extend(row.iter().map(|(other, d)| (*other, d.as_row_stats())));
-                        if let Some(table) = table.as_mut() {
-                            table.add_row(item, &entries)?;
-                        }
-                        if let Some(scoring) =
-                            scoring.filter(|_| store.owns(item) || item as usize >= store.item_count())
-                        {
-                            let row = whole_row(store, item, &entries, read_stored, rows_written)?;
-                            let excluded = Exclusions {
-                                unavailable: scoring.unavailable,
-                            };
-                            lists.push((
-                                item,
-                                rating_list(item, row, scoring.settings, &excluded, scoring.names),
-                            ));
-                        }
-                        done.fetch_add(1, Ordering::Relaxed);
-                        Ok(())
-                    })?;
+                    let updates =
+                        index.visit_rows::<RatingPairStats, anyhow::Error>(rows, |item, entries| {
+                            if let Some(table) = table.as_mut() {
+                                table.add_row(item, entries)?;
+                            }
+                            let owned = store.owns(item) || item as usize >= store.item_count();
+                            if let Some(scoring) = scoring.filter(|_| owned) {
+                                let summed;
+                                let row = if read_stored {
+                                    summed = stored_plus(store, item, entries, rows_written)?;
+                                    &summed
+                                } else {
+                                    entries
+                                };
+                                let excluded = Exclusions {
+                                    unavailable: scoring.unavailable,
+                                };
+                                lists.push((
+                                    item,
+                                    rating_list(item, row, scoring.settings, &excluded, scoring.names),
+                                ));
+                            }
+                            done.fetch_add(1, Ordering::Relaxed);
+                            Ok(())
+                        })?;
                     Ok((updates, table, lists))
                 })
             })
@@ -133,18 +136,14 @@ pub fn sum_write_and_score(
     Ok(outcome)
 }
 
-/// The row as the store will hold it after this segment: the stored row plus the
-/// segment's, or either alone; pairs without co-raters left out.
-fn whole_row(
+/// The stored row of `item`, plus the segment's when it is not stored yet: the row as
+/// the store will hold it after this segment, pairs without co-raters left out.
+fn stored_plus(
     store: &Store,
     item: u32,
     segment: &[(u32, RatingPairStats)],
-    read_stored: bool,
     add_segment: bool,
 ) -> Result<Vec<(u32, RatingPairStats)>> {
-    if !read_stored {
-        return Ok(segment.to_vec());
-    }
     let stored = store.rating_row(item)?;
     if !add_segment {
         return Ok(stored);
@@ -192,7 +191,7 @@ impl PairRows for ScoredInPass<'_> {
             Some(list) => Ok(list.clone()),
             None => Ok(rating_list(
                 item,
-                self.store.rating_row(item)?,
+                &self.store.rating_row(item)?,
                 settings,
                 excluded,
                 names,

@@ -101,12 +101,12 @@ impl Read for CountingReader {
 
 enum Records {
     Json {
-        reader: Box<dyn BufRead>,
+        reader: Box<dyn BufRead + Send>,
         buf: Vec<u8>,
         line: u64,
     },
     Csv {
-        reader: Box<csv::Reader<Box<dyn Read>>>,
+        reader: Box<csv::Reader<Box<dyn Read + Send>>>,
         columns: CsvColumns,
         record: csv::ByteRecord,
     },
@@ -134,7 +134,7 @@ impl RecordReader {
             },
         );
         let is_gzip = buffered.fill_buf()?.starts_with(&[0x1f, 0x8b]);
-        let stream: Box<dyn Read> = if is_gzip {
+        let stream: Box<dyn Read + Send> = if is_gzip {
             Box::new(MultiGzDecoder::new(buffered))
         } else {
             Box::new(buffered)

@@ -280,6 +280,7 @@ impl<'a> BatchWriter<'a> {
         let started = Instant::now();
         let unwritten = segment.estimated_bytes() as u64;
         let (mut sealed, index, mut applied) = segment.seal_staged(&self.store, &self.settings);
+        let engine_seconds = started.elapsed().as_secs_f64();
         let list_settings = self.request.config.list_settings();
         let mut unavailable = FxHashSet::default();
         let mut names = NameOrder::of::<&str>(&[]);
@@ -305,6 +306,14 @@ impl<'a> BatchWriter<'a> {
         });
         let meter = Meter::new("rows", 0, Unit::Items, Display::when(self.request.show_progress));
         let pass = sum_write_and_score(&self.store, &index, sealed.end(), scoring.as_ref(), meter)?;
+        tracing::info!(
+            rows = index.row_count(),
+            pair_updates = pass.updates,
+            engine_seconds,
+            pass_seconds = started.elapsed().as_secs_f64() - engine_seconds,
+            scored = last,
+            "segment's rows summed, written and scored"
+        );
         drop(index);
         sealed.note_rating_rows(pass.updates, pass.rows_written);
         applied.pair_updates += pass.updates;

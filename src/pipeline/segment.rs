@@ -616,16 +616,6 @@ impl SealedSegment {
     }
 }
 
-#[cfg(test)]
-impl OpenSegment {
-    /// The first half of a bulk commit alone: what a run killed between ingesting a
-    /// segment's table files and committing the rest leaves behind.
-    pub(crate) fn ingest_without_commit(self, store: &Store) -> Result<()> {
-        let end = self.ledger.next_seq;
-        store.ingest_pairs(&self.effects.into_effects(), end)
-    }
-}
-
 /// Applies one micro-batch and commits it in one WriteBatch. `rejects` counts the records
 /// of the same batch that failed validation; `advance` records the source position the
 /// batch consumed in the ledger that is written with it.

@@ -64,6 +64,7 @@ pub(super) fn cf_options(name: &str) -> Options {
     o.set_periodic_compaction_seconds(TABLE_FILE_REWRITE_SECONDS);
     match name {
         CF_PAIRS => {
+            o.set_compression_options(-14, -2, 0, 0);
             o.set_merge_operator_associative("simtide_rating_block_sum", merge::merge_rating_blocks);
             o.set_compaction_filter(
                 "simtide_drop_empty_rating_blocks",

@@ -123,22 +123,16 @@ pub fn add_sorted(
     }
 }
 
-/// Cuts rows handed over entry by entry, in key order, into blocks: what every writer
-/// of the rating family (table files, write batches, migration) shares.
+/// Cuts rows handed over entry by entry, in key order, into blocks, encoding each entry
+/// as it comes: what every writer of the rating family (table files, write batches,
+/// migration) shares.
+#[derive(Default)]
 pub struct BlockCutter {
     row: u32,
-    entries: Vec<(u32, RatingPairStats)>,
+    /// The first partner of the block in progress, if one is.
+    first: Option<u32>,
+    previous: u32,
     value: Vec<u8>,
-}
-
-impl Default for BlockCutter {
-    fn default() -> Self {
-        BlockCutter {
-            row: 0,
-            entries: Vec::new(),
-            value: Vec::new(),
-        }
-    }
 }
 
 impl BlockCutter {
@@ -151,13 +145,16 @@ impl BlockCutter {
         stats: RatingPairStats,
         emit: &mut (impl FnMut(&[u8], &[u8]) -> Result<(), E> + ?Sized),
     ) -> Result<(), E> {
-        if let Some(&(last, _)) = self.entries.last() {
-            if row != self.row || !same_block(last, other) {
-                self.flush(emit)?;
-            }
+        if self.first.is_some() && (row != self.row || !same_block(self.previous, other)) {
+            self.flush(emit)?;
         }
-        self.row = row;
-        self.entries.push((other, stats));
+        if self.first.is_none() {
+            self.row = row;
+            self.first = Some(other);
+            self.previous = other >> BLOCK_BITS << BLOCK_BITS;
+        }
+        push_entry(&mut self.value, self.previous, other, &stats);
+        self.previous = other;
         Ok(())
     }
 
@@ -166,13 +163,11 @@ impl BlockCutter {
         &mut self,
         emit: &mut (impl FnMut(&[u8], &[u8]) -> Result<(), E> + ?Sized),
     ) -> Result<(), E> {
-        let Some(&(first, _)) = self.entries.first() else {
+        let Some(first) = self.first.take() else {
             return Ok(());
         };
-        self.value.clear();
-        encode_block(&self.entries, &mut self.value);
         emit(&block_key(self.row, first), &self.value)?;
-        self.entries.clear();
+        self.value.clear();
         Ok(())
     }
 }

@@ -34,7 +34,7 @@ pub trait PairRows: Sync {
     ) -> Result<ScoredRow> {
         Ok(rating_list(
             item,
-            self.rating_row(item)?,
+            &self.rating_row(item)?,
             settings,
             excluded,
             names,

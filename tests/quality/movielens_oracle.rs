@@ -74,7 +74,10 @@ fn top50_of_the_first_30000_ratings_matches_scipy_with_one_common_user() {
     assert!(lists > 2000, "only {lists} lists");
 }
 
-/// Default tolerance, applied in the live service's batch size, against the exact result.
+/// Default tolerance against the exact result. The stored sums do not depend on how the
+/// events were cut into batches or segments (docs/design.md, "Re-centering"; property test
+/// `batching_never_changes_the_sums`), so one backfill stands for the live service's
+/// micro-batches too.
 ///
 /// Bound, per pair: with tolerance τ each user's deviations are all shifted by the same
 /// ε_u, |ε_u| ≤ τ. Over the co-raters that moves item a's deviation vector x by a vector e
@@ -87,7 +90,7 @@ fn top50_of_the_first_30000_ratings_matches_scipy_with_one_common_user() {
 /// differ. The test checks the bound for every pair with n ≥ 5, and reports the mean error
 /// and the top-50 overlap, asserting the floors stated below.
 #[test]
-fn default_tolerance_in_micro_batches_stays_within_its_bound() {
+fn default_tolerance_stays_within_its_bound() {
     let dir = tempfile::tempdir().unwrap();
     let csv = common::movielens_slice(50_000, &dir.path().join("first-50000.csv"));
     let exact_dir = dir.path().join("exact");
@@ -102,7 +105,6 @@ fn default_tolerance_in_micro_batches_stays_within_its_bound() {
             ..Settings::EXACT
         }),
     );
-    // 5000 events per batch, the live consumer's default batch size.
     let approx = common::backfill(
         &approx_dir,
         &[&csv],
@@ -112,10 +114,6 @@ fn default_tolerance_in_micro_batches_stays_within_its_bound() {
             min_common_users: 5,
             batch_events: 5_000,
         }),
-    );
-    assert_eq!(
-        approx.batches, 11,
-        "10 full batches of 5000 plus the empty one that marks the end"
     );
     assert!(approx.recenterings > 0);
 

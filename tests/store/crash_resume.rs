@@ -141,7 +141,8 @@ fn memory_budget_changes_segments_not_results() {
     let large = common::config(settings);
     let one = common::backfill(&dir.path().join("one"), &[&csv], &large);
     let many = common::backfill(&dir.path().join("many"), &[&csv], &small);
-    // One segment is scored from memory; many are merged by RocksDB and read back.
+    // One segment is scored in the pass that writes it; with many, the last pass adds
+    // the stored rows of the earlier ones (docs/design.md, "Bulk backfill").
     assert_eq!(one.segments, 1);
     assert!(many.segments >= 10, "{} segments", many.segments);
     let a = common::export_without_times(&dir.path().join("one"), &dir.path().join("a.jsonl"));
@@ -156,5 +157,6 @@ fn memory_budget_changes_segments_not_results() {
         Store::open_read_only(&dir.path().join("many")).unwrap(),
     );
     assert_eq!(x.ledger().events, y.ledger().events);
-    assert_eq!(x.ledger().pair_updates, y.ledger().pair_updates);
+    // Each segment shifts a re-centered user's pairs once: more segments, more work.
+    assert!(y.ledger().pair_updates > x.ledger().pair_updates);
 }

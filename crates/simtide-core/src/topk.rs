@@ -91,16 +91,16 @@ pub struct ScoredRow {
 /// The rating list of `item` from its row of pair sums.
 pub fn rating_list(
     item: u32,
-    row: Vec<(u32, RatingPairStats)>,
+    row: &[(u32, RatingPairStats)],
     settings: &ListSettings,
     excluded: &Exclusions,
     names: &NameOrder,
 ) -> ScoredRow {
     let row_len = row.iter().filter(|(other, _)| *other != item).count();
     let candidates = row
-        .into_iter()
+        .iter()
         .filter(|(other, _)| *other != item)
-        .filter_map(|(other, stats)| {
+        .filter_map(|&(other, stats)| {
             rating_list_score(&stats, settings).map(|score| Neighbor {
                 item: other,
                 score,

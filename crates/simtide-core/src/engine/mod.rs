@@ -167,15 +167,21 @@ pub struct BatchEffects {
 /// A rating taking part in pairs: its deviation d = r − c_u, and d² in fixed point.
 pub type Deviation = (f64, i128);
 
-impl RatingPairDelta {
-    /// The delta as the sums stored under a row, for a delta summed oriented to the row
-    /// ([`aggregate::RowIndex::both_orders`]: `s_lo` is the row's norm).
-    pub fn as_row_stats(&self) -> crate::model::RatingPairStats {
-        crate::model::RatingPairStats {
-            n: self.n,
-            dot: self.dot,
-            s_row: self.s_lo,
-            s_other: self.s_hi,
+/// Sums oriented to a row, as a row summed under both orders accumulates them
+/// ([`aggregate::RowIndex::both_orders`]): `lo` is the row's deviation, `hi` the partner's.
+impl PairSum<Deviation> for crate::model::RatingPairStats {
+    fn add(&mut self, sign: i64, row: &Deviation, other: &Deviation) {
+        let product = fixed::to_fixed(row.0 * other.0);
+        if sign > 0 {
+            self.n += 1;
+            self.dot += product;
+            self.s_row += row.1;
+            self.s_other += other.1;
+        } else {
+            self.n -= 1;
+            self.dot -= product;
+            self.s_row -= row.1;
+            self.s_other -= other.1;
         }
     }
 }
