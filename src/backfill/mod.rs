@@ -1,8 +1,9 @@
 //! Backfill: history into a store, from files (`files`) or from the input topic itself
-//! (`topic`), through one batch writer (`writer`) that commits each batch with its source
-//! position and rejects, and publishes at the end; `summary` is what a run reports. A
-//! killed run rerun with the same inputs resumes after its last committed batch and ends
-//! in the same state as an uninterrupted run.
+//! (`topic`), through one batch writer (`writer`) that commits each segment with its
+//! source positions and rejects — a file segment's rows summed, written and scored in one
+//! pass (`row_pass`) — and publishes at the end; `summary` is what a run reports. A killed
+//! run rerun with the same inputs resumes after its last committed segment and ends in
+//! the same state as an uninterrupted run.
 
 mod files;
 mod row_pass;

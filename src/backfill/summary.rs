@@ -25,7 +25,8 @@ pub struct BackfillSummary {
     pub pair_updates: u64,
     /// Re-centerings in this run.
     pub recenterings: u64,
-    /// Batches applied in this run.
+    /// Batches read in this run: chunks of `backfill.batch_events` records staged (files)
+    /// or batches applied (topic).
     pub batches: u64,
     /// Segments (groups of batches written out at once) committed in this run.
     pub segments: u64,
@@ -54,12 +55,11 @@ impl BackfillSummary {
         self.apply_seconds + self.publish_seconds
     }
 
-    /// Adds an applied batch.
+    /// Adds what an applied batch (or a file segment's engine run) did.
     pub(super) fn absorb(&mut self, batch: &BatchSummary) {
         self.events.absorb(&batch.outcomes);
         self.pair_updates += batch.pair_updates;
         self.recenterings += batch.recenterings;
-        self.batches += 1;
     }
 }
 

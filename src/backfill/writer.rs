@@ -195,6 +195,7 @@ impl<'a> BatchWriter<'a> {
         self.rejects_file.flush()?;
         let rejects_len = self.rejects_file.metadata()?.len();
         let apply_started = Instant::now();
+        self.summary.batches += 1;
         let segment = self.segment.get_or_insert_with(|| OpenSegment::new(&self.store));
         if self.pairs == PairWrite::Ingested {
             segment.stage(&self.store, &batch.events, &batch.rejects)?;

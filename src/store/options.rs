@@ -64,6 +64,9 @@ pub(super) fn cf_options(name: &str) -> Options {
     o.set_periodic_compaction_seconds(TABLE_FILE_REWRITE_SECONDS);
     match name {
         CF_PAIRS => {
+            // LZ4 at acceleration 2 (a negative level): compressing the row blocks was the
+            // largest single cost of a wide backfill's pass; this spends a tenth of it
+            // less for about 3 % more bytes per pair (measured on the generated wide set).
             o.set_compression_options(-14, -2, 0, 0);
             o.set_merge_operator_associative("simtide_rating_block_sum", merge::merge_rating_blocks);
             o.set_compaction_filter(

@@ -87,12 +87,14 @@ pub(super) fn clear_leftovers(store_dir: &Path) -> Result<()> {
 /// pair, a merge operand otherwise.
 type Emit<'w> = dyn FnMut(&[u8], &[u8]) -> Result<(), rocksdb::Error> + 'w;
 
+/// Hands the entries of a range of rows, in key order, to `emit` as keys and values.
+type WriteRows<'a, T> = fn(&OrientedRows<'a, T>, Range<u32>, &mut Emit<'_>) -> Result<(), rocksdb::Error>;
+
 /// One pair family's rows, ready to be written.
 struct FamilyRows<'a, T> {
     family: &'static str,
     rows: OrientedRows<'a, T>,
-    /// Hands the entries of a range of rows, in key order, to `emit` as keys and values.
-    write: fn(&OrientedRows<'a, T>, Range<u32>, &mut Emit<'_>) -> Result<(), rocksdb::Error>,
+    write: WriteRows<'a, T>,
 }
 
 /// Rating rows as row blocks (docs/design.md, "Rows in blocks").
