@@ -32,7 +32,7 @@ backfill() {
   local name=$1 input=$2 outputs
   printf '%s\n' "$3" > "$work/$name.toml"
   /usr/bin/time -o "$work/$name.time" -f '%e %M %O' "$BIN" backfill --quiet --store "$work/$name" \
-    --config "$work/$name.toml" --input "$input" > "$work/$name.out"
+    --config "$work/$name.toml" --input "$input" > "$work/$name.out" 2> "$work/$name.log"
   read -r WALL RSS outputs < "$work/$name.time"
   WRITTEN=$((outputs * 512))
   PAIRS=$(awk '/rating pairs/ {print $3; exit}' "$work/$name.out")
@@ -52,7 +52,7 @@ disk() {
   local db="$work/$1/db" bytes wal
   bytes=$(du -sb "$db" | cut -f1)
   wal=$(find "$db" -name '*.log' -printf '%s\n' | sort -n | tail -1)
-  echo "  disk: $(awk -v b="$bytes" -v p="$PAIRS" 'BEGIN { printf "%.1f", b / p }') bytes per rating pair, target 42.8 ($bytes bytes, $PAIRS pairs stored); $WRITTEN bytes written by the run; largest write-ahead log ${wal:-0} bytes"
+  echo "  disk: $(awk -v b="$bytes" -v p="$PAIRS" 'BEGIN { printf "%.1f", b / p }') bytes of store per rating pair (pairs, histories and logs; 42.8 on MovieLens exact before row blocks) ($bytes bytes, $PAIRS pairs stored); $WRITTEN bytes written by the run; largest write-ahead log ${wal:-0} bytes"
 }
 
 # export NAME: the store's lists without publication times, sorted, for comparing runs.
@@ -94,8 +94,10 @@ ref=$(scipy "$BIG")
 for budget in 256MiB 4GiB; do
   backfill "pl-$budget" "$BIG" $'[backfill]\nmemory_budget = "'"$budget"'"'
   segments=$(awk '/batches/ {print $4; exit}' "$work/pl-$budget.out")
-  budget_kib=$(( ${budget%MiB} * 1024 ))
-  [ "$budget" = 4GiB ] && budget_kib=$((4 * 1024 * 1024))
+  case $budget in
+    *MiB) budget_kib=$(( ${budget%MiB} * 1024 )) ;;
+    *GiB) budget_kib=$(( ${budget%GiB} * 1024 * 1024 )) ;;
+  esac
   bound_kib=$((budget_kib + RSS_ABOVE_BUDGET_MIB * 1024))
   echo "powerlaw budget $budget: seconds ours $WALL, reference $ref (scipy matrices), ratio $(ratio "$WALL" "$ref"); pair updates/s ours $UPDATES, target 10000000, ratio $(ratio "$UPDATES" 10000000); $segments segment(s); peak RSS ${RSS} KiB, bound ${bound_kib} KiB (budget + ${RSS_ABOVE_BUDGET_MIB} MiB), ratio $(ratio "$RSS" "$bound_kib")"
   disk "pl-$budget"

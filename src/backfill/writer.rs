@@ -122,6 +122,9 @@ pub struct BatchWriter<'a> {
     staged_rejects: BTreeMap<RejectReason, u64>,
     /// Rating lists the last file segment's pass scored.
     scored_in_pass: Option<rustc_hash::FxHashMap<u32, crate::topk::ScoredRow>>,
+    /// Whether the store held pairs before the last file segment: its rows then hold
+    /// merge operands, folded by a compaction before the run ends.
+    operands_left: bool,
 }
 
 impl<'a> BatchWriter<'a> {
@@ -168,6 +171,7 @@ impl<'a> BatchWriter<'a> {
             staged_records: 0,
             staged_rejects: BTreeMap::new(),
             scored_in_pass: None,
+            operands_left: false,
         })
     }
 
@@ -280,6 +284,7 @@ impl<'a> BatchWriter<'a> {
     fn commit_staged(&mut self, segment: OpenSegment, last: bool) -> Result<()> {
         let started = Instant::now();
         let unwritten = segment.estimated_bytes() as u64;
+        self.operands_left = self.store.ledger().pair_keys_written;
         let (mut sealed, index, mut applied) = segment.seal_staged(&self.store, &self.settings);
         let engine_seconds = started.elapsed().as_secs_f64();
         let list_settings = self.request.config.list_settings();
@@ -368,6 +373,12 @@ impl<'a> BatchWriter<'a> {
             })?;
         meter.finish();
         drop(scored);
+        if self.operands_left {
+            // Every segment after the first, and a run into a store that held pairs, left
+            // merge operands; folding them leaves a store of one value per key.
+            tracing::info!("merging the segments' row blocks");
+            self.store.compact_pairs();
+        }
         self.summary.publish_seconds = publish_started.elapsed().as_secs_f64();
         self.summary.users = u64::from(self.store.ledger().next_user);
         self.summary.items = self.store.item_count() as u64;

@@ -78,18 +78,27 @@ pub fn decode_block_into(first: u32, mut bytes: &[u8], out: &mut Vec<(u32, Ratin
 }
 
 /// Adds block values (in any number) partner by partner into one block value, leaving
-/// out partners whose sums cancel to exactly zero. `first` is the block's first id.
+/// out partners whose sums cancel to exactly zero. `first` is the block's first id. All
+/// entries are decoded, sorted by partner and folded once: a block merged with many
+/// operands (a compaction after many segments) costs one sort, not one pass per operand.
 pub fn sum_blocks<'a>(first: u32, blocks: impl Iterator<Item = &'a [u8]>) -> Result<Vec<u8>> {
-    let mut total: Vec<(u32, RatingPairStats)> = Vec::new();
-    let mut next: Vec<(u32, RatingPairStats)> = Vec::new();
-    let mut merged: Vec<(u32, RatingPairStats)> = Vec::new();
+    let mut all: Vec<(u32, RatingPairStats)> = Vec::new();
+    let mut operands = 0;
     for bytes in blocks {
-        next.clear();
-        decode_block_into(first, bytes, &mut next)?;
-        merged.clear();
-        add_sorted(&total, &next, &mut merged);
-        std::mem::swap(&mut total, &mut merged);
+        decode_block_into(first, bytes, &mut all)?;
+        operands += 1;
     }
+    if operands > 1 {
+        all.sort_by_key(|e| e.0);
+    }
+    let mut total: Vec<(u32, RatingPairStats)> = Vec::with_capacity(all.len());
+    for (other, stats) in all {
+        match total.last_mut() {
+            Some(last) if last.0 == other => last.1.add(&stats),
+            _ => total.push((other, stats)),
+        }
+    }
+    total.retain(|(_, s)| *s != RatingPairStats::default());
     let mut out = Vec::with_capacity(total.len() * 24);
     encode_block(&total, &mut out);
     Ok(out)
