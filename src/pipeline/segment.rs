@@ -1,9 +1,11 @@
 //! Batches of decoded events applied to an open segment and written to the store: intern
 //! ids, load the states a batch touches, run the engine, and persist everything —
-//! including the source positions consumed — in one write. The live service and a backfill apply many
-//! batches to one [`OpenSegment`] in memory and commit it once, pair sums ingested as
-//! sorted table files (docs/design.md, "Bulk backfill", "Live writes");
-//! [`apply_and_commit`] writes a single batch (the live start positions).
+//! including the source positions consumed — in one write. The live service and a topic
+//! backfill apply many batches to one [`OpenSegment`] in memory and commit it once, pair
+//! sums ingested as sorted table files; a file backfill stages its chunks and runs the
+//! engine once per segment ([`OpenSegment::stage`], [`OpenSegment::seal_staged`];
+//! docs/design.md, "Bulk backfill", "Live writes"); [`apply_and_commit`] writes a single
+//! batch (the live start positions).
 
 use std::collections::{BTreeMap, HashMap};
 

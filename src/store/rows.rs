@@ -1,7 +1,8 @@
-//! Where pair rows are read for scoring: the store itself, or — right after a backfill
-//! that wrote a fresh store in one segment — that segment's sums still in memory, which
-//! hold exactly what the store holds and spare reading millions of rows back
-//! (docs/design.md, "Bulk backfill").
+//! Where pair rows are read for scoring: the store itself, or — right after a topic
+//! backfill that wrote a fresh store in one segment — that segment's sums still in
+//! memory, which hold exactly what the store holds and spare reading millions of rows
+//! back. (A file backfill scores its last segment's rows in the pass that writes them:
+//! `backfill::row_pass`, docs/design.md "Bulk backfill".)
 
 use anyhow::Result;
 
