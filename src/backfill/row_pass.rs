@@ -18,7 +18,7 @@ use crate::model::RatingPairStats;
 use crate::observability::meter::Meter;
 use crate::score::ListSettings;
 use crate::store::row_blocks::add_sorted;
-use crate::store::{rating_table_options, PairRows, RatingTable, Store};
+use crate::store::{rating_table_options, RatingTable, Store};
 use crate::topk::{rating_list, Exclusions, NameOrder, ScoredRow};
 
 /// What the pass needs to score rows into lists: the same settings, exclusions and name
@@ -184,50 +184,4 @@ fn stored_plus(
     add_sorted(&stored, segment, &mut row);
     row.retain(|(_, s)| s.n != 0);
     Ok(row)
-}
-
-/// Rows for the publication after a one-pass segment: the store's, with the rating lists
-/// the pass scored handed over instead of scored again.
-pub struct ScoredInPass<'a> {
-    /// The store, for everything the pass did not score.
-    pub store: &'a Store,
-    /// Lists the pass scored.
-    pub lists: FxHashMap<u32, ScoredRow>,
-}
-
-impl PairRows for ScoredInPass<'_> {
-    fn rating_row(&self, item: u32) -> Result<Vec<(u32, RatingPairStats)>> {
-        self.store.rating_row(item)
-    }
-
-    fn purchase_row(&self, item: u32) -> Result<Vec<(u32, i64)>> {
-        self.store.purchase_row(item)
-    }
-
-    fn buyer_counts(&self, items: &[u32]) -> Result<Vec<i64>> {
-        self.store.buyer_counts(items)
-    }
-
-    fn total_buyers(&self) -> i64 {
-        self.store.ledger().buyers
-    }
-
-    fn rating_list(
-        &self,
-        item: u32,
-        settings: &ListSettings,
-        excluded: &Exclusions,
-        names: &NameOrder,
-    ) -> Result<ScoredRow> {
-        match self.lists.get(&item) {
-            Some(list) => Ok(list.clone()),
-            None => Ok(rating_list(
-                item,
-                &self.store.rating_row(item)?,
-                settings,
-                excluded,
-                names,
-            )),
-        }
-    }
 }

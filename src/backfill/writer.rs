@@ -17,7 +17,7 @@ use std::time::Instant;
 use anyhow::{bail, Result};
 use serde_json::{json, Value};
 
-use super::row_pass::{sum_write_and_score, ListScoring, ScoredInPass};
+use super::row_pass::{sum_write_and_score, ListScoring};
 use super::summary::BackfillSummary;
 use super::BackfillRequest;
 use crate::decode::{RejectReason, Rejection};
@@ -357,22 +357,23 @@ impl<'a> BatchWriter<'a> {
             self.store.compact_pairs();
         }
         self.store.set_pair_compaction(true)?;
-        let scored = self.scored_in_pass.take().map(|lists| ScoredInPass {
-            store: &self.store,
-            lists,
-        });
-        let rows: &dyn PairRows = match (&scored, &in_memory) {
-            (Some(scored), _) => scored,
-            (None, Some(rows)) => rows,
-            (None, None) => &self.store,
+        let rows: &dyn PairRows = match &in_memory {
+            Some(rows) => rows,
+            None => &self.store,
         };
-        self.summary.publication =
-            publish_dirty(&self.store, rows, &list_settings, now_nanos(), |done, total| {
+        let scored = self.scored_in_pass.take().unwrap_or_default();
+        self.summary.publication = publish_dirty(
+            &self.store,
+            rows,
+            scored,
+            &list_settings,
+            now_nanos(),
+            |done, total| {
                 meter.set_total(total);
                 meter.update(done, "lists");
-            })?;
+            },
+        )?;
         meter.finish();
-        drop(scored);
         if self.operands_left {
             // Every segment after the first, and a run into a store that held pairs, left
             // merge operands; folding them leaves a store of one value per key.

@@ -4,7 +4,7 @@
 use std::collections::BTreeMap;
 
 use anyhow::Result;
-use rustc_hash::FxHashSet;
+use rustc_hash::{FxHashMap, FxHashSet};
 
 use crate::drift::{overlap_drift, rank_biased_overlap, RBO_PERSISTENCE};
 use crate::event::UnixNanos;
@@ -12,7 +12,7 @@ use crate::model::{DirtyScope, PublishedList};
 use crate::score::ListSettings;
 use crate::signal::Signal;
 use crate::store::{Delivery, MarkAfterWrite, PairRows, PublicationWrite, Store};
-use crate::topk::{purchase_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
+use crate::topk::{purchase_list, rating_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
 
 /// Lists written per store write during a publication cycle.
 const WRITE_CHUNK: usize = 512;
@@ -49,7 +49,7 @@ pub fn compute_list(
     names: &NameOrder,
 ) -> Result<ScoredRow> {
     Ok(match signal {
-        Signal::Rating => rows.rating_list(item, settings, excluded, names)?,
+        Signal::Rating => rating_list(item, &rows.rating_row(item)?, settings, excluded, names),
         Signal::Purchase => {
             let row = rows.purchase_row(item)?;
             let own_buyers = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);
@@ -112,10 +112,12 @@ fn targets(store: &Store, rows: &dyn PairRows, signal: Signal) -> Result<Vec<(u3
     Ok(out)
 }
 
-/// Computes the lists of a chunk on every core: rows are independent reads.
+/// Computes the lists of a chunk on every core: rows are independent reads. A rating list
+/// in `scored` (scored by a backfill in the pass that wrote its row) is taken as it is.
 fn compute_in_parallel(
     rows: &dyn PairRows,
     chunk: &[(Signal, u32, MarkAfterWrite)],
+    scored: &FxHashMap<u32, ScoredRow>,
     settings: &ListSettings,
     excluded: &Exclusions,
     names: &NameOrder,
@@ -134,7 +136,10 @@ fn compute_in_parallel(
             .map(|part| {
                 scope.spawn(move || {
                     part.iter()
-                        .map(|&(signal, item, _)| compute_list(rows, signal, item, settings, excluded, names))
+                        .map(|&(signal, item, _)| match scored.get(&item) {
+                            Some(list) if signal == Signal::Rating => Ok(list.clone()),
+                            _ => compute_list(rows, signal, item, settings, excluded, names),
+                        })
                         .collect::<Result<Vec<_>>>()
                 })
             })
@@ -175,6 +180,8 @@ pub struct Cycle {
     watermark: Option<UnixNanos>,
     now: UnixNanos,
     report: CycleReport,
+    /// Rating lists already scored from the rows as the store now holds them.
+    scored_rating: FxHashMap<u32, ScoredRow>,
 }
 
 impl Cycle {
@@ -194,7 +201,17 @@ impl Cycle {
             watermark: store.ledger().event_time_watermark,
             now,
             report: CycleReport::default(),
+            scored_rating: FxHashMap::default(),
         })
+    }
+
+    /// Takes rating lists a backfill scored in the pass that wrote their rows
+    /// (docs/design.md, "Bulk backfill") instead of scoring those rows again. They must
+    /// have been scored from the rows the store holds, with this cycle's settings,
+    /// exclusions and name order.
+    pub fn with_rating_lists(mut self, lists: FxHashMap<u32, ScoredRow>) -> Cycle {
+        self.scored_rating = lists;
+        self
     }
 
     /// Lists the cycle will rescore in all.
@@ -238,7 +255,15 @@ impl Cycle {
             .filter(|(_, own)| **own)
             .map(|(c, _)| *c)
             .collect();
-        let mut lists = compute_in_parallel(rows, &to_score, settings, &excluded, &self.names)?.into_iter();
+        let mut lists = compute_in_parallel(
+            rows,
+            &to_score,
+            &self.scored_rating,
+            settings,
+            &excluded,
+            &self.names,
+        )?
+        .into_iter();
         let mut writes: Vec<Rescored> = Vec::with_capacity(chunk.len());
         for (&(signal, item, mark), own) in chunk.iter().zip(owned) {
             if !own {
@@ -306,17 +331,19 @@ impl Cycle {
     }
 }
 
-/// Rescores every dirty item of both signals from `rows` and stores the lists that
+/// Rescores every dirty item of both signals from `rows` (rating lists in `scored_rating`
+/// taken as they are, see [`Cycle::with_rating_lists`]) and stores the lists that
 /// changed, without delivering them anywhere (backfill). `on_progress(done, total)`
 /// follows each chunk.
 pub fn publish_dirty(
     store: &Store,
     rows: &dyn PairRows,
+    scored_rating: FxHashMap<u32, ScoredRow>,
     settings: &ListSettings,
     now: UnixNanos,
     mut on_progress: impl FnMut(u64, u64),
 ) -> Result<CycleReport> {
-    let mut cycle = Cycle::plan(store, rows, now)?;
+    let mut cycle = Cycle::plan(store, rows, now)?.with_rating_lists(scored_rating);
     while let Some(rescored) = cycle.next_chunk(store, rows, settings)? {
         let writes: Vec<PublicationWrite> = rescored.into_iter().map(|r| r.write).collect();
         store.write_publications(&writes, Delivery::StoredOnly, now)?;

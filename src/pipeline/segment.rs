@@ -346,21 +346,8 @@ impl OpenSegment {
             RowIndex::both_orders(&rating_sides, &owns)
         };
         drop(rating_sides);
-        let mut marked = effects.dirty_rating.keys().chain(effects.dirty_purchase.keys());
-        let summary = BatchSummary {
-            marked_dirty: marked.next().is_some(),
-            ..self.record(&effects)
-        };
-        let forgotten = forgotten_users(&self.forgettable, &self.states, self.users.first);
-        let sealed = SealedSegment {
-            new_users: self.users.added,
-            new_items: self.items.added,
-            states: self.states,
-            forgotten,
-            effects,
-            ledger: self.ledger,
-        };
-        (sealed, index, summary)
+        let summary = self.record(&effects);
+        (self.into_sealed(effects), index, summary)
     }
 
     /// Gives the batch's names ids, loads the histories and statuses it touches and
@@ -467,9 +454,9 @@ impl OpenSegment {
     }
 
     /// Sums the segment's pair deltas and sorts them: what [`SealedSegment::write`] persists.
-    pub fn seal(self) -> SealedSegment {
+    pub fn seal(mut self) -> SealedSegment {
         let started = std::time::Instant::now();
-        let effects = self.effects.into_effects();
+        let effects = std::mem::take(&mut self.effects).into_effects();
         tracing::debug!(
             rating_pairs = effects.rating_pairs.len(),
             purchase_pairs = effects.purchase_pairs.len(),
@@ -477,6 +464,12 @@ impl OpenSegment {
             sum_seconds = started.elapsed().as_secs_f64(),
             "segment sealed"
         );
+        self.into_sealed(effects)
+    }
+
+    /// The segment with its effects, ready to be written: the users an erasure left
+    /// forgotten are found here.
+    fn into_sealed(self, effects: BatchEffects) -> SealedSegment {
         let forgotten = forgotten_users(&self.forgettable, &self.states, self.users.first);
         SealedSegment {
             new_users: self.users.added,

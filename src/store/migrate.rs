@@ -147,6 +147,31 @@ fn merge_fixed(_key: &[u8], existing: Option<&[u8]>, operands: &MergeOperands) -
     Some(out)
 }
 
+/// An earlier layout's merge operator of the pair family.
+type PairMerge = fn(&[u8], Option<&[u8]>, &MergeOperands) -> Option<Vec<u8>>;
+
+/// Opens the store for a migration of its rating pairs: the pair family with an earlier
+/// layout's merge operator (`merge`, named `name`) and auto-compaction off, so that this
+/// build's operator and filter never see the old values; the other families as usual.
+fn open_with_pair_operator(path: &Path, name: &str, merge: PairMerge) -> Result<DB> {
+    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
+        .iter()
+        .map(|&family| {
+            let options = if family == CF_PAIRS {
+                let mut o = Options::default();
+                o.set_merge_operator_associative(name, merge);
+                o.set_disable_auto_compactions(true);
+                o
+            } else {
+                cf_options(family)
+            };
+            ColumnFamilyDescriptor::new(family, options)
+        })
+        .collect();
+    DB::open_cf_descriptors(&db_options(), path, descriptors)
+        .with_context(|| format!("cannot open {} to migrate it", path.display()))
+}
+
 /// Rewrites every version-1 rating pair value in the compact form, then records version
 /// 2, which it returns.
 fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<u32> {
@@ -155,22 +180,7 @@ fn migrate_fixed_pairs(dir: &Path, path: &Path) -> Result<u32> {
         store = %dir.display(),
         "store layout version {FIXED_PAIRS_VERSION} found: migrating it to version {TO} in place (take a snapshot before upgrading: README, \"Upgrades\")"
     );
-    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
-        .iter()
-        .map(|&name| {
-            let options = if name == CF_PAIRS {
-                let mut o = Options::default();
-                o.set_merge_operator_associative("simtide_rating_pair_sum_v1", merge_fixed);
-                o.set_disable_auto_compactions(true);
-                o
-            } else {
-                cf_options(name)
-            };
-            ColumnFamilyDescriptor::new(name, options)
-        })
-        .collect();
-    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
-        .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
+    let db = open_with_pair_operator(path, "simtide_rating_pair_sum_v1", merge_fixed)?;
     let pairs = db.cf_handle(CF_PAIRS).expect("pair family exists");
     let meta = db.cf_handle(CF_META).expect("meta family exists");
     let resume = db.get_cf(meta, META_MIGRATED_UP_TO)?;
@@ -306,22 +316,7 @@ fn pairs_into_blocks(dir: &Path, path: &Path) -> Result<u32> {
         store = %dir.display(),
         "store layout version {PAIR_KEYS_VERSION} found: migrating it to version {TO} in place (rating pairs become row blocks)"
     );
-    let descriptors: Vec<ColumnFamilyDescriptor> = ALL_CFS
-        .iter()
-        .map(|&name| {
-            let options = if name == CF_PAIRS {
-                let mut o = Options::default();
-                o.set_merge_operator_associative("simtide_rating_pair_sum", merge_pair_values);
-                o.set_disable_auto_compactions(true);
-                o
-            } else {
-                cf_options(name)
-            };
-            ColumnFamilyDescriptor::new(name, options)
-        })
-        .collect();
-    let db = DB::open_cf_descriptors(&db_options(), path, descriptors)
-        .with_context(|| format!("cannot open {} to migrate it", path.display()))?;
+    let db = open_with_pair_operator(path, "simtide_rating_pair_sum", merge_pair_values)?;
     let pairs = db.cf_handle(CF_PAIRS).expect("pair family exists");
     let meta = db.cf_handle(CF_META).expect("meta family exists");
     // Every merge operand folded into one value per pair key by the version-3 operator

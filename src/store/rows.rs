@@ -10,8 +10,6 @@ use super::oriented::{oriented_rating_stats, OrientedRows};
 use super::Store;
 use crate::engine::{BatchEffects, RatingPairDelta};
 use crate::model::RatingPairStats;
-use crate::score::ListSettings;
-use crate::topk::{rating_list, Exclusions, NameOrder, ScoredRow};
 
 /// Pair rows for scoring.
 pub trait PairRows: Sync {
@@ -23,24 +21,6 @@ pub trait PairRows: Sync {
     fn buyer_counts(&self, items: &[u32]) -> Result<Vec<i64>>;
     /// Users with at least one active purchase.
     fn total_buyers(&self) -> i64;
-    /// The rating list of an item, scored from its row. A backfill that scored the row in
-    /// the pass that wrote it hands that list over instead (docs/design.md, "Bulk
-    /// backfill").
-    fn rating_list(
-        &self,
-        item: u32,
-        settings: &ListSettings,
-        excluded: &Exclusions,
-        names: &NameOrder,
-    ) -> Result<ScoredRow> {
-        Ok(rating_list(
-            item,
-            &self.rating_row(item)?,
-            settings,
-            excluded,
-            names,
-        ))
-    }
 }
 
 impl PairRows for Store {

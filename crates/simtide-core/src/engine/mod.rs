@@ -167,40 +167,47 @@ pub struct BatchEffects {
 /// A rating taking part in pairs: its deviation d = r − c_u, and d² in fixed point.
 pub type Deviation = (f64, i128);
 
+/// Adds `sign` (±1) times one co-rater's contribution to a pair's four sums: the
+/// co-rater, the product of the deviations and each side's squared deviation (`first`
+/// goes with `d_first`). Adding or subtracting spares three 128-bit multiplications.
+fn add_contribution(
+    sign: i64,
+    sums: (&mut i64, &mut i128, &mut i128, &mut i128),
+    first: &Deviation,
+    second: &Deviation,
+) {
+    let (n, dot, s_first, s_second) = sums;
+    let product = fixed::to_fixed(first.0 * second.0);
+    if sign > 0 {
+        *n += 1;
+        *dot += product;
+        *s_first += first.1;
+        *s_second += second.1;
+    } else {
+        *n -= 1;
+        *dot -= product;
+        *s_first -= first.1;
+        *s_second -= second.1;
+    }
+}
+
 /// Sums oriented to a row, as a row summed under both orders accumulates them
 /// ([`aggregate::RowIndex::both_orders`]): `lo` is the row's deviation, `hi` the partner's.
 impl PairSum<Deviation> for crate::model::RatingPairStats {
     fn add(&mut self, sign: i64, row: &Deviation, other: &Deviation) {
-        let product = fixed::to_fixed(row.0 * other.0);
-        if sign > 0 {
-            self.n += 1;
-            self.dot += product;
-            self.s_row += row.1;
-            self.s_other += other.1;
-        } else {
-            self.n -= 1;
-            self.dot -= product;
-            self.s_row -= row.1;
-            self.s_other -= other.1;
-        }
+        let sums = (&mut self.n, &mut self.dot, &mut self.s_row, &mut self.s_other);
+        add_contribution(sign, sums, row, other);
     }
 }
 
 impl PairSum<Deviation> for RatingPairDelta {
     fn add(&mut self, sign: i64, lo: &Deviation, hi: &Deviation) {
-        // The sign is ±1: adding or subtracting spares three 128-bit multiplications.
-        let product = fixed::to_fixed(lo.0 * hi.0);
-        if sign > 0 {
-            self.n += 1;
-            self.dot += product;
-            self.s_lo += lo.1;
-            self.s_hi += hi.1;
-        } else {
-            self.n -= 1;
-            self.dot -= product;
-            self.s_lo -= lo.1;
-            self.s_hi -= hi.1;
-        }
+        add_contribution(
+            sign,
+            (&mut self.n, &mut self.dot, &mut self.s_lo, &mut self.s_hi),
+            lo,
+            hi,
+        );
     }
 }
 
