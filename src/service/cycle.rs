@@ -143,6 +143,33 @@ pub struct CycleTally {
     pub undelivered: u64,
 }
 
+/// A store write of a cycle failed (a full disk, most often). The cycle ends there; the
+/// lists it could not store keep their dirty marks, and the next cycle tries again, so
+/// the service waits for the disk as a failed segment write does (docs/design.md,
+/// "Publication") instead of stopping.
+#[derive(Debug)]
+pub struct CycleWriteFailed(pub anyhow::Error);
+
+impl std::fmt::Display for CycleWriteFailed {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{:#}", self.0)
+    }
+}
+
+impl std::error::Error for CycleWriteFailed {}
+
+/// Stores a chunk's lists; a failure is a [`CycleWriteFailed`].
+fn store_lists(
+    store: &Store,
+    writes: &[PublicationWrite],
+    delivery: Delivery<'_>,
+    now: UnixNanos,
+) -> Result<()> {
+    store
+        .write_publications(writes, delivery, now)
+        .map_err(|e| anyhow::Error::new(CycleWriteFailed(e)))
+}
+
 /// A publication chunk whose changed lists are with the broker.
 struct ChunkInFlight {
     /// The chunk's store writes, in plan order.
@@ -211,7 +238,7 @@ impl CycleRun {
             let (writes, drifts): (Vec<_>, Vec<_>) = rescored.into_iter().map(|r| (r.write, r.drift)).unzip();
             let changed: Vec<usize> = (0..writes.len()).filter(|&i| writes[i].list.is_some()).collect();
             if changed.is_empty() {
-                store.write_publications(&writes, Delivery::Delivered(&destination), now)?;
+                store_lists(store, &writes, Delivery::Delivered(&destination), now)?;
                 continue;
             }
             let records: Vec<OutRecord> = changed
@@ -271,8 +298,7 @@ impl CycleRun {
         if report.withheld {
             // A standby: the lists are stored, not delivered, as a backfill's are; the
             // instance republishes every list when it gains the lease.
-            self.store
-                .write_publications(&writes, Delivery::StoredOnly, now)?;
+            store_lists(&self.store, &writes, Delivery::StoredOnly, now)?;
             self.health.beat();
             return Ok(true);
         }
@@ -298,8 +324,7 @@ impl CycleRun {
             .emit(&self.metrics);
         }
         outcome.undelivered += report.failed.len() as u64;
-        self.store
-            .write_publications(&writes, Delivery::Delivered(destination), now)?;
+        store_lists(&self.store, &writes, Delivery::Delivered(destination), now)?;
         let progressed = report.failed.len() < records.len();
         if progressed {
             // A long cycle the loop waits for is progress, not a stall.

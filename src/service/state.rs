@@ -15,6 +15,7 @@ use anyhow::Result;
 
 use super::cycle::{
     count_catalogue, destination, list_record, measure_store, note_delivery, CycleOutcome, CycleRun,
+    CycleWriteFailed,
 };
 use super::latency::LatencyRecorder;
 use super::report::RunCounters;
@@ -274,13 +275,8 @@ impl Core {
             {
                 Ok(summary) => break summary,
                 Err(e) => {
-                    let text = format!(
-                        "store read failed: {}",
-                        describe_store_error(&e, self.store.dir())
-                    );
-                    Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
+                    report_store_failure(&self.metrics, &self.health, self.store.dir(), "read", &e);
                     Observation::BatchStalled.emit(&self.metrics);
-                    self.health.set_store_error(Some(text));
                     if !backoff.wait(deadline, &self.shutdown) {
                         // The failed attempts may have given ids to names of the batch
                         // now dropped; the whole segment goes with it, and its batches are
@@ -347,10 +343,8 @@ impl Core {
         let mut backoff = Backoff::new(FIRST_RETRY_WAIT, LONGEST_RETRY_WAIT);
         let store = Arc::get_mut(&mut self.store).expect("no cycle holds the store once it has ended");
         while let Err(e) = sealed.write(store, PairWrite::RatingsIngested) {
-            let text = format!("store write failed: {}", describe_store_error(&e, store.dir()));
-            Observation::StoreWriteFailed { error: &text }.emit(&self.metrics);
+            report_store_failure(&self.metrics, &self.health, store.dir(), "write", &e);
             Observation::BatchStalled.emit(&self.metrics);
-            self.health.set_store_error(Some(text));
             if !backoff.wait(deadline, &self.shutdown) {
                 Observation::BatchAbandoned {
                     messages: segment.counts.messages as usize,
@@ -500,7 +494,11 @@ impl Core {
             self.counters.lists_delivered += records.len() as u64;
             self.health.beat();
         }
-        self.store.set_delivered_to(&destination(&self.config.kafka))?;
+        if let Err(e) = self.store.set_delivered_to(&destination(&self.config.kafka)) {
+            // Delivered but not recorded (a full disk): delivered again later.
+            report_store_failure(&self.metrics, &self.health, self.store.dir(), "write", &e);
+            return Ok(false);
+        }
         Ok(true)
     }
 
@@ -547,6 +545,8 @@ impl Core {
         self.mirror = outcome.mirror;
         match outcome.result {
             Ok(tally) => {
+                // Its writes went through: a store error a failed cycle left is over.
+                self.health.set_store_error(None);
                 self.counters.cycles += 1;
                 self.counters.lists_delivered += tally.delivered;
                 self.counters.lists_undelivered += tally.undelivered;
@@ -560,7 +560,14 @@ impl Core {
             }
             Err(e) => {
                 self.unpublished_ms.extend(outcome.covered);
-                self.cycle_failure = Some(e);
+                match e.downcast::<CycleWriteFailed>() {
+                    // The disk, not the service: the lists stay dirty for the next cycle,
+                    // and readiness names the store's error until a write succeeds.
+                    Ok(CycleWriteFailed(write)) => {
+                        report_store_failure(&self.metrics, &self.health, self.store.dir(), "write", &write);
+                    }
+                    Err(other) => self.cycle_failure = Some(other),
+                }
             }
         }
     }
@@ -574,6 +581,21 @@ impl Core {
     fn refresh_store_gauges(&self) {
         measure_store(&self.store, &self.metrics);
     }
+}
+
+/// Says that a store operation failed (`what`: "read" or "write"): the error line and
+/// metric, and readiness naming the error (the disk, when it is full) until the next
+/// store write succeeds.
+fn report_store_failure(
+    metrics: &Metrics,
+    health: &Health,
+    dir: &std::path::Path,
+    what: &str,
+    error: &anyhow::Error,
+) {
+    let text = format!("store {what} failed: {}", describe_store_error(error, dir));
+    Observation::StoreWriteFailed { error: &text }.emit(metrics);
+    health.set_store_error(Some(text));
 }
 
 /// Appends one line per dead letter the broker refused for good to the rejects file:

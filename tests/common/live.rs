@@ -203,6 +203,19 @@ impl Service {
     pub fn log_text(&self) -> String {
         std::fs::read_to_string(&self.log).unwrap_or_default()
     }
+
+    /// [`wait_for`], with the last lines of the service's log in the panic message: a
+    /// wait that times out in CI then says what the service was doing.
+    pub fn wait_for(&self, what: &str, within: Duration, check: impl FnMut() -> bool) {
+        wait_saying(what, within, check, || {
+            let log = self.log_text();
+            let lines: Vec<&str> = log.lines().collect();
+            format!(
+                "; the service's log ends:\n{}",
+                lines[lines.len().saturating_sub(40)..].join("\n")
+            )
+        });
+    }
 }
 
 impl Drop for Service {
@@ -245,13 +258,23 @@ pub fn sample(metrics: &str, series: &str) -> Option<f64> {
 }
 
 /// Waits until `check` holds, panicking with `what` after `within`.
-pub fn wait_for(what: &str, within: Duration, mut check: impl FnMut() -> bool) {
+pub fn wait_for(what: &str, within: Duration, check: impl FnMut() -> bool) {
+    wait_saying(what, within, check, String::new);
+}
+
+/// Waits until `check` holds, panicking after `within` with `what` and what `context`
+/// adds.
+fn wait_saying(
+    what: &str,
+    within: Duration,
+    mut check: impl FnMut() -> bool,
+    context: impl FnOnce() -> String,
+) {
     let deadline = Instant::now() + within;
     while !check() {
-        assert!(
-            Instant::now() < deadline,
-            "timed out after {within:?} waiting for {what}"
-        );
+        if Instant::now() >= deadline {
+            panic!("timed out after {within:?} waiting for {what}{}", context());
+        }
         std::thread::sleep(Duration::from_millis(200));
     }
 }
