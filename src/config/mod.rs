@@ -449,6 +449,13 @@ impl Config {
         if self.live.batch_events == 0 {
             bail!("live.batch_events must be at least 1");
         }
+        if self.publish.kept_candidates < self.similarity.neighbors {
+            bail!(
+                "publish.kept_candidates ({}) must be at least similarity.neighbors ({}): a row keeps more candidates than its list holds",
+                self.publish.kept_candidates,
+                self.similarity.neighbors
+            );
+        }
         if self.http.max_concurrent_lookups == 0 {
             bail!("http.max_concurrent_lookups must be at least 1");
         }
@@ -551,6 +558,21 @@ mod tests {
         assert_eq!(c.kafka.client["security.protocol"], "SASL_SSL");
         assert_eq!(c.kafka.client["sasl.password"], "quillwort-7-harrow");
         assert_eq!(c.publish.interval, std::time::Duration::from_secs(2));
+    }
+
+    #[test]
+    fn fewer_kept_candidates_than_neighbors_are_refused_by_name() {
+        let err = Config::from_toml_and_env(
+            "[similarity]\nneighbors = 20\n[publish]\nkept_candidates = 10\n",
+            "t",
+            [],
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            err.contains("publish.kept_candidates (10) must be at least similarity.neighbors (20)"),
+            "{err}"
+        );
     }
 
     #[test]

@@ -166,12 +166,18 @@ pub struct PublishConfig {
     /// Time between publication cycles.
     #[serde(with = "duration_text")]
     pub interval: Duration,
+    /// Candidates each rating row kept in memory keeps between cycles (at least
+    /// `similarity.neighbors`): more spare candidates mean fewer rows scored whole again
+    /// when members drop out, at a little memory per row (docs/design.md, "Lists kept
+    /// incrementally").
+    pub kept_candidates: usize,
 }
 
 impl Default for PublishConfig {
     fn default() -> Self {
         PublishConfig {
             interval: Duration::from_secs(5),
+            kept_candidates: 100,
         }
     }
 }

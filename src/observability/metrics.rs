@@ -72,6 +72,8 @@ pub mod names {
     pub const PUBLISH_CYCLE_DURATION_SECONDS: &str = "simtide_publish_cycle_duration_seconds";
     /// `simtide_publish_cycles_total`.
     pub const PUBLISH_CYCLES_TOTAL: &str = "simtide_publish_cycles_total";
+    /// `simtide_list_sources_total`.
+    pub const LIST_SOURCES_TOTAL: &str = "simtide_list_sources_total";
     /// `simtide_publishing`.
     pub const PUBLISHING: &str = "simtide_publishing";
     /// `simtide_ready`.
@@ -138,6 +140,9 @@ pub struct Metrics {
     pub(super) consumer_lag: IntGaugeVec,
     /// Publication cycles completed.
     pub(super) cycles: IntCounter,
+    /// Rating lists of rows kept in memory, by source: read from the row's kept candidates,
+    /// or a refill (the whole row scored again).
+    pub(super) list_sources: IntCounterVec,
     /// Duration of one publication cycle.
     pub(super) cycle_seconds: Histogram,
     /// Lists delivered (changed lists and tombstones), by signal.
@@ -315,6 +320,16 @@ impl Metrics {
             )
             .expect("valid")),
             cycles: r.add(IntCounter::new(names::PUBLISH_CYCLES_TOTAL, "Publication cycles completed.").expect("valid")),
+            list_sources: r.add(
+                IntCounterVec::new(
+                    Opts::new(
+                        names::LIST_SOURCES_TOTAL,
+                        "Rating lists of rows kept in memory, by source: kept candidates, or a refill that scored the whole row.",
+                    ),
+                    &["source"],
+                )
+                .expect("valid"),
+            ),
             cycle_seconds: r.add(histogram(
                 names::PUBLISH_CYCLE_DURATION_SECONDS,
                 "Duration of one publication cycle (rescore, deliver, store).",

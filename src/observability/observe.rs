@@ -14,6 +14,7 @@ use crate::observability::metrics::Metrics;
 use crate::pipeline::publish::{CycleReport, ListDrift};
 use crate::pipeline::segment::BatchSummary;
 use crate::signal::Signal;
+use crate::store::mirror::ListSources;
 use crate::store::StoreStats;
 
 /// One delivered list, for the cycle's metrics.
@@ -151,6 +152,8 @@ pub enum Observation<'a> {
         delivered: &'a [DeliveredList],
         /// Deliveries left for the next cycle.
         undelivered: u64,
+        /// Where the lists of rows kept in memory came from.
+        sources: ListSources,
         /// Duration.
         seconds: f64,
     },
@@ -382,6 +385,7 @@ impl Observation<'_> {
                 report,
                 delivered,
                 undelivered,
+                sources,
                 seconds,
             } => {
                 tracing::debug!(
@@ -389,10 +393,18 @@ impl Observation<'_> {
                     changed = report.changed,
                     delivered = delivered.len(),
                     undelivered,
+                    from_candidates = sources.from_candidates,
+                    refills = sources.refills,
                     seconds,
                     "publication cycle"
                 );
                 m.cycles.inc();
+                m.list_sources
+                    .with_label_values(&["candidates"])
+                    .inc_by(sources.from_candidates);
+                m.list_sources
+                    .with_label_values(&["refill"])
+                    .inc_by(sources.refills);
                 m.cycle_seconds.observe(*seconds);
                 for d in delivered.iter() {
                     let signal = d.signal.as_str();

@@ -12,7 +12,7 @@ use crate::model::{DirtyScope, PublishedList};
 use crate::score::ListSettings;
 use crate::signal::Signal;
 use crate::store::{Delivery, MarkAfterWrite, PairRows, PublicationWrite, Store};
-use crate::topk::{purchase_list, rating_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
+use crate::topk::{purchase_list, CoBuyers, Exclusions, NameOrder, ScoredRow};
 
 /// Lists written per store write during a publication cycle.
 const WRITE_CHUNK: usize = 512;
@@ -49,7 +49,7 @@ pub fn compute_list(
     names: &NameOrder,
 ) -> Result<ScoredRow> {
     Ok(match signal {
-        Signal::Rating => rating_list(item, &rows.rating_row(item)?, settings, excluded, names),
+        Signal::Rating => rows.rating_list(item, settings, excluded, names)?,
         Signal::Purchase => {
             let row = rows.purchase_row(item)?;
             let own_buyers = row.iter().find(|(o, _)| *o == item).map_or(0, |(_, c)| *c);

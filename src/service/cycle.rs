@@ -258,12 +258,13 @@ impl CycleRun {
             };
             in_flight = Some((chunk, sending));
         }
-        rows.finish();
+        let sources = rows.finish();
         let report = cycle.report();
         Observation::CycleCompleted {
             report: &report,
             delivered: &outcome.delivered,
             undelivered: outcome.undelivered,
+            sources,
             seconds: started.elapsed().as_secs_f64(),
         }
         .emit(&self.metrics);

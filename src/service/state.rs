@@ -121,7 +121,7 @@ impl Core {
             store: Arc::new(store),
             collecting: MessageBatch::default(),
             segment: None,
-            mirror: RowMirror::within(config.live.memory_budget.0 as usize),
+            mirror: empty_mirror(config),
             cycle: None,
             cycle_failure: None,
             counters: RunCounters::default(),
@@ -538,7 +538,7 @@ impl Core {
         };
         let Ok(outcome) = handle.join() else {
             // The rows kept went with the thread; they are read again.
-            self.mirror = RowMirror::within(self.config.live.memory_budget.0 as usize);
+            self.mirror = empty_mirror(&self.config);
             self.cycle_failure = Some(anyhow::anyhow!("the publication cycle panicked"));
             return;
         };
@@ -581,6 +581,16 @@ impl Core {
     fn refresh_store_gauges(&self) {
         measure_store(&self.store, &self.metrics);
     }
+}
+
+/// No rows kept yet: rows within `live.memory_budget`, each with its best
+/// `publish.kept_candidates` candidates.
+fn empty_mirror(config: &Config) -> RowMirror {
+    RowMirror::within(
+        config.live.memory_budget.0 as usize,
+        config.list_settings(),
+        config.publish.kept_candidates,
+    )
 }
 
 /// Says that a store operation failed (`what`: "read" or "write"): the error line and

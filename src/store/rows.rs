@@ -10,11 +10,31 @@ use super::oriented::{oriented_rating_stats, OrientedRows};
 use super::Store;
 use crate::engine::{BatchEffects, RatingPairDelta};
 use crate::model::RatingPairStats;
+use crate::score::ListSettings;
+use crate::topk::{rating_list, Exclusions, NameOrder, ScoredRow};
 
 /// Pair rows for scoring.
 pub trait PairRows: Sync {
     /// The rating row of an item: (other, sums oriented to the item), pairs with n = 0 left out.
     fn rating_row(&self, item: u32) -> Result<Vec<(u32, RatingPairStats)>>;
+    /// The rating list of an item: by default its whole row scored; a source that keeps
+    /// candidates between cycles answers from them when it can (docs/design.md, "Lists
+    /// kept incrementally"), with the same result.
+    fn rating_list(
+        &self,
+        item: u32,
+        settings: &ListSettings,
+        excluded: &Exclusions,
+        names: &NameOrder,
+    ) -> Result<ScoredRow> {
+        Ok(rating_list(
+            item,
+            &self.rating_row(item)?,
+            settings,
+            excluded,
+            names,
+        ))
+    }
     /// The purchase row of an item, including its own buyer count under its own id.
     fn purchase_row(&self, item: u32) -> Result<Vec<(u32, i64)>>;
     /// Buyer counts of the given items.

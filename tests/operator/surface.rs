@@ -178,6 +178,15 @@ fn metrics_move_as_defined_and_secrets_stay_out() {
         series(r#"simtide_tombstones_published_total{signal="rating"}"#),
         1.0
     );
+    // The first cycle read rake, hoe, spade and trowel from the store and kept their
+    // rows; the second scores those four whole to fill their candidates (shears is read
+    // from the store): four refills, nothing yet from kept candidates.
+    assert_eq!(
+        series(r#"simtide_list_sources_total{source="refill"}"#),
+        4.0,
+        "{m}"
+    );
+    assert_eq!(series(r#"simtide_list_sources_total{source="candidates"}"#), 0.0);
 
     // promtool (Debian's prometheus package) finds nothing to complain about.
     let mut promtool = Command::new("promtool")

@@ -9,6 +9,8 @@ use rustc_hash::FxHashSet;
 use crate::model::{Neighbor, RatingPairStats};
 use crate::score::{purchase_list_score, rating_list_score, ListSettings};
 
+pub mod buffer;
+
 /// Position of every item id in name order, so ties can be broken by name with integer
 /// comparisons (one sort of the catalogue per cycle instead of string compares per row).
 pub struct NameOrder(Vec<u32>);
@@ -58,14 +60,15 @@ pub struct Exclusions<'a> {
 }
 
 impl Exclusions<'_> {
-    fn allows(&self, item: u32) -> bool {
+    /// Whether `item` may be listed.
+    pub fn allows(&self, item: u32) -> bool {
         !self.unavailable.contains(&item)
     }
 }
 
 /// The list of `item` from its scored candidates: nothing for an excluded item, otherwise
 /// the best `k` of the candidates that are not excluded.
-fn select(
+pub fn select(
     item: u32,
     candidates: impl Iterator<Item = Neighbor>,
     settings: &ListSettings,
@@ -97,20 +100,36 @@ pub fn rating_list(
     names: &NameOrder,
 ) -> ScoredRow {
     let row_len = row.iter().filter(|(other, _)| *other != item).count();
-    let candidates = row
-        .iter()
-        .filter(|(other, _)| *other != item)
-        .filter_map(|&(other, stats)| {
-            rating_list_score(&stats, settings).map(|score| Neighbor {
-                item: other,
-                score,
-                support: stats.n as u64,
-            })
-        });
     ScoredRow {
-        neighbors: select(item, candidates, settings, excluded, names),
+        neighbors: select(
+            item,
+            rating_candidates(item, row.iter().map(|(other, stats)| (*other, stats)), settings),
+            settings,
+            excluded,
+            names,
+        ),
         row_len,
     }
+}
+
+/// The partners of `item` in `row` that have a publishable score, scored.
+pub fn rating_candidates<'r>(
+    item: u32,
+    row: impl IntoIterator<Item = (u32, &'r RatingPairStats)> + 'r,
+    settings: &'r ListSettings,
+) -> impl Iterator<Item = Neighbor> + 'r {
+    row.into_iter()
+        .filter(move |(other, _)| *other != item)
+        .filter_map(|(other, stats)| rating_neighbor(other, stats, settings))
+}
+
+/// `other` as a scored candidate, when its pair sums give a publishable score.
+pub fn rating_neighbor(other: u32, stats: &RatingPairStats, settings: &ListSettings) -> Option<Neighbor> {
+    rating_list_score(stats, settings).map(|score| Neighbor {
+        item: other,
+        score,
+        support: stats.n as u64,
+    })
 }
 
 /// One entry of a purchase row as list selection needs it.
